@@ -1,0 +1,1 @@
+"""One module per ``selfplay`` subcommand; each exposes ``register(subparsers)``."""

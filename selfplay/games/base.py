@@ -1,0 +1,211 @@
+"""The one small interface every game implements.
+
+A *game* object holds the rules and options (board size, komi, ...); a *state* is a value that
+the game's methods take and return. States are never changed in place: :meth:`Game.play`
+returns a new state, so a search tree may keep states in its nodes.
+
+Conventions used across the project:
+
+- Players are numbered 0 (first to move: Black in Go, X in tic-tac-toe) and 1.
+- Actions are integers in ``[0, num_actions)``. Board games number points row-major from the
+  top-left corner (``row * width + col``); Go's pass is the last action, ``width * height``.
+- ``outcome(state)`` of a terminal state is from player 0's view: +1 player 0 won, -1 lost, 0 draw.
+  Records and the network use the *mover's* view: ``z = outcome if mover == 0 else -outcome``.
+- The *compact board* is an ``int8`` array of shape ``compact_shape`` with 0 for empty,
+  1 for a stone/piece of player 0 and 2 for one of player 1. The network input is rebuilt from the
+  last ``history_length`` compact boards and the side to move (:meth:`planes_from_compact`),
+  so records store only small integers, never float planes.
+
+To add a game: subclass :class:`Game`, implement the abstract methods, and register a factory in
+:mod:`selfplay.games.registry`. ``DEVELOPERS.md`` walks through an example.
+"""
+
+from __future__ import annotations
+
+import abc
+from typing import Any, Generic, Sequence, TypeVar
+
+import numpy as np
+
+State = TypeVar("State")
+
+
+class Game(abc.ABC, Generic[State]):
+    """Rules of one game with fixed options."""
+
+    #: registry name, e.g. ``"go"``, ``"fourinrow"``, ``"mnk"``
+    name: str = ""
+
+    # ---- shape facts -------------------------------------------------------------------------
+    @property
+    @abc.abstractmethod
+    def num_actions(self) -> int:
+        """Number of distinct actions (the policy head's width)."""
+
+    @property
+    @abc.abstractmethod
+    def board_shape(self) -> tuple[int, int]:
+        """(height, width) of the board in points or cells."""
+
+    @property
+    def compact_shape(self) -> tuple[int, ...]:
+        """Shape of one compact board (int8); by default the board itself."""
+        return self.board_shape
+
+    @property
+    def history_length(self) -> int:
+        """How many compact boards (current first) the network input is built from."""
+        return 1
+
+    @property
+    @abc.abstractmethod
+    def input_shape(self) -> tuple[int, int, int]:
+        """(channels, height, width) of the network input made by :meth:`planes_from_compact`."""
+
+    @property
+    @abc.abstractmethod
+    def max_moves(self) -> int:
+        """Move cap: a game reaching this many moves ends (Go) or is full (board games)."""
+
+    @property
+    @abc.abstractmethod
+    def typical_legal_moves(self) -> float:
+        """Rough number of legal moves in a typical position; sets the default Dirichlet alpha."""
+
+    def options(self) -> dict[str, Any]:
+        """The options this game was built with, as plain JSON-able values."""
+        return {}
+
+    # ---- rules -------------------------------------------------------------------------------
+    @abc.abstractmethod
+    def initial_state(self) -> State:
+        """The empty board with player 0 to move."""
+
+    @abc.abstractmethod
+    def to_play(self, state: State) -> int:
+        """Player (0 or 1) to move in ``state``."""
+
+    @abc.abstractmethod
+    def legal_mask(self, state: State) -> np.ndarray:
+        """Boolean array of shape (num_actions,): True where the action is legal.
+
+        A terminal state has no legal action."""
+
+    @abc.abstractmethod
+    def play(self, state: State, action: int) -> State:
+        """Return the state after ``action``; raise IllegalMoveError if it is not legal."""
+
+    @abc.abstractmethod
+    def is_terminal(self, state: State) -> bool:
+        """True when the game is over."""
+
+    @abc.abstractmethod
+    def outcome(self, state: State) -> float:
+        """Result of a terminal state from player 0's view: +1, 0 or -1."""
+
+    @abc.abstractmethod
+    def move_count(self, state: State) -> int:
+        """Number of moves played to reach ``state``."""
+
+    @abc.abstractmethod
+    def zobrist(self, state: State) -> int:
+        """Stable 64-bit Zobrist hash of the position (board and side to move)."""
+
+    # ---- encoding ----------------------------------------------------------------------------
+    @abc.abstractmethod
+    def compact(self, state: State) -> np.ndarray:
+        """The current compact board (int8, ``compact_shape``); 0 empty, 1 player 0, 2 player 1."""
+
+    def compact_history(self, state: State) -> np.ndarray:
+        """The last ``history_length`` compact boards, current first, zero-padded:
+        int8 array of shape (history_length, *compact_shape)."""
+        out = np.zeros((self.history_length, *self.compact_shape), dtype=np.int8)
+        out[0] = self.compact(state)
+        return out
+
+    @abc.abstractmethod
+    def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
+        """Network input for a batch.
+
+        ``boards``: int8 (N, history_length, *compact_shape), current board first;
+        ``to_play``: int8 (N,). Returns float32 (N, *input_shape), from the side to move's view.
+        """
+
+    def encode(self, state: State) -> np.ndarray:
+        """Network input of one state: float32 ``input_shape``."""
+        boards = self.compact_history(state)[None]
+        return self.planes_from_compact(boards, np.array([self.to_play(state)], dtype=np.int8))[0]
+
+    # ---- symmetry ----------------------------------------------------------------------------
+    @property
+    def num_symmetries(self) -> int:
+        """Size of the symmetry group used for augmentation (1 = none)."""
+        return 1
+
+    def transform_boards(self, boards: np.ndarray, k: int) -> np.ndarray:
+        """Apply symmetry ``k`` to arrays whose last two axes are the board (H, W)."""
+        if k != 0:
+            raise ValueError(f"symmetry {k} out of range for {self.name}")
+        return boards
+
+    def action_permutation(self, k: int) -> np.ndarray:
+        """int64 (num_actions,): ``perm[a]`` is the action that ``a`` becomes under symmetry ``k``."""
+        if k != 0:
+            raise ValueError(f"symmetry {k} out of range for {self.name}")
+        return np.arange(self.num_actions)
+
+    # ---- text --------------------------------------------------------------------------------
+    @abc.abstractmethod
+    def action_to_text(self, action: int) -> str:
+        """Human-readable move, e.g. ``"D4"`` or ``"pass"`` in Go, ``"3"`` for a column."""
+
+    @abc.abstractmethod
+    def text_to_action(self, text: str) -> int:
+        """Inverse of :meth:`action_to_text`; raise IllegalMoveError naming the text if unknown."""
+
+    def render(self, state: State) -> str:
+        """Plain-text picture of the board (for logs and errors)."""
+        symbols = {0: ".", 1: "X", 2: "O"}
+        board = self.compact(state)
+        return "\n".join("".join(symbols[int(v)] for v in row) for row in board)
+
+    # ---- helpers -----------------------------------------------------------------------------
+    def legal_actions(self, state: State) -> np.ndarray:
+        """Indices of the legal actions."""
+        return np.flatnonzero(self.legal_mask(state))
+
+    def value_for_mover(self, state: State, mover: int) -> float:
+        """Outcome of a terminal state from ``mover``'s view."""
+        z = self.outcome(state)
+        return z if mover == 0 else -z
+
+    def play_sequence(self, moves: Sequence[int | str], state: State | None = None) -> State:
+        """Play a list of actions or move texts from ``state`` (default: the initial state)."""
+        s = self.initial_state() if state is None else state
+        for m in moves:
+            a = self.text_to_action(m) if isinstance(m, str) else int(m)
+            s = self.play(s, a)
+        return s
+
+
+# ---- dihedral symmetry of a square board (shared by Go and m,n,k on square boards) -----------
+
+def dihedral(arr: np.ndarray, k: int) -> np.ndarray:
+    """Symmetry ``k`` in 0..7 of the dihedral group on the last two axes.
+
+    k = 0..3: rotation by k quarter turns (counter-clockwise, as ``np.rot90``); k = 4..7: the same
+    rotation after a left-right mirror."""
+    if not 0 <= k < 8:
+        raise ValueError(f"dihedral symmetry index {k} is not in 0..7")
+    if k >= 4:
+        arr = arr[..., ::-1]
+    return np.rot90(arr, k % 4, axes=(-2, -1))
+
+
+def dihedral_point_permutation(height: int, width: int, k: int) -> np.ndarray:
+    """``perm[p]`` = index of point ``p`` after :func:`dihedral` symmetry ``k`` (square boards)."""
+    idx = np.arange(height * width).reshape(height, width)
+    moved = dihedral(idx, k)  # moved[r, c] = old point now at (r, c)
+    perm = np.empty(height * width, dtype=np.int64)
+    perm[moved.reshape(-1)] = np.arange(height * width)
+    return perm

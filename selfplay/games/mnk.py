@@ -1,0 +1,192 @@
+"""m,n,k games: two players take turns placing a stone on an m-wide, n-high board; the first to
+get k in a row (horizontally, vertically or diagonally) wins; a full board is a draw.
+
+Tic-tac-toe is (3, 3, 3), the default; gomoku-like boards such as (9, 9, 5) and (15, 15, 5) use
+the same code. Actions are cells numbered row-major from the top-left corner.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from selfplay.errors import ConfigError, IllegalMoveError
+from selfplay.games.base import Game, dihedral, dihedral_point_permutation
+from selfplay.games.registry import register_game
+
+_DIRECTIONS = ((0, 1), (1, 0), (1, 1), (1, -1))
+
+
+@dataclass(frozen=True, slots=True)
+class MNKState:
+    """Board cells (int8, 0 empty / 1 player 0 / 2 player 1), side to move, moves played,
+    winner (-1 none yet, 0 or 1), and the Zobrist hash."""
+
+    cells: np.ndarray
+    player: int
+    moves: int
+    winner: int
+    key: int
+
+
+class MNKGame(Game[MNKState]):
+    """The (m, n, k) game; ``m`` columns, ``n`` rows, ``k`` in a row wins."""
+
+    name = "mnk"
+
+    def __init__(self, m: int = 3, n: int = 3, k: int = 3) -> None:
+        for field, value in (("m", m), ("n", n), ("k", k)):
+            if not isinstance(value, int) or isinstance(value, bool):
+                raise ConfigError(f"mnk option {field}={value!r} must be an integer")
+        if not (1 <= m <= 25 and 1 <= n <= 25):
+            raise ConfigError(f"mnk board {m}x{n} is out of range: m and n must be in 1..25")
+        if not 1 <= k <= max(m, n):
+            raise ConfigError(f"mnk option k={k} must be in 1..{max(m, n)} for a {m}x{n} board")
+        self.m, self.n, self.k = m, n, k
+        rng = np.random.default_rng(0x6D6E6B)
+        self._zobrist = rng.integers(1, 2**63, size=(3, m * n), dtype=np.int64)
+        self._zobrist_side = int(rng.integers(1, 2**63, dtype=np.int64))
+        self._square = m == n
+
+    # shape facts
+    @property
+    def num_actions(self) -> int:
+        return self.m * self.n
+
+    @property
+    def board_shape(self) -> tuple[int, int]:
+        return (self.n, self.m)
+
+    @property
+    def input_shape(self) -> tuple[int, int, int]:
+        return (3, self.n, self.m)
+
+    @property
+    def max_moves(self) -> int:
+        return self.m * self.n
+
+    @property
+    def typical_legal_moves(self) -> float:
+        return max(1.0, self.m * self.n / 2)
+
+    def options(self) -> dict[str, Any]:
+        return {"m": self.m, "n": self.n, "k": self.k}
+
+    # rules
+    def initial_state(self) -> MNKState:
+        return MNKState(np.zeros(self.m * self.n, dtype=np.int8), 0, 0, -1, 0)
+
+    def to_play(self, state: MNKState) -> int:
+        return state.player
+
+    def legal_mask(self, state: MNKState) -> np.ndarray:
+        if self.is_terminal(state):
+            return np.zeros(self.num_actions, dtype=bool)
+        return state.cells == 0
+
+    def is_terminal(self, state: MNKState) -> bool:
+        return state.winner >= 0 or state.moves >= self.m * self.n
+
+    def outcome(self, state: MNKState) -> float:
+        if state.winner < 0:
+            return 0.0
+        return 1.0 if state.winner == 0 else -1.0
+
+    def move_count(self, state: MNKState) -> int:
+        return state.moves
+
+    def zobrist(self, state: MNKState) -> int:
+        return state.key ^ (self._zobrist_side if state.player else 0)
+
+    def play(self, state: MNKState, action: int) -> MNKState:
+        a = int(action)
+        if self.is_terminal(state):
+            raise IllegalMoveError(f"the game is over; move {self.action_to_text(a)} cannot be played")
+        if not 0 <= a < self.num_actions:
+            raise IllegalMoveError(f"action {a} is not a cell of the {self.m}x{self.n} board")
+        if state.cells[a] != 0:
+            raise IllegalMoveError(f"cell {self.action_to_text(a)} is already occupied")
+        cells = state.cells.copy()
+        stone = state.player + 1
+        cells[a] = stone
+        winner = state.player if self._makes_line(cells, a, stone) else -1
+        key = state.key ^ int(self._zobrist[stone, a])
+        return MNKState(cells, 1 - state.player, state.moves + 1, winner, key)
+
+    def _makes_line(self, cells: np.ndarray, a: int, stone: int) -> bool:
+        r0, c0 = divmod(a, self.m)
+        for dr, dc in _DIRECTIONS:
+            count = 1
+            for sign in (1, -1):
+                r, c = r0 + sign * dr, c0 + sign * dc
+                while 0 <= r < self.n and 0 <= c < self.m and cells[r * self.m + c] == stone:
+                    count += 1
+                    r += sign * dr
+                    c += sign * dc
+            if count >= self.k:
+                return True
+        return False
+
+    # encoding
+    def compact(self, state: MNKState) -> np.ndarray:
+        return state.cells.reshape(self.n, self.m)
+
+    def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
+        cur = boards[:, 0]
+        own = (to_play.astype(np.int8) + 1)[:, None, None]
+        planes = np.empty((cur.shape[0], 3, self.n, self.m), dtype=np.float32)
+        planes[:, 0] = cur == own
+        planes[:, 1] = (cur != 0) & (cur != own)
+        planes[:, 2] = 1.0
+        return planes
+
+    # symmetry
+    @property
+    def num_symmetries(self) -> int:
+        return 8 if self._square else 2
+
+    def transform_boards(self, boards: np.ndarray, k: int) -> np.ndarray:
+        if self._square:
+            return dihedral(boards, k)
+        if k == 0:
+            return boards
+        if k == 1:
+            return boards[..., ::-1]
+        raise ValueError(f"symmetry {k} out of range for a non-square mnk board")
+
+    def action_permutation(self, k: int) -> np.ndarray:
+        if self._square:
+            return dihedral_point_permutation(self.n, self.m, k)
+        idx = np.arange(self.num_actions).reshape(self.n, self.m)
+        moved = self.transform_boards(idx, k)
+        perm = np.empty(self.num_actions, dtype=np.int64)
+        perm[moved.reshape(-1)] = np.arange(self.num_actions)
+        return perm
+
+    # text: columns a, b, c... from the left, rows 1.. from the bottom (as on a chess board)
+    def action_to_text(self, action: int) -> str:
+        r, c = divmod(int(action), self.m)
+        return f"{chr(ord('a') + c)}{self.n - r}"
+
+    def text_to_action(self, text: str) -> int:
+        t = text.strip().lower()
+        if len(t) >= 2 and t[0].isalpha() and t[1:].isdigit():
+            c = ord(t[0]) - ord("a")
+            r = self.n - int(t[1:])
+            if 0 <= c < self.m and 0 <= r < self.n:
+                return r * self.m + c
+        raise IllegalMoveError(
+            f"{text!r} is not a cell of the {self.m}x{self.n} board (columns a..{chr(ord('a') + self.m - 1)}, rows 1..{self.n})"
+        )
+
+
+def tictactoe() -> MNKGame:
+    """Tic-tac-toe: the (3, 3, 3) game."""
+    return MNKGame(3, 3, 3)
+
+
+register_game("mnk", MNKGame)
+register_game("tictactoe", tictactoe)
+register_game("gomoku", lambda m=15, n=15, k=5: MNKGame(m, n, k))

@@ -1,0 +1,60 @@
+"""Time-stamped counters appended by every component to RUN/metrics.jsonl.
+
+Each line is one JSON object: ``{"t": <unix seconds>, "component": <str>, "source": <str>, ...}``
+followed by the component's own fields (documented in docs/metrics.md). Lines are written with
+one ``write`` call on a file opened in append mode, so several processes on one machine can share
+the file without interleaving lines.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+from typing import Any, Iterator
+
+
+class MetricsLog:
+    """Appends metric lines to one metrics.jsonl file."""
+
+    def __init__(self, path: str | os.PathLike[str], component: str, source: str = "") -> None:
+        self.path = Path(path)
+        self.component = component
+        self.source = source or component
+
+    def write(self, **fields: Any) -> dict[str, Any]:
+        """Append one line with the current time and ``fields``; returns the line as a dict."""
+        row = {"t": time.time(), "component": self.component, "source": self.source, **fields}
+        line = json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n"
+        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        try:
+            os.write(fd, line.encode())
+        finally:
+            os.close(fd)
+        return row
+
+
+def _jsonable(v: Any) -> Any:
+    if hasattr(v, "item"):
+        return v.item()
+    if hasattr(v, "tolist"):
+        return v.tolist()
+    raise TypeError(f"metric value {v!r} is not JSON-serialisable")
+
+
+def read_metrics(path: str | os.PathLike[str]) -> Iterator[dict[str, Any]]:
+    """Yield the metric lines of ``path`` in order; a torn last line (a writer died mid-line) is skipped."""
+    p = Path(path)
+    if not p.exists():
+        return
+    with open(p, "rb") as f:
+        for raw in f:
+            if not raw.endswith(b"\n"):
+                break
+            try:
+                row = json.loads(raw)
+            except json.JSONDecodeError:
+                continue
+            if isinstance(row, dict):
+                yield row
