@@ -1,0 +1,579 @@
+"""The status of a run, computed from its run directory alone.
+
+Sources, read-only, so that any machine that can read the run directory can watch it:
+
+- ``RUN/metrics.jsonl``: lines of every component (fields in docs/metrics.md), read
+  incrementally (only new complete lines are parsed at each refresh);
+- ``RUN/catalog.sqlite`` when present: the committed games (the authority for how many games
+  and positions exist), opened with SQLite's read-only mode;
+- ``RUN/snapshots/NNNNNN.json``: snapshot metadata (version, published_at).
+
+:class:`RunMonitor` keeps state between refreshes (for ``watch`` and the Prometheus endpoint);
+:func:`compute_summary` is the one-shot form behind ``selfplay status``. The summary is a plain
+JSON-able dict whose keys are documented in docs/metrics.md.
+
+Reference time: figures are computed "as of" the newest thing the run wrote (the newest metric
+line, committed game or snapshot), not the reader's clock, so a finished run copied elsewhere
+shows the rates it ended with; ``idle_seconds`` says how long ago that was by the reader's clock.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sqlite3
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from selfplay.errors import FormatError, RunDirError
+from selfplay.monitor.rates import (
+    WINDOW_SECONDS,
+    CounterSeries,
+    event_counts_rate,
+    per_hour,
+    since_start_rate_per_second,
+    window_rate_per_second,
+)
+from selfplay.rundir import RunDir
+
+#: counters tracked per component (cumulative; restarts folded in)
+COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
+    "worker": ("games_total", "positions_total", "evals_total", "resign_disabled_games_total",
+               "resign_disabled_would_resign_total", "resign_false_positives_total"),
+    "buffer": ("games_total", "positions_total", "duplicates_total", "shards_total"),
+    "learner": ("step", "samples_trained_total"),
+}
+
+
+# ---- reading metrics.jsonl incrementally --------------------------------------------------------
+
+class MetricsTail:
+    """Reads the complete lines appended to a metrics.jsonl file since the last call.
+
+    A torn last line (a writer mid-line) is left for the next call; a malformed complete line
+    is skipped and counted in ``bad_lines``."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.offset = 0
+        self.bad_lines = 0
+
+    def read_new(self) -> list[dict[str, Any]]:
+        try:
+            size = self.path.stat().st_size
+        except FileNotFoundError:
+            return []
+        if size < self.offset:  # file replaced or truncated: start again
+            self.offset = 0
+        if size == self.offset:
+            return []
+        with open(self.path, "rb") as f:
+            f.seek(self.offset)
+            data = f.read(size - self.offset)
+        end = data.rfind(b"\n")
+        if end < 0:
+            return []
+        self.offset += end + 1
+        rows = []
+        for raw in data[: end + 1].splitlines():
+            if not raw.strip():
+                continue
+            try:
+                row = json.loads(raw)
+            except (json.JSONDecodeError, UnicodeDecodeError):
+                self.bad_lines += 1
+                continue
+            if isinstance(row, dict) and isinstance(row.get("t"), (int, float)) and "component" in row:
+                rows.append(row)
+            else:
+                self.bad_lines += 1
+        return rows
+
+
+# ---- state kept per (component, source) ----------------------------------------------------------
+
+@dataclass
+class SourceState:
+    """What one source (a worker, the buffer, the learner ...) last reported, and its counters."""
+
+    component: str
+    source: str
+    first_t: float
+    last_t: float
+    last: dict[str, Any] = field(default_factory=dict)
+    counters: dict[str, CounterSeries] = field(default_factory=dict)
+
+    def ingest(self, row: dict[str, Any]) -> None:
+        t = float(row["t"])
+        self.first_t = min(self.first_t, t)
+        if t >= self.last_t:
+            self.last_t = t
+            self.last.update(row)
+        for name in COUNTER_FIELDS.get(self.component, ()):
+            v = row.get(name)
+            if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v):
+                self.counters.setdefault(name, CounterSeries()).add(t, v)
+
+    def counter(self, name: str) -> CounterSeries:
+        return self.counters.get(name) or CounterSeries()
+
+
+def _num(v: Any) -> float | None:
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return None
+    return float(v) if math.isfinite(v) else None
+
+
+def _round(v: float | None, nd: int = 3) -> float | None:
+    return None if v is None else round(v, nd)
+
+
+# ---- the catalog, read-only ----------------------------------------------------------------------
+
+@dataclass
+class CatalogFacts:
+    """Figures read from catalog.sqlite (None where the catalog lacks the column)."""
+
+    games: int
+    positions: int | None
+    finished_times: list[float]
+    positions_cumsum: list[float] | None
+    started_first: float | None
+    snapshot_max_recent: int | None
+    per_worker: dict[str, tuple[int, int | None]]
+    resign: dict[str, int] | None
+    shards: int | None
+
+
+def _pick(cols: set[str], *names: str) -> str | None:
+    for n in names:
+        if n in cols:
+            return n
+    return None
+
+
+def read_catalog(path: Path, window_start: float | None = None) -> CatalogFacts | None:
+    """Read the committed games from ``path`` (read-only); None if there is no catalog yet.
+
+    Column names follow the replay store's schema (selfplay/replay/catalog.py); a few aliases
+    are accepted so the monitor keeps working across schema revisions."""
+    if not path.exists():
+        return None
+    try:
+        con = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0)
+    except sqlite3.Error as exc:
+        raise FormatError(f"cannot open catalog {str(path)!r} read-only: {exc}") from exc
+    try:
+        tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if "games" not in tables:
+            return None
+        cols = {r[1] for r in con.execute("PRAGMA table_info(games)")}
+        pos_col = _pick(cols, "positions", "num_positions", "length")
+        fin_col = _pick(cols, "finished_at", "finished")
+        start_col = _pick(cols, "started_at")
+        worker_col = _pick(cols, "worker", "worker_id")
+        snap_col = _pick(cols, "snapshot_max", "snapshot_hi", "snapshot")
+        games = int(con.execute("SELECT count(*) FROM games").fetchone()[0])
+        positions = None
+        if pos_col:
+            positions = int(con.execute(f"SELECT coalesce(sum({pos_col}), 0) FROM games").fetchone()[0])
+        finished: list[float] = []
+        cumsum: list[float] | None = None
+        if fin_col:
+            q = f"SELECT {fin_col}{', ' + pos_col if pos_col else ''} FROM games " \
+                f"WHERE {fin_col} IS NOT NULL ORDER BY {fin_col}"
+            rows = con.execute(q).fetchall()
+            finished = [float(r[0]) for r in rows]
+            if pos_col:
+                acc, cumsum = 0.0, []
+                for r in rows:
+                    acc += float(r[1] or 0)
+                    cumsum.append(acc)
+        started_first = None
+        if start_col:
+            v = con.execute(f"SELECT min({start_col}) FROM games WHERE {start_col} > 0").fetchone()[0]
+            started_first = float(v) if v is not None else None
+        snap_recent = None
+        if snap_col and fin_col and window_start is not None:
+            v = con.execute(f"SELECT max({snap_col}) FROM games WHERE {fin_col} >= ?",
+                            (window_start,)).fetchone()[0]
+            snap_recent = int(v) if v is not None else None
+        per_worker: dict[str, tuple[int, int | None]] = {}
+        if worker_col:
+            sel = f"SELECT {worker_col}, count(*){', sum(' + pos_col + ')' if pos_col else ''} " \
+                  f"FROM games GROUP BY {worker_col}"
+            for r in con.execute(sel):
+                per_worker[str(r[0])] = (int(r[1]), int(r[2]) if pos_col and r[2] is not None else None)
+        resign = None
+        dis_col = _pick(cols, "resign_disabled")
+        would_col = _pick(cols, "resign_would_have")
+        res_col = _pick(cols, "result")
+        if dis_col and would_col and res_col:
+            # false positive: the would-have-resigned player did not lose (result from player 0)
+            r = con.execute(
+                f"SELECT coalesce(sum({dis_col} != 0), 0), "
+                f"coalesce(sum({dis_col} != 0 AND {would_col} >= 0), 0), "
+                f"coalesce(sum({dis_col} != 0 AND (({would_col} = 0 AND {res_col} >= 0) OR "
+                f"({would_col} = 1 AND {res_col} <= 0))), 0) FROM games").fetchone()
+            resign = {"disabled_games": int(r[0]), "would_resign_games": int(r[1]),
+                      "false_positives": int(r[2])}
+        shards = None
+        if "shards" in tables:
+            shards = int(con.execute("SELECT count(*) FROM shards").fetchone()[0])
+        return CatalogFacts(games, positions, finished, cumsum, started_first, snap_recent,
+                            per_worker, resign, shards)
+    except sqlite3.Error as exc:
+        raise FormatError(f"cannot read catalog {str(path)!r}: {exc}") from exc
+    finally:
+        con.close()
+
+
+# ---- snapshots -----------------------------------------------------------------------------------
+
+def read_snapshot_times(snap_dir: Path, cache: dict[str, tuple[int, float | None]] | None = None
+                        ) -> dict[int, float | None]:
+    """Map snapshot version → published_at (Unix s) from ``snap_dir/NNNNNN.json`` files."""
+    out: dict[int, float | None] = {}
+    if not snap_dir.is_dir():
+        return out
+    for p in snap_dir.glob("*.json"):
+        if p.name.startswith("."):
+            continue
+        if cache is not None and p.name in cache:
+            v, ts = cache[p.name]
+            out[v] = ts
+            continue
+        try:
+            meta = json.loads(p.read_text())
+            v = int(meta.get("version", int(p.stem)))
+        except (ValueError, OSError, TypeError, AttributeError):
+            continue  # a snapshot being written or foreign; the store validates its own files
+        ts = _num(meta.get("published_at", meta.get("created_at")))
+        out[v] = ts
+        if cache is not None:
+            cache[p.name] = (v, ts)
+    return out
+
+
+# ---- the monitor ---------------------------------------------------------------------------------
+
+class RunMonitor:
+    """Incremental reader of one run directory; :meth:`summary` gives the status dict.
+
+    ``keep_rows=True`` also keeps every metric line (for plots); otherwise counters are trimmed
+    to the recent window so memory stays bounded however long the run is watched."""
+
+    def __init__(self, run: str | os.PathLike[str], window: float = WINDOW_SECONDS,
+                 keep_rows: bool = False) -> None:
+        self.run = RunDir.open(run)
+        self.window = float(window)
+        self.keep_rows = keep_rows
+        self.rows: list[dict[str, Any]] = []
+        self.sources: dict[tuple[str, str], SourceState] = {}
+        self.snapshot_times: dict[int, float | None] = {}
+        self.evals: dict[str, dict[str, Any]] = {}
+        self.first_t: float | None = None
+        self.last_t: float | None = None
+        self.catalog: CatalogFacts | None = None
+        self._tail = MetricsTail(self.run.metrics)
+        self._snap_cache: dict[str, tuple[int, float | None]] = {}
+
+    # -- reading ----------------------------------------------------------------------------------
+    def refresh(self) -> None:
+        """Read what the run wrote since the last refresh."""
+        if not self.run.root.is_dir():
+            raise RunDirError(f"run directory {str(self.run.root)!r} is gone")
+        for row in self._tail.read_new():
+            self._ingest(row)
+        self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache))
+        ref = self._reference_time(None)
+        self.catalog = read_catalog(self.run.catalog,
+                                    None if ref is None else ref - self.window)
+        if not self.keep_rows and self.last_t is not None:
+            horizon = self.last_t - self.window
+            for st in self.sources.values():
+                for s in st.counters.values():
+                    s.trim_before(horizon)
+
+    def _ingest(self, row: dict[str, Any]) -> None:
+        t = float(row["t"])
+        comp = str(row.get("component"))
+        src = str(row.get("source") or comp)
+        self.first_t = t if self.first_t is None else min(self.first_t, t)
+        self.last_t = t if self.last_t is None else max(self.last_t, t)
+        if self.keep_rows:
+            self.rows.append(row)
+        st = self.sources.get((comp, src))
+        if st is None:
+            st = self.sources[(comp, src)] = SourceState(comp, src, t, t)
+        st.ingest(row)
+        if comp == "snapshots":
+            v = row.get("version")
+            if isinstance(v, int):
+                ts = _num(row.get("published_at"))
+                if self.snapshot_times.get(v) is None:
+                    self.snapshot_times[v] = ts if ts is not None else t
+        elif comp == "eval":
+            key = str(row.get("opponent", src))
+            self.evals[key] = row
+
+    def of(self, component: str) -> list[SourceState]:
+        return [st for (c, _), st in sorted(self.sources.items()) if c == component]
+
+    # -- times ------------------------------------------------------------------------------------
+    def _reference_time(self, now: float | None) -> float | None:
+        if now is not None:
+            return now
+        cands = [self.last_t]
+        if self.catalog and self.catalog.finished_times:
+            cands.append(self.catalog.finished_times[-1])
+        cands += [ts for ts in self.snapshot_times.values() if ts is not None]
+        cands = [c for c in cands if c is not None]
+        return max(cands) if cands else None
+
+    def _run_start(self) -> float | None:
+        cands = [self.first_t]
+        if self.catalog:
+            cands.append(self.catalog.started_first)
+            if self.catalog.finished_times and self.catalog.started_first is None:
+                cands.append(self.catalog.finished_times[0])
+        cands = [c for c in cands if c is not None]
+        return min(cands) if cands else None
+
+    # -- the summary ------------------------------------------------------------------------------
+    def summary(self, now: float | None = None, wall_now: float | None = None) -> dict[str, Any]:
+        """The status as a JSON-able dict (keys in docs/metrics.md).
+
+        ``now``: reference time (default: the newest thing the run wrote); ``wall_now``: the
+        reader's clock for ``idle_seconds`` (default: time.time())."""
+        as_of = self._reference_time(now)
+        start = self._run_start()
+        wall = time.time() if wall_now is None else wall_now
+        w = self.window
+        workers = self.of("worker")
+        buffers = self.of("buffer")
+        learners = self.of("learner")
+
+        latest_version = max(self.snapshot_times) if self.snapshot_times else None
+        latest_snapshot = None
+        if latest_version is not None:
+            pub = self.snapshot_times[latest_version]
+            latest_snapshot = {
+                "version": latest_version,
+                "published_at": pub,
+                "age_seconds": _round(None if pub is None or as_of is None else max(0.0, as_of - pub), 1),
+                "count": len(self.snapshot_times),
+            }
+
+        # per-source totals (for cross-checking the catalog)
+        counts: dict[str, Any] = {"catalog": None, "buffer": None, "workers": None}
+        if self.catalog is not None:
+            counts["catalog"] = {"games": self.catalog.games, "positions": self.catalog.positions,
+                                 "shards": self.catalog.shards}
+        if buffers:
+            counts["buffer"] = {
+                "games": int(sum(b.counter("games_total").last_value for b in buffers)),
+                "positions": int(sum(b.counter("positions_total").last_value for b in buffers)),
+            }
+        if workers:
+            counts["workers"] = {
+                "games": int(sum(s.counter("games_total").last_value for s in workers)),
+                "positions": int(sum(s.counter("positions_total").last_value for s in workers)),
+            }
+
+        # headline counts and rates: catalog > buffer > workers
+        games = positions = 0
+        gph = gph_start = pps = pps_start = None
+        source = "none"
+        if as_of is not None:
+            cat = self.catalog
+            if cat is not None and (cat.games > 0 or not (buffers or workers)):
+                source = "catalog"
+                games, positions = cat.games, cat.positions or 0
+                g_recent, g_since = event_counts_rate(cat.finished_times, as_of, start, w)
+                gph, gph_start = per_hour(g_recent), per_hour(g_since)
+                if cat.positions_cumsum is not None:
+                    pps, pps_start = event_counts_rate(cat.finished_times, as_of, start, w,
+                                                       cat.positions_cumsum)
+            else:
+                group = buffers if buffers else workers
+                if group:
+                    source = "buffer" if buffers else "workers"
+                    gs = [s.counter("games_total") for s in group]
+                    ps = [s.counter("positions_total") for s in group]
+                    games = int(sum(s.value_at(as_of) for s in gs))
+                    positions = int(sum(s.value_at(as_of) for s in ps))
+                    gph = per_hour(window_rate_per_second(gs, as_of, start, w))
+                    gph_start = per_hour(since_start_rate_per_second(gs, as_of, start))
+                    pps = window_rate_per_second(ps, as_of, start, w)
+                    pps_start = since_start_rate_per_second(ps, as_of, start)
+
+        # workers
+        worker_rows = []
+        for st in workers:
+            worker_rows.append(self._worker_row(st, as_of, start, latest_version))
+        active = [r for r in worker_rows if r["active"]]
+        evals_ps = sum(r["evals_per_second"] or 0.0 for r in active) if active else None
+        lags = [r["snapshot_lag_versions"] for r in active if r["snapshot_lag_versions"] is not None]
+        ages = [r["data_age_seconds"] for r in active if r["data_age_seconds"] is not None]
+
+        summary: dict[str, Any] = {
+            "run": str(self.run.root),
+            "as_of": as_of,
+            "started_at": start,
+            "elapsed_seconds": _round(None if as_of is None or start is None else as_of - start, 1),
+            "idle_seconds": _round(None if as_of is None else max(0.0, wall - as_of), 1),
+            "window_seconds": w,
+            "empty": as_of is None,
+            "counts_source": source,
+            "games": int(games),
+            "positions": int(positions),
+            "games_per_hour": _round(gph, 2),
+            "games_per_hour_since_start": _round(gph_start, 2),
+            "positions_per_second": _round(pps, 3),
+            "positions_per_second_since_start": _round(pps_start, 3),
+            "evals_per_second": _round(evals_ps, 2),
+            "latest_snapshot": latest_snapshot,
+            "snapshot_lag_versions": max(lags) if lags else None,
+            "data_age_seconds": _round(max(ages), 1) if ages else None,
+            "workers": worker_rows,
+            "active_workers": len(active),
+            "buffer": self._buffer_block(buffers, latest_version, as_of),
+            "learner": self._learner_block(learners, as_of, start),
+            "resignation": self._resign_block(workers),
+            "evaluations": [self._eval_row(r) for _, r in sorted(self.evals.items())],
+            "counts": counts,
+            "metrics_bad_lines": self._tail.bad_lines,
+        }
+        return summary
+
+    def _worker_row(self, st: SourceState, as_of: float | None, start: float | None,
+                    latest_version: int | None) -> dict[str, Any]:
+        w = self.window
+        last = st.last
+        g, p, e = st.counter("games_total"), st.counter("positions_total"), st.counter("evals_total")
+        ref = as_of if as_of is not None else st.last_t
+        wstart = start if start is not None else st.first_t
+        version = last.get("snapshot_version")
+        version = int(version) if isinstance(version, (int, float)) and not isinstance(version, bool) else None
+        lag = None if version is None or latest_version is None else max(0, latest_version - version)
+        pub = self.snapshot_times.get(version) if version is not None else None
+        age = None if pub is None else max(0.0, ref - pub)
+        evals_ps = window_rate_per_second([e], ref, wstart, w) if len(e) >= 1 and e.last_value > 0 else None
+        if evals_ps is None:
+            evals_ps = _num(last.get("evals_per_second"))
+        pps = window_rate_per_second([p], ref, wstart, w) if len(p) else _num(last.get("positions_per_second"))
+        return {
+            "id": st.source,
+            "games": int(g.value_at(ref)),
+            "positions": int(p.value_at(ref)),
+            "games_per_hour": _round(per_hour(window_rate_per_second([g], ref, wstart, w)) if len(g) else None, 2),
+            "games_per_hour_since_start": _round(per_hour(since_start_rate_per_second([g], ref, st.first_t)) if len(g) else None, 2),
+            "positions_per_second": _round(pps, 3),
+            "evals_per_second": _round(evals_ps, 2),
+            "snapshot_version": version,
+            "snapshot_lag_versions": lag,
+            "data_age_seconds": _round(age, 1),
+            "games_in_flight": last.get("games_in_flight"),
+            "restarts": g.resets,
+            "first_seen": st.first_t,
+            "last_seen": st.last_t,
+            "seconds_since_seen": _round(ref - st.last_t, 1),
+            "active": ref - st.last_t <= w,
+        }
+
+    def _buffer_block(self, buffers: list[SourceState], latest_version: int | None,
+                      as_of: float | None) -> dict[str, Any] | None:
+        if not buffers:
+            return None
+        wp = [_num(b.last.get("window_positions")) for b in buffers]
+        wc = [_num(b.last.get("window_capacity")) for b in buffers]
+        size = sum(v for v in wp if v is not None) if any(v is not None for v in wp) else None
+        cap = sum(v for v in wc if v is not None) if any(v is not None for v in wc) else None
+        newest = [b.last.get("newest_snapshot_in_data") for b in buffers]
+        newest = [int(v) for v in newest if isinstance(v, (int, float)) and not isinstance(v, bool)]
+        newest_v = max(newest) if newest else None
+        pub = self.snapshot_times.get(newest_v) if newest_v is not None else None
+        return {
+            "games": int(sum(b.counter("games_total").last_value for b in buffers)),
+            "positions": int(sum(b.counter("positions_total").last_value for b in buffers)),
+            "duplicates": int(sum(b.counter("duplicates_total").last_value for b in buffers)),
+            "shards": int(sum(b.counter("shards_total").last_value for b in buffers)),
+            "window_positions": None if size is None else int(size),
+            "window_capacity": None if cap is None else int(cap),
+            "fill": _round(size / cap, 4) if size is not None and cap else None,
+            "newest_snapshot_in_data": newest_v,
+            "data_lag_versions": None if newest_v is None or latest_version is None
+            else max(0, latest_version - newest_v),
+            "data_age_seconds": _round(None if pub is None or as_of is None else max(0.0, as_of - pub), 1),
+        }
+
+    def _learner_block(self, learners: list[SourceState], as_of: float | None,
+                       start: float | None) -> dict[str, Any] | None:
+        if not learners:
+            return None
+        st = max(learners, key=lambda s: s.last_t)
+        last = st.last
+        steps = st.counter("step")
+        sps = _num(last.get("steps_per_second"))
+        if sps is None and len(steps) >= 2 and as_of is not None:
+            sps = window_rate_per_second([steps], as_of, st.first_t, self.window)
+        step = last.get("step")
+        return {
+            "step": int(step) if isinstance(step, (int, float)) else None,
+            "steps_per_second": _round(sps, 3),
+            "loss": _num(last.get("loss")),
+            "loss_policy": _num(last.get("loss_policy")),
+            "loss_value": _num(last.get("loss_value")),
+            "loss_l2": _num(last.get("loss_l2")),
+            "samples_trained": _num(last.get("samples_trained_total")),
+            "reuse_ratio": _num(last.get("reuse_ratio")),
+            "learning_rate": _num(last.get("learning_rate")),
+            "snapshot_version": last.get("snapshot_version"),
+            "last_seen": st.last_t,
+        }
+
+    def _resign_block(self, workers: list[SourceState]) -> dict[str, Any] | None:
+        cat = self.catalog.resign if self.catalog is not None else None
+        if cat is not None and cat["disabled_games"] > 0:
+            disabled, would, fp = cat["disabled_games"], cat["would_resign_games"], cat["false_positives"]
+            origin = "catalog"
+        elif workers:
+            def total(name: str) -> float | None:
+                vals = [s.counters[name].last_value for s in workers if name in s.counters]
+                return sum(vals) if vals else None
+            d, wr, f = (total("resign_disabled_games_total"),
+                        total("resign_disabled_would_resign_total"),
+                        total("resign_false_positives_total"))
+            if d is None and f is None:
+                return None
+            disabled, fp = int(d or 0), int(f or 0)
+            would = None if wr is None else int(wr)
+            origin = "metrics"
+        else:
+            return None
+        denom = would if would is not None else disabled
+        return {
+            "disabled_games": disabled,
+            "would_resign_games": would,
+            "false_positives": fp,
+            "false_positive_rate": _round(fp / denom, 4) if denom else None,
+            "denominator": "would_resign_games" if would is not None else "disabled_games",
+            "from": origin,
+        }
+
+    @staticmethod
+    def _eval_row(row: dict[str, Any]) -> dict[str, Any]:
+        return {k: row.get(k) for k in ("t", "source", "opponent", "games", "wins", "draws",
+                                         "losses", "elo", "snapshot_version")}
+
+
+def compute_summary(run: str | os.PathLike[str], now: float | None = None,
+                    window: float = WINDOW_SECONDS) -> dict[str, Any]:
+    """One-shot status of the run directory ``run`` (what ``selfplay status --json`` prints)."""
+    mon = RunMonitor(run, window=window)
+    mon.refresh()
+    return mon.summary(now=now)
