@@ -7,28 +7,33 @@ the same code. Actions are cells numbered row-major from the top-left corner.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
 from selfplay.errors import ConfigError, IllegalMoveError
 from selfplay.games.base import Game, dihedral, dihedral_point_permutation
+from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
 
-_DIRECTIONS = ((0, 1), (1, 0), (1, 1), (1, -1))
 
+class MNKState(NamedTuple):
+    """One position; never changed in place.
 
-@dataclass(frozen=True, slots=True)
-class MNKState:
-    """Board cells (int8, 0 empty / 1 player 0 / 2 player 1), side to move, moves played,
-    winner (-1 none yet, 0 or 1), and the Zobrist hash."""
+    ``cells``: int8 (m*n,) row-major, 0 empty / 1 player 0 / 2 player 1; ``player``: side to
+    move; ``moves``: stones placed; ``winner``: -1 none yet, else 0 or 1; ``key``: Zobrist hash of
+    the stones; ``lines``: the two players' stones as bitboards (bit ``row * (m + 1) + col``, one
+    empty guard column), used to find a line of ``k`` in a few shifts."""
 
     cells: np.ndarray
     player: int
     moves: int
     winner: int
     key: int
+    lines: tuple[int, int]
+
+
+_new_state = tuple.__new__  # NamedTuple construction without the keyword-argument machinery
 
 
 class MNKGame(Game[MNKState]):
@@ -46,9 +51,14 @@ class MNKGame(Game[MNKState]):
             raise ConfigError(f"mnk option k={k} must be in 1..{max(m, n)} for a {m}x{n} board")
         self.m, self.n, self.k = m, n, k
         rng = np.random.default_rng(0x6D6E6B)
-        self._zobrist = rng.integers(1, 2**63, size=(3, m * n), dtype=np.int64)
+        self._zobrist: list[list[int]] = rng.integers(1, 2**63, size=(3, m * n), dtype=np.int64).tolist()
         self._zobrist_side = int(rng.integers(1, 2**63, dtype=np.int64))
         self._square = m == n
+        stride = m + 1  # bits per row, guard cell included
+        self._cell_bit = [1 << (a // m * stride + a % m) for a in range(m * n)]
+        # horizontal, vertical, and the two diagonals
+        self._strides = (1, stride, stride + 1, stride - 1)
+        self._no_moves = np.zeros(m * n, dtype=bool)
 
     # shape facts
     @property
@@ -76,14 +86,14 @@ class MNKGame(Game[MNKState]):
 
     # rules
     def initial_state(self) -> MNKState:
-        return MNKState(np.zeros(self.m * self.n, dtype=np.int8), 0, 0, -1, 0)
+        return _new_state(MNKState, (np.zeros(self.m * self.n, dtype=np.int8), 0, 0, -1, 0, (0, 0)))
 
     def to_play(self, state: MNKState) -> int:
         return state.player
 
     def legal_mask(self, state: MNKState) -> np.ndarray:
-        if self.is_terminal(state):
-            return np.zeros(self.num_actions, dtype=bool)
+        if state.winner >= 0 or state.moves >= self.m * self.n:
+            return self._no_moves.copy()
         return state.cells == 0
 
     def is_terminal(self, state: MNKState) -> bool:
@@ -102,32 +112,25 @@ class MNKGame(Game[MNKState]):
 
     def play(self, state: MNKState, action: int) -> MNKState:
         a = int(action)
-        if self.is_terminal(state):
-            raise IllegalMoveError(f"the game is over; move {self.action_to_text(a)} cannot be played")
-        if not 0 <= a < self.num_actions:
+        cells, player, moves, winner, key, lines = state
+        if winner >= 0 or moves >= self.m * self.n:
+            raise IllegalMoveError(f"the game is over; move {self._text_or_raw(a)} cannot be played")
+        if not 0 <= a < self.m * self.n:
             raise IllegalMoveError(f"action {a} is not a cell of the {self.m}x{self.n} board")
-        if state.cells[a] != 0:
+        if cells[a] != 0:
             raise IllegalMoveError(f"cell {self.action_to_text(a)} is already occupied")
-        cells = state.cells.copy()
-        stone = state.player + 1
+        cells = cells.copy()
+        stone = player + 1
         cells[a] = stone
-        winner = state.player if self._makes_line(cells, a, stone) else -1
-        key = state.key ^ int(self._zobrist[stone, a])
-        return MNKState(cells, 1 - state.player, state.moves + 1, winner, key)
+        mine = lines[player] | self._cell_bit[a]
+        lines = (mine, lines[1]) if player == 0 else (lines[0], mine)
+        if moves + 1 >= 2 * self.k - 1 and has_run(mine, self._strides, self.k):
+            winner = player
+        key ^= self._zobrist[stone][a]
+        return _new_state(MNKState, (cells, 1 - player, moves + 1, winner, key, lines))
 
-    def _makes_line(self, cells: np.ndarray, a: int, stone: int) -> bool:
-        r0, c0 = divmod(a, self.m)
-        for dr, dc in _DIRECTIONS:
-            count = 1
-            for sign in (1, -1):
-                r, c = r0 + sign * dr, c0 + sign * dc
-                while 0 <= r < self.n and 0 <= c < self.m and cells[r * self.m + c] == stone:
-                    count += 1
-                    r += sign * dr
-                    c += sign * dc
-            if count >= self.k:
-                return True
-        return False
+    def _text_or_raw(self, action: int) -> str:
+        return self.action_to_text(action) if 0 <= action < self.m * self.n else repr(action)
 
     # encoding
     def compact(self, state: MNKState) -> np.ndarray:
