@@ -34,6 +34,8 @@ class GameRecord:
     resign_would_have: player (0/1) whose root value first crossed the resignation threshold in
         a game with resignation disabled, or -1; that player winning anyway is a false positive.
     started_at, finished_at: Unix time in seconds.
+    num_actions: the game's number of actions A (0 = not given; the replay codec then asks the
+        game registry). :class:`GameRecordBuilder` fills it from the legal mask's length.
 
     Per-position columns (length T = number of positions = number of moves played)
     ------------------------------------------------------------------------------
@@ -77,6 +79,7 @@ class GameRecord:
     started_at: float = 0.0
     finished_at: float = 0.0
     extra: dict[str, Any] = field(default_factory=dict)
+    num_actions: int = 0
 
     @property
     def num_positions(self) -> int:
@@ -114,10 +117,12 @@ class GameRecordBuilder:
         self._root_values: list[float] = []
         self._full: list[bool] = []
         self._snapshot: list[int] = []
+        self._num_actions = 0
 
     def add_position(self, board: np.ndarray, to_play: int, action: int, legal_mask: np.ndarray,
                      policy_actions: np.ndarray, policy_weights: np.ndarray, root_value: float,
                      full_search: bool, snapshot: int) -> None:
+        self._num_actions = int(np.asarray(legal_mask).shape[-1])
         self._boards.append(np.asarray(board, dtype=np.int8))
         self._to_play.append(int(to_play))
         self._actions.append(int(action))
@@ -157,4 +162,5 @@ class GameRecordBuilder:
             resign_would_have=resign_would_have,
             started_at=self.started_at,
             finished_at=finished_at,
+            num_actions=self._num_actions,
         )
