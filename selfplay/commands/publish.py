@@ -1,0 +1,70 @@
+"""``selfplay publish RUN WEIGHTS [--parent N]``: publish a user's own trainer's weights.
+
+WEIGHTS is a ``.safetensors`` file, or a ``.pt``/``.pth`` state_dict saved with ``torch.save``
+(read with ``torch.load(weights_only=True)``, which refuses arbitrary pickled objects). The
+weights are checked against the run before anything is written: the tensor names and shapes must
+be those of the run's network — taken from the newest snapshot, or, when there is none yet, from
+the network that the run's ``run.toml`` describes. Workers pick the new version up by themselves.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+from typing import Any
+
+from selfplay.errors import SnapshotError
+from selfplay.rundir import RunDir
+from selfplay.snapshots import SnapshotStore, read_weights_file, shape_mismatches
+
+
+def reference_for_run(run: RunDir, store: SnapshotStore) -> tuple[str, dict[str, Any], dict[str, Any], dict[str, tuple[int, ...]]]:
+    """(game, game_options, architecture, name -> shape) that a snapshot of this run must have."""
+    latest = store.latest()
+    if latest is not None:
+        tensors, info = store.load(latest.version)
+        return info.game, info.game_options, info.architecture, {k: tuple(v.shape) for k, v in tensors.items()}
+    if not run.config.exists():
+        raise SnapshotError(
+            f"{run.root} has neither a snapshot nor a run.toml, so the weights cannot be checked against "
+            "the run's game and network")
+    from selfplay.loop import network_from_run_config  # the run config names game and network
+
+    net = network_from_run_config(run.config)
+    from selfplay.snapshots import net_architecture
+
+    return (net.game_name, dict(net.game_options), net_architecture(net),
+            {k: tuple(v.shape) for k, v in net.state_dict().items()})
+
+
+def run_publish(run_path: str, weights_path: str, parent: int | None) -> int:
+    run = RunDir.open(run_path)
+    store = SnapshotStore(run, source="publish")
+    tensors = read_weights_file(weights_path)
+    game, options, arch, shapes = reference_for_run(run, store)
+    problems = shape_mismatches(tensors, shapes)
+    if problems:
+        raise SnapshotError(
+            f"{weights_path} does not fit the network of run {run.root} ({game}, "
+            f"{arch.get('blocks')} blocks x {arch.get('channels')} channels): {'; '.join(problems[:6])}")
+    if parent is None:
+        parent = store.latest_version() or None
+    version = store.publish(tensors, game=game, game_options=options, architecture=arch,
+                            parent_version=parent, extra={"published_by": "selfplay publish",
+                                                          "source_file": Path(weights_path).name})
+    print(json.dumps({"version": version, "game": game, "parent_version": parent,
+                      "path": str(store.dir / f"{version:06d}.safetensors")}))
+    return 0
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "publish", help="publish your own trainer's weights as the run's next snapshot",
+        description="Publish WEIGHTS (.safetensors, or a weights-only torch state_dict .pt) as the next "
+                    "snapshot of RUN, after checking it fits the run's game and network.")
+    p.add_argument("run", metavar="RUN", help="run directory")
+    p.add_argument("weights", metavar="WEIGHTS", help=".safetensors file or torch state_dict (.pt/.pth)")
+    p.add_argument("--parent", type=int, default=None, metavar="N",
+                   help="snapshot version these weights were trained from (default: the newest)")
+    p.set_defaults(func=lambda args: run_publish(args.run, args.weights, args.parent))
