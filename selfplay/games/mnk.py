@@ -16,6 +16,9 @@ from selfplay.games.base import Game, dihedral, dihedral_point_permutation
 from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
 
+#: inclusive upper bound of ``m`` and ``n`` (the move text names columns by one letter)
+MAX_SIDE = 25
+
 
 class MNKState(NamedTuple):
     """One position; never changed in place.
@@ -45,10 +48,14 @@ class MNKGame(Game[MNKState]):
         for field, value in (("m", m), ("n", n), ("k", k)):
             if not isinstance(value, int) or isinstance(value, bool):
                 raise ConfigError(f"mnk option {field}={value!r} must be an integer")
-        if not (1 <= m <= 25 and 1 <= n <= 25):
-            raise ConfigError(f"mnk board {m}x{n} is out of range: m and n must be in 1..25")
+        for field, value in (("m", m), ("n", n)):
+            if not 1 <= value <= MAX_SIDE:
+                raise ConfigError(f"mnk option {field}={value} is out of range: it must be in 1..{MAX_SIDE}")
         if not 1 <= k <= max(m, n):
-            raise ConfigError(f"mnk option k={k} must be in 1..{max(m, n)} for a {m}x{n} board")
+            raise ConfigError(
+                f"mnk option k={k} is out of range: it must be in 1..{max(m, n)} for a {m}x{n} board, "
+                "or no line can ever be made"
+            )
         self.m, self.n, self.k = m, n, k
         rng = np.random.default_rng(0x6D6E6B)
         self._zobrist: list[list[int]] = rng.integers(1, 2**63, size=(3, m * n), dtype=np.int64).tolist()
