@@ -416,7 +416,8 @@ class RunMonitor:
         for st in workers:
             worker_rows.append(self._worker_row(st, as_of, start, latest_version))
         active = [r for r in worker_rows if r["active"]]
-        evals_ps = sum(r["evals_per_second"] or 0.0 for r in active) if active else None
+        known = [r["evals_per_second"] for r in active if r["evals_per_second"] is not None]
+        evals_ps = sum(known) if known else None
         lags = [r["snapshot_lag_versions"] for r in active if r["snapshot_lag_versions"] is not None]
         ages = [r["data_age_seconds"] for r in active if r["data_age_seconds"] is not None]
 

@@ -1,0 +1,199 @@
+"""Terminal views of a run's status: one frame (``selfplay status``) or a refreshing one
+(``selfplay watch``), drawn with rich.
+
+In an interactive terminal ``watch`` redraws in place (rich ``Live``); when stdout is a pipe or a
+file it prints plain frames one after another (no cursor control), so it never fails for want of
+a terminal.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import time
+from typing import Any, Callable
+
+from rich import box
+from rich.console import Console, Group, RenderableType
+from rich.live import Live
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+from selfplay.monitor.summary import RunMonitor
+
+Summary = dict[str, Any]
+
+
+def fmt_num(v: Any, digits: int = 1) -> str:
+    """Short human form: 1234 → '1,234'; 12345678 → '12.3M'; None → '-'."""
+    if v is None:
+        return "-"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, int):
+        return f"{v:,}" if abs(v) < 10_000_000 else f"{v / 1e6:.{digits}f}M"
+    if isinstance(v, float):
+        a = abs(v)
+        if a >= 1e7:
+            return f"{v / 1e6:.{digits}f}M"
+        if a >= 1000:
+            return f"{v:,.0f}"
+        if a >= 10:
+            return f"{v:.{digits}f}"
+        return f"{v:.{digits + 2}g}" if a > 0 else "0"
+    return str(v)
+
+
+def fmt_duration(seconds: Any) -> str:
+    """Seconds as '45s', '12m05s', '3h07m', '2d04h'; None → '-'."""
+    if seconds is None:
+        return "-"
+    s = int(round(float(seconds)))
+    if s < 60:
+        return f"{s}s"
+    if s < 3600:
+        return f"{s // 60}m{s % 60:02d}s"
+    if s < 86400:
+        return f"{s // 3600}h{(s % 3600) // 60:02d}m"
+    return f"{s // 86400}d{(s % 86400) // 3600:02d}h"
+
+
+def fmt_time(ts: Any) -> str:
+    if ts is None:
+        return "-"
+    return _dt.datetime.fromtimestamp(float(ts), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+
+
+def _kv_table(title: str, rows: list[tuple[str, str]]) -> Table:
+    t = Table(title=title, title_justify="left", show_header=False, box=None, pad_edge=False)
+    t.add_column("figure", style="bold")
+    t.add_column("value", justify="right")
+    for k, v in rows:
+        t.add_row(k, v)
+    return t
+
+
+def render_summary(s: Summary) -> RenderableType:
+    """One frame of the status view."""
+    window = fmt_duration(s.get("window_seconds"))
+    head = Text()
+    head.append(f"run {s.get('run')}", style="bold")
+    if s.get("empty"):
+        head.append("\nno data yet: no metric lines, committed games or snapshots so far")
+        return Panel(head, title="selfplay status")
+    head.append(f"\nas of {fmt_time(s.get('as_of'))} · running {fmt_duration(s.get('elapsed_seconds'))}"
+                f" · last write {fmt_duration(s.get('idle_seconds'))} ago"
+                f" · counts from {s.get('counts_source')}")
+
+    snap = s.get("latest_snapshot") or {}
+    main = _kv_table("production", [
+        ("games", fmt_num(s.get("games"))),
+        ("positions", fmt_num(s.get("positions"))),
+        (f"games/h, last {window}", fmt_num(s.get("games_per_hour"))),
+        ("games/h, since start", fmt_num(s.get("games_per_hour_since_start"))),
+        (f"positions/s, last {window}", fmt_num(s.get("positions_per_second"))),
+        ("evaluations/s", fmt_num(s.get("evals_per_second"))),
+        ("active workers", f"{s.get('active_workers', 0)} of {len(s.get('workers') or [])}"),
+    ])
+    fresh = _kv_table("freshness", [
+        ("latest snapshot", fmt_num(snap.get("version"))),
+        ("published", f"{fmt_duration(snap.get('age_seconds'))} ago" if snap.get("age_seconds") is not None else "-"),
+        ("worst lag, versions", fmt_num(s.get("snapshot_lag_versions"))),
+        ("worst data age", fmt_duration(s.get("data_age_seconds"))),
+    ])
+    b = s.get("buffer") or {}
+    if b:
+        fresh.add_row("buffer window", f"{fmt_num(b.get('window_positions'))} / {fmt_num(b.get('window_capacity'))}")
+        fill = b.get("fill")
+        fresh.add_row("buffer fill", "-" if fill is None else f"{100 * fill:.1f}%")
+        fresh.add_row("duplicates ignored", fmt_num(b.get("duplicates")))
+    ln = s.get("learner") or {}
+    learn_rows = [
+        ("step", fmt_num(ln.get("step"))),
+        ("steps/s", fmt_num(ln.get("steps_per_second"))),
+        ("loss (policy + value + l2)", f"{fmt_num(ln.get('loss'), 3)} = {fmt_num(ln.get('loss_policy'), 3)}"
+                                       f" + {fmt_num(ln.get('loss_value'), 3)} + {fmt_num(ln.get('loss_l2'), 3)}"
+         if ln else "-"),
+        ("sample reuse", fmt_num(ln.get("reuse_ratio"))),
+    ]
+    r = s.get("resignation") or {}
+    if r:
+        rate = r.get("false_positive_rate")
+        learn_rows.append(("resign false positives",
+                           f"{r.get('false_positives')} / {r.get('would_resign_games') if r.get('denominator') == 'would_resign_games' else r.get('disabled_games')}"
+                           + ("" if rate is None else f" = {100 * rate:.1f}%")))
+    learn = _kv_table("learning", learn_rows)
+    grid = Table.grid(padding=(0, 4))
+    grid.add_row(main, fresh)
+
+    parts: list[RenderableType] = [head, Text(""), grid, Text(""), learn]
+    workers = s.get("workers") or []
+    if workers:
+        wt = Table(title="workers (dim: silent for longer than the window)", title_justify="left",
+                   box=box.SIMPLE_HEAD, pad_edge=False)
+        for col, just in (("worker", "left"), ("games", "right"), ("games/h", "right"),
+                          ("pos/s", "right"), ("evals/s", "right"), ("snap", "right"),
+                          ("lag", "right"), ("age", "right"), ("live", "right"),
+                          ("seen", "right")):
+            wt.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
+        shown = sorted(workers, key=lambda w: str(w.get("id")))
+        limit = 40
+        for w in shown[:limit]:
+            style = None if w.get("active") else "dim"
+            wt.add_row(str(w.get("id")), fmt_num(w.get("games")), fmt_num(w.get("games_per_hour")),
+                       fmt_num(w.get("positions_per_second")), fmt_num(w.get("evals_per_second")),
+                       fmt_num(w.get("snapshot_version")), fmt_num(w.get("snapshot_lag_versions")),
+                       fmt_duration(w.get("data_age_seconds")), fmt_num(w.get("games_in_flight")),
+                       fmt_duration(w.get("seconds_since_seen")), style=style)
+        if len(shown) > limit:
+            wt.caption = f"{len(shown) - limit} more workers not shown (selfplay status --json lists all)"
+        parts += [Text(""), wt]
+    evals = s.get("evaluations") or []
+    if evals:
+        et = Table(title="evaluations", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+        for col in ("opponent", "games", "wins", "draws", "losses", "elo"):
+            et.add_column(col, justify="left" if col == "opponent" else "right")
+        for e in evals:
+            et.add_row(str(e.get("opponent")), *(fmt_num(e.get(k)) for k in ("games", "wins", "draws", "losses", "elo")))
+        parts += [Text(""), et]
+    return Panel(Group(*parts), title="selfplay status")
+
+
+def watch_run(run: str | os.PathLike[str], interval: float = 2.0, once: bool = False,
+              console: Console | None = None, max_frames: int | None = None,
+              on_summary: Callable[[Summary], None] | None = None) -> int:
+    """Show the run's status, refreshing every ``interval`` seconds until Ctrl-C.
+
+    ``once``: draw one frame and return. In a non-interactive console frames are printed one
+    after another. ``max_frames`` bounds the number of refreshes (tests); ``on_summary`` is
+    called with every fresh summary. Returns the number of frames drawn."""
+    console = console or Console()
+    mon = RunMonitor(run)
+    frames = 0
+
+    def frame() -> RenderableType:
+        nonlocal frames
+        mon.refresh()
+        s = mon.summary()
+        if on_summary is not None:
+            on_summary(s)
+        frames += 1
+        return render_summary(s)
+
+    if once:
+        console.print(frame())
+        return frames
+    if not console.is_terminal:
+        while max_frames is None or frames < max_frames:
+            console.print(frame())
+            console.file.flush()
+            if max_frames is not None and frames >= max_frames:
+                break
+            time.sleep(interval)
+        return frames
+    with Live(frame(), console=console, refresh_per_second=4, transient=False) as live:
+        while max_frames is None or frames < max_frames:
+            time.sleep(interval)
+            live.update(frame())
+    return frames
