@@ -1,0 +1,500 @@
+"""Compiled core of the Go rules: incremental groups, liberty bitsets and Zobrist hashes.
+
+Everything here is a numba function over small numpy arrays, so that copying a position is
+copying two arrays and the search's per-simulation rules cost stays in the microseconds.
+
+Layout of one position (``N`` points, numbered row-major from the top-left corner):
+
+- ``board``: int8 (N,) — 0 empty, 1 black, 2 white.
+- ``grp``: int64 (N, 4 + W) — one row per point; only rows of occupied points mean anything:
+  column ``REP`` the representative point of the point's group (-1 when empty), ``NEXT`` the
+  next stone of the group (a circular list through all its stones), and, on the representative's
+  row only, ``SIZE`` the number of stones, ``HASH`` the xor of the group's stone Zobrist keys and
+  ``LIB0 .. LIB0+W-1`` the group's liberties as a bitset of W = ceil(N / 64) words.
+- ``seen``: int64 (M,) sorted — Zobrist keys of every board position reached so far in the game
+  (the current one included), for positional superko.
+
+A board key is the xor of ``zob[colour, point]`` over all stones (board only: positional
+superko compares whole-board positions, not side to move). The empty board's key is 0.
+
+Status codes returned by the move functions: ``OK`` legal, ``OCCUPIED``, ``SUICIDE``,
+``REPEAT`` (the move recreates an earlier position: superko, or the previous one under the
+plain ko rule).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+REP, NEXT, SIZE, HASH, LIB0 = 0, 1, 2, 3, 4
+OK, OCCUPIED, SUICIDE, REPEAT = 0, 1, 2, 3
+
+
+# ---- liberty bitsets ----------------------------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def _bit(p):
+    return np.int64(1) << np.int64(p & 63)
+
+
+@njit(cache=True, inline="always")
+def _lib_set(grp, r, p):
+    grp[r, LIB0 + (p >> 6)] |= _bit(p)
+
+
+@njit(cache=True, inline="always")
+def _lib_clear(grp, r, p):
+    grp[r, LIB0 + (p >> 6)] &= ~_bit(p)
+
+
+@njit(cache=True, inline="always")
+def _lib_none(grp, r, nwords):
+    for w in range(nwords):
+        if grp[r, LIB0 + w] != 0:
+            return False
+    return True
+
+
+@njit(cache=True, inline="always")
+def _lib_only(grp, r, p, nwords):
+    """True when point ``p`` is the group's one and only liberty."""
+    wp = p >> 6
+    for w in range(nwords):
+        want = _bit(p) if w == wp else np.int64(0)
+        if grp[r, LIB0 + w] != want:
+            return False
+    return True
+
+
+@njit(cache=True, inline="always")
+def _lib_other_than(grp, r, p, nwords):
+    """True when the group has a liberty other than point ``p``."""
+    wp = p >> 6
+    for w in range(nwords):
+        v = grp[r, LIB0 + w]
+        if w == wp:
+            v &= ~_bit(p)
+        if v != 0:
+            return True
+    return False
+
+
+@njit(cache=True)
+def liberty_count(grp, r, nwords):
+    """Number of liberties of the group represented by ``r`` (popcount of its bitset)."""
+    total = 0
+    for w in range(nwords):
+        v = grp[r, LIB0 + w]
+        while v != 0:
+            v &= v - 1
+            total += 1
+    return total
+
+
+# ---- the position-key set (sorted array) --------------------------------------------------------
+
+@njit(cache=True, inline="always")
+def _contains(seen, n, key):
+    lo, hi = 0, n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        v = seen[mid]
+        if v < key:
+            lo = mid + 1
+        elif v > key:
+            hi = mid
+        else:
+            return True
+    return False
+
+
+@njit(cache=True)
+def _insert_sorted(seen, key):
+    """New sorted array with ``key`` added (``seen`` itself when already present)."""
+    n = seen.shape[0]
+    lo, hi = 0, n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if seen[mid] < key:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < n and seen[lo] == key:
+        return seen
+    out = np.empty(n + 1, dtype=np.int64)
+    out[:lo] = seen[:lo]
+    out[lo] = key
+    out[lo + 1:] = seen[lo:]
+    return out
+
+
+# ---- group surgery ------------------------------------------------------------------------------
+
+@njit(cache=True)
+def _merge(grp, a, b, nwords):
+    """Join the groups represented by ``a`` and ``b``; return the new representative."""
+    if grp[a, SIZE] < grp[b, SIZE]:
+        a, b = b, a
+    s = b
+    while True:
+        grp[s, REP] = a
+        s = grp[s, NEXT]
+        if s == b:
+            break
+    na = grp[a, NEXT]
+    grp[a, NEXT] = grp[b, NEXT]
+    grp[b, NEXT] = na
+    grp[a, SIZE] += grp[b, SIZE]
+    grp[a, HASH] ^= grp[b, HASH]
+    for w in range(nwords):
+        grp[a, LIB0 + w] |= grp[b, LIB0 + w]
+    return a
+
+
+@njit(cache=True)
+def _remove_group(board, grp, r, nbr):
+    """Take the group represented by ``r`` off the board; neighbours gain the liberties.
+    Returns the number of stones removed."""
+    s = r
+    count = 0
+    while True:
+        board[s] = 0
+        count += 1
+        s = grp[s, NEXT]
+        if s == r:
+            break
+    s = r
+    while True:
+        nxt = grp[s, NEXT]
+        for k in range(4):
+            q = nbr[s, k]
+            if q >= 0 and board[q] != 0:
+                _lib_set(grp, grp[q, REP], s)
+        grp[s, REP] = -1
+        s = nxt
+        if s == r:
+            break
+    return count
+
+
+@njit(cache=True)
+def play_inplace(board, grp, key, color, p, allow_suicide, nbr, zob, nwords):
+    """Put a ``color`` stone on empty point ``p``, capture, and (if allowed) remove a suicidal
+    group. Changes ``board``/``grp`` in place. Returns (status, new key, stones captured)."""
+    opp = 3 - color
+    board[p] = color
+    grp[p, REP] = p
+    grp[p, NEXT] = p
+    grp[p, SIZE] = 1
+    grp[p, HASH] = zob[color, p]
+    for w in range(nwords):
+        grp[p, LIB0 + w] = 0
+    key ^= zob[color, p]
+    for k in range(4):
+        q = nbr[p, k]
+        if q < 0:
+            continue
+        if board[q] == 0:
+            _lib_set(grp, p, q)
+        else:
+            _lib_clear(grp, grp[q, REP], p)
+    rep = p
+    for k in range(4):
+        q = nbr[p, k]
+        if q >= 0 and board[q] == color:
+            r = grp[q, REP]
+            if r != rep:
+                rep = _merge(grp, rep, r, nwords)
+    captured = 0
+    for k in range(4):
+        q = nbr[p, k]
+        if q >= 0 and board[q] == opp:
+            r = grp[q, REP]
+            if _lib_none(grp, r, nwords):
+                key ^= grp[r, HASH]
+                captured += _remove_group(board, grp, r, nbr)
+    if captured == 0 and _lib_none(grp, rep, nwords):
+        if not allow_suicide:
+            return SUICIDE, key, 0
+        key ^= grp[rep, HASH]
+        _remove_group(board, grp, rep, nbr)
+    return OK, key, captured
+
+
+@njit(cache=True, inline="always")
+def move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords):
+    """Without changing anything: status (OK / OCCUPIED / SUICIDE) of a ``color`` stone at ``p``
+    and the key of the board it would make."""
+    if board[p] != 0:
+        return OCCUPIED, key
+    nk = key ^ zob[color, p]
+    has_lib = False
+    c0 = -1
+    c1 = -1
+    c2 = -1
+    o0 = -1
+    o1 = -1
+    o2 = -1
+    o3 = -1
+    for k in range(4):
+        q = nbr[p, k]
+        if q < 0:
+            continue
+        v = board[q]
+        if v == 0:
+            has_lib = True
+        elif v == color:
+            r = grp[q, REP]
+            if _lib_other_than(grp, r, p, nwords):
+                has_lib = True
+            elif r != o0 and r != o1 and r != o2 and r != o3:
+                if o0 < 0:
+                    o0 = r
+                elif o1 < 0:
+                    o1 = r
+                elif o2 < 0:
+                    o2 = r
+                else:
+                    o3 = r
+        else:
+            r = grp[q, REP]
+            if _lib_only(grp, r, p, nwords) and r != c0 and r != c1 and r != c2:
+                nk ^= grp[r, HASH]
+                has_lib = True
+                if c0 < 0:
+                    c0 = r
+                elif c1 < 0:
+                    c1 = r
+                else:
+                    c2 = r
+    if has_lib:
+        return OK, nk
+    if not allow_suicide:
+        return SUICIDE, key
+    # Suicide: the new stone and every friendly group it touches (all in atari on p) go.
+    nk = key
+    if o0 >= 0:
+        nk ^= grp[o0, HASH]
+    if o1 >= 0:
+        nk ^= grp[o1, HASH]
+    if o2 >= 0:
+        nk ^= grp[o2, HASH]
+    if o3 >= 0:
+        nk ^= grp[o3, HASH]
+    return OK, nk
+
+
+@njit(cache=True, inline="always")
+def _repeats(nk, seen, nseen, prev_key, superko):
+    if superko:
+        return _contains(seen, nseen, nk)
+    return nk == prev_key
+
+
+@njit(cache=True)
+def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob,
+                 nwords, out):
+    """Fill ``out[:N]`` with the legality of a ``color`` stone on each point (pass not touched)."""
+    n = board.shape[0]
+    nseen = seen.shape[0]
+    for p in range(n):
+        if board[p] != 0:
+            out[p] = False
+            continue
+        st, nk = move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords)
+        out[p] = st == OK and not _repeats(nk, seen, nseen, prev_key, superko)
+
+
+@njit(cache=True)
+def play_copy(board, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
+              nwords):
+    """Play a ``color`` stone at ``p`` on copies. Returns (status, key, board, grp, seen); on a
+    non-OK status the inputs are returned unchanged."""
+    if board[p] != 0:
+        return OCCUPIED, key, board, grp, seen
+    nb = board.copy()
+    ng = grp.copy()
+    st, nk, _ = play_inplace(nb, ng, key, color, p, allow_suicide, nbr, zob, nwords)
+    if st != OK:
+        return st, key, board, grp, seen
+    if _repeats(nk, seen, seen.shape[0], prev_key, superko):
+        return REPEAT, key, board, grp, seen
+    return OK, nk, nb, ng, _insert_sorted(seen, nk)
+
+
+# ---- whole-board helpers (setup positions, legality of a position, scoring) ---------------------
+
+@njit(cache=True)
+def build_groups(board, nbr, zob, nwords):
+    """Group table and key of an arbitrary board (e.g. SGF setup stones). Groups with no
+    liberty are kept as they are (see :func:`all_groups_have_liberties`)."""
+    n = board.shape[0]
+    grp = np.zeros((n, LIB0 + nwords), dtype=np.int64)
+    key = np.int64(0)
+    for p in range(n):
+        grp[p, REP] = -1
+        c = board[p]
+        if c == 0:
+            continue
+        grp[p, REP] = p
+        grp[p, NEXT] = p
+        grp[p, SIZE] = 1
+        grp[p, HASH] = zob[c, p]
+        key ^= zob[c, p]
+        for k in range(4):
+            q = nbr[p, k]
+            if q >= 0 and board[q] == 0:
+                _lib_set(grp, p, q)
+    for p in range(n):
+        c = board[p]
+        if c == 0:
+            continue
+        for k in range(4):
+            q = nbr[p, k]
+            if q >= 0 and board[q] == c:
+                a = grp[p, REP]
+                b = grp[q, REP]
+                if a != b:
+                    _merge(grp, a, b, nwords)
+    return grp, key
+
+
+@njit(cache=True)
+def all_groups_have_liberties(board, grp, nwords):
+    """True when every group on the board has at least one liberty (a legal Go position)."""
+    for p in range(board.shape[0]):
+        if board[p] != 0 and grp[p, REP] == p and _lib_none(grp, p, nwords):
+            return False
+    return True
+
+
+@njit(cache=True)
+def area_score(board, nbr):
+    """Tromp–Taylor area: (black, white) = stones of each colour plus the empty points that
+    reach only that colour."""
+    n = board.shape[0]
+    black = 0
+    white = 0
+    seen = np.zeros(n, dtype=np.bool_)
+    stack = np.empty(n, dtype=np.int64)
+    for p in range(n):
+        c = board[p]
+        if c == 1:
+            black += 1
+        elif c == 2:
+            white += 1
+        elif not seen[p]:
+            reach = 0
+            size = 0
+            top = 0
+            stack[top] = p
+            top += 1
+            seen[p] = True
+            while top > 0:
+                top -= 1
+                s = stack[top]
+                size += 1
+                for k in range(4):
+                    q = nbr[s, k]
+                    if q < 0:
+                        continue
+                    v = board[q]
+                    if v == 0:
+                        if not seen[q]:
+                            seen[q] = True
+                            stack[top] = q
+                            top += 1
+                    else:
+                        reach |= v
+            if reach == 1:
+                black += size
+            elif reach == 2:
+                white += size
+    return black, white
+
+
+# ---- random playouts entirely in compiled code (for the rules benchmark) ------------------------
+
+@njit(cache=True, inline="always")
+def _fills_own_eye(board, grp, p, color, nbr, nwords):
+    """True when every neighbour of ``p`` is a ``color`` stone whose group has another liberty."""
+    for k in range(4):
+        q = nbr[p, k]
+        if q < 0:
+            continue
+        if board[q] != color:
+            return False
+        if not _lib_other_than(grp, grp[q, REP], p, nwords):
+            return False
+    return True
+
+
+@njit(cache=True)
+def random_playouts(num_games, seed, n, nbr, zob, nwords, allow_suicide, superko, max_moves):
+    """Play ``num_games`` random games from the empty board; return the moves played (passes
+    included). Each move is a uniformly random legal point (superko and suicide checked) that
+    does not fill one of the mover's own one-point eyes; a player with no such point passes.
+    A game ends after two passes in a row or ``max_moves`` moves."""
+    np.random.seed(seed)
+    total = 0
+    cand = np.empty(n, dtype=np.int64)
+    seen = np.empty(max_moves + 2, dtype=np.int64)
+    for _ in range(num_games):
+        board = np.zeros(n, dtype=np.int8)
+        grp = np.zeros((n, LIB0 + nwords), dtype=np.int64)
+        for p in range(n):
+            grp[p, REP] = -1
+        key = np.int64(0)
+        prev_key = np.int64(0)
+        seen[0] = 0
+        nseen = 1
+        color = 1
+        passes = 0
+        moves = 0
+        while passes < 2 and moves < max_moves:
+            ncand = 0
+            for p in range(n):
+                if board[p] == 0:
+                    cand[ncand] = p
+                    ncand += 1
+            chosen = -1
+            chosen_key = key
+            while ncand > 0:
+                i = np.random.randint(ncand)
+                p = cand[i]
+                ncand -= 1
+                cand[i] = cand[ncand]
+                if _fills_own_eye(board, grp, p, color, nbr, nwords):
+                    continue
+                st, nk = move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords)
+                if st != OK or _repeats(nk, seen, nseen, prev_key, superko):
+                    continue
+                chosen = p
+                chosen_key = nk
+                break
+            prev_key = key
+            if chosen < 0:
+                passes += 1
+            else:
+                passes = 0
+                _, key, _ = play_inplace(board, grp, key, color, chosen, allow_suicide, nbr, zob,
+                                         nwords)
+                if key != chosen_key:
+                    raise RuntimeError("incremental key disagrees with the predicted key")
+                # insert into the sorted prefix seen[:nseen]
+                j = nseen
+                while j > 0 and seen[j - 1] > key:
+                    seen[j] = seen[j - 1]
+                    j -= 1
+                if not (j > 0 and seen[j - 1] == key):
+                    seen[j] = key
+                    nseen += 1
+                else:
+                    # already present (possible only without superko): undo the shift
+                    for t in range(j, nseen):
+                        seen[t] = seen[t + 1]
+            color = 3 - color
+            moves += 1
+        total += moves
+    return total
