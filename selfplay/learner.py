@@ -33,6 +33,7 @@ import hashlib
 import json
 import math
 import time
+from collections import deque
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping
@@ -170,7 +171,8 @@ class Learner:
         self.checkpoint_dir = store.run.root / "learner"
         self._last_metrics_t = time.time()
         self._last_metrics_step = 0
-        self.history: list[dict[str, float]] = []
+        #: the newest per-step losses and counters (bounded), for plots and summaries
+        self.history: deque[dict[str, float]] = deque(maxlen=100_000)
 
     # ---- the reuse ratio ---------------------------------------------------------------------
     def note_generated(self, positions_generated: int) -> None:
