@@ -122,16 +122,20 @@ def random_playouts(game: Game, seconds: float, rng: np.random.Generator) -> tup
             return moves, games, now - start
 
 
-def sample_positions(game: Game, count: int, rng: np.random.Generator) -> list[Any]:
-    """``count`` non-terminal positions met in random games (every position of each game)."""
-    positions: list[Any] = []
-    while len(positions) < count:
+def sample_positions(game: Game, count: int, rng: np.random.Generator, min_games: int = 8) -> list[Any]:
+    """``count`` non-terminal positions drawn at random from at least ``min_games`` random
+    games, so that openings, middle games and endings all appear."""
+    pool: list[Any] = []
+    games = 0
+    while games < min_games or len(pool) < count:
         state = game.initial_state()
-        while not game.is_terminal(state) and len(positions) < count:
-            positions.append(state)
+        while not game.is_terminal(state):
+            pool.append(state)
             legal = game.legal_actions(state)
             state = game.play(state, legal[rng.integers(len(legal))])
-    return positions
+        games += 1
+    picks = rng.choice(len(pool), size=count, replace=False)
+    return [pool[int(i)] for i in picks]
 
 
 def legal_mask_rate(game: Game, positions: list[Any], seconds: float) -> float:
@@ -149,21 +153,27 @@ def legal_mask_rate(game: Game, positions: list[Any], seconds: float) -> float:
             return done / (now - start)
 
 
-def kernel_rate(game: Any, seconds: float, seed: int) -> float:
-    """Moves per second of the game's own compiled playout loop, over about ``seconds``."""
+def kernel_calibrate(game: Any, seconds: float, seed: int) -> int:
+    """Number of games for which the game's compiled playout loop runs about ``seconds``."""
     game.benchmark_playouts(1, seed)  # warm-up: compilation or cache load is not timed
     num_games = 1
     while True:
         start = time.perf_counter()
-        moves = int(game.benchmark_playouts(num_games, seed))
+        game.benchmark_playouts(num_games, seed)
         elapsed = time.perf_counter() - start
-        if elapsed >= seconds or num_games >= 1 << 24:
-            if moves <= 0:
-                raise ConfigError(f"{game.name}: benchmark_playouts reported {moves} moves")
-            return moves / elapsed
-        # grow towards the requested duration (at most 8x per step)
-        scale = min(8.0, max(2.0, seconds / max(elapsed, 1e-6)))
-        num_games = int(num_games * scale) + 1
+        if elapsed >= 0.5 * seconds or num_games >= 1 << 24:
+            return max(1, int(num_games * seconds / max(elapsed, 1e-9)))
+        num_games = int(num_games * min(8.0, max(2.0, 0.5 * seconds / max(elapsed, 1e-9)))) + 1
+
+
+def kernel_rate(game: Any, num_games: int, seed: int) -> float:
+    """Moves per second of the game's own compiled playout loop over ``num_games`` games."""
+    start = time.perf_counter()
+    moves = int(game.benchmark_playouts(num_games, seed))
+    elapsed = time.perf_counter() - start
+    if moves <= 0:
+        raise ConfigError(f"{game.name}: benchmark_playouts reported {moves} moves for {num_games} games")
+    return moves / elapsed
 
 
 def _median(values: list[float]) -> float:
@@ -202,7 +212,8 @@ def measure_game(key: str, seconds: float, repeats: int, seed: int,
     if hasattr(game, "benchmark_playouts"):
         if progress:
             progress(f"{label}: compiled playouts")
-        kernel = [kernel_rate(game, seconds, seed + i) for i in range(repeats)]
+        num_games = kernel_calibrate(game, seconds, seed)
+        kernel = [kernel_rate(game, num_games, seed + 1 + i) for i in range(repeats)]
         figures.kernel_moves_per_second = _median(kernel)
         figures.kernel_moves_per_second_repeats = kernel
     return figures
@@ -243,6 +254,9 @@ def format_table(figures: dict[str, GameFigures], seconds: float, repeats: int) 
         lines.append("  ".join(c.ljust(widths[0]) if j == 0 else c.rjust(widths[j]) for j, c in enumerate(r)))
         if i == 0:
             lines.append("  ".join("-" * w for w in widths))
+    if any(f.kernel_moves_per_second is not None for f in figures.values()):
+        lines.append("kernel moves/s: the game's own compiled random-playout loop (its playout policy, "
+                     "no Python per move)")
     target = _target(figures)
     if target is not None:
         go9 = figures["go9"]
