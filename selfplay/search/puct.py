@@ -1,0 +1,61 @@
+"""PUCT selection, root Dirichlet noise and temperature move choice (AlphaGo Zero / AlphaZero).
+
+Selection (Silver et al. 2017, "Mastering the game of Go without human knowledge", Methods,
+"Select"): at node s pick ``argmax_a Q(s, a) + U(s, a)`` with
+
+    U(s, a) = c_puct * P(s, a) * sqrt(sum_b N(s, b)) / (1 + N(s, a))
+
+where Q is the mean backed-up value from the view of the player to move at s. We take
+``sqrt(max(1, sum_b N))`` so that the first visit of a fresh node follows the prior rather than
+the lowest index. Unvisited moves get the first-play-urgency value ``v(s) - fpu_reduction``.
+
+Every function works on a batch of k nodes at once (rows), so that one call serves the nodes
+that all games in a worker are visiting at the same depth.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def puct_select(P: np.ndarray, N: np.ndarray, W: np.ndarray, legal: np.ndarray, node_value: np.ndarray,
+                c_puct: float, fpu_reduction: float = 0.0) -> np.ndarray:
+    """Chosen action per row. P, N, W float32 (k, A); legal bool (k, A); node_value (k,) the
+    node's own value estimate from its mover's view. Returns int64 (k,)."""
+    total = N.sum(axis=1)
+    q = np.empty_like(W)
+    q[:] = (node_value - fpu_reduction)[:, None]
+    visited = N > 0
+    np.divide(W, N, out=q, where=visited)
+    scale = c_puct * np.sqrt(np.maximum(total, 1.0))
+    score = q + P * (scale[:, None] / (1.0 + N))
+    score[~legal] = -np.inf
+    return score.argmax(axis=1)
+
+
+def add_dirichlet_noise(priors: np.ndarray, legal: np.ndarray, epsilon: float, alpha: float,
+                        rng: np.random.Generator) -> np.ndarray:
+    """Root priors ``(1 - eps) P + eps * eta`` with ``eta ~ Dir(alpha)`` over the legal moves
+    (AlphaGo Zero, Methods: "Self-play"). Returns a new float32 (A,) array."""
+    out = priors.astype(np.float32, copy=True)
+    idx = np.flatnonzero(legal)
+    if epsilon <= 0 or idx.size == 0:
+        return out
+    eta = rng.dirichlet(np.full(idx.size, alpha))
+    out[idx] = (1.0 - epsilon) * out[idx] + epsilon * eta
+    return out
+
+
+def choose_by_visits(visits: np.ndarray, temperature: float, rng: np.random.Generator) -> int:
+    """Move from root visit counts: with probability proportional to ``N^(1/T)``; for T = 0 the
+    most visited move, ties broken uniformly at random (AlphaGo Zero, Methods: "Play")."""
+    visits = np.asarray(visits, dtype=np.float64)
+    if visits.sum() <= 0:
+        raise ValueError("no root move was visited")
+    if temperature <= 1e-3:
+        best = np.flatnonzero(visits == visits.max())
+        return int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
+    logw = np.where(visits > 0, np.log(np.maximum(visits, 1e-300)) / temperature, -np.inf)
+    w = np.exp(logw - logw.max())
+    w /= w.sum()
+    return int(rng.choice(visits.size, p=w))
