@@ -1,0 +1,269 @@
+"""The run's SQLite catalog (RUN/catalog.sqlite): one row per committed game and per shard.
+
+Tables (column meanings in ``docs/record-format.md``):
+
+- ``games``: ``game_id`` UNIQUE (a retried write of a game cannot add it twice), its ``shard``
+  and ``frame_offset``, ``game``, ``worker``, ``positions``, ``length`` (moves played),
+  ``result`` (player 0's view), ``snapshot_min``/``snapshot_max``, ``started_at``/``finished_at``
+  (Unix s), ``resigned``, ``resign_disabled``, ``resign_would_have``, ``full_search_positions``,
+  ``added_at``; ``seq`` gives the commit order.
+- ``shards``: readable shards only: ``name``, ``games``, ``positions``, ``bytes``, ``crc32`` (of
+  the whole file), ``snapshot_min``/``snapshot_max``, ``created_at``, ``writer``, ``schema_version``.
+- ``quarantine``: shards moved to RUN/quarantine/ with the reason.
+- ``counters``: ``duplicates_total`` (retried writes ignored).
+
+The database runs in WAL mode, so readers in other processes (monitoring, a trainer) read while
+the writer commits. Read-only users open it with ``Catalog(path, readonly=True)``.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+from selfplay.errors import FormatError
+
+CATALOG_VERSION = 1
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS shards (
+    name TEXT PRIMARY KEY,
+    games INTEGER NOT NULL,
+    positions INTEGER NOT NULL,
+    bytes INTEGER NOT NULL,
+    crc32 INTEGER NOT NULL,
+    snapshot_min INTEGER,
+    snapshot_max INTEGER,
+    created_at REAL NOT NULL,
+    writer TEXT NOT NULL,
+    schema_version INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS games (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    game_id TEXT NOT NULL UNIQUE,
+    shard TEXT NOT NULL,
+    frame_offset INTEGER NOT NULL,
+    game TEXT NOT NULL,
+    worker TEXT NOT NULL,
+    positions INTEGER NOT NULL,
+    length INTEGER NOT NULL,
+    result INTEGER NOT NULL,
+    snapshot_min INTEGER,
+    snapshot_max INTEGER,
+    started_at REAL,
+    finished_at REAL,
+    resigned INTEGER NOT NULL,
+    resign_disabled INTEGER NOT NULL,
+    resign_would_have INTEGER NOT NULL,
+    full_search_positions INTEGER NOT NULL,
+    added_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS games_by_shard ON games (shard);
+CREATE TABLE IF NOT EXISTS quarantine (
+    name TEXT PRIMARY KEY,
+    reason TEXT NOT NULL,
+    moved_at REAL NOT NULL,
+    games_lost INTEGER NOT NULL,
+    games_salvaged INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS counters (name TEXT PRIMARY KEY, value INTEGER NOT NULL);
+"""
+
+GAME_COLUMNS = ("game_id", "shard", "frame_offset", "game", "worker", "positions", "length",
+                "result", "snapshot_min", "snapshot_max", "started_at", "finished_at", "resigned",
+                "resign_disabled", "resign_would_have", "full_search_positions", "added_at")
+SHARD_COLUMNS = ("name", "games", "positions", "bytes", "crc32", "snapshot_min", "snapshot_max",
+                 "created_at", "writer", "schema_version")
+
+
+@dataclass
+class ShardRow:
+    """One row of the ``shards`` table."""
+
+    name: str
+    games: int
+    positions: int
+    bytes: int
+    crc32: int
+    snapshot_min: int | None
+    snapshot_max: int | None
+    created_at: float
+    writer: str
+    schema_version: int
+
+
+@dataclass
+class CatalogTotals:
+    """Committed counts (what the ``buffer`` metric lines report)."""
+
+    games: int
+    positions: int
+    shards: int
+    duplicates: int
+    newest_snapshot: int | None
+
+
+def game_row(rec: Any, shard: str, offset: int, added_at: float) -> tuple:
+    """The ``games`` row of record ``rec`` stored at ``offset`` in ``shard``."""
+    t = rec.num_positions
+    snap = rec.snapshot
+    return (rec.game_id, shard, offset, rec.game, rec.worker_id, t, t, int(rec.result),
+            int(snap.min()) if t else None, int(snap.max()) if t else None,
+            float(rec.started_at), float(rec.finished_at), int(bool(rec.resigned)),
+            int(bool(rec.resign_disabled)), int(rec.resign_would_have),
+            int(rec.full_search.sum()), added_at)
+
+
+class Catalog:
+    """Connection to one catalog.sqlite."""
+
+    def __init__(self, path: str | Path, *, readonly: bool = False, timeout: float = 30.0) -> None:
+        self.path = Path(path)
+        self.readonly = readonly
+        try:
+            if readonly:
+                if not self.path.exists():
+                    raise FormatError(f"catalog {str(self.path)!r} does not exist")
+                self.con = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=timeout,
+                                           isolation_level=None, check_same_thread=False)
+            else:
+                self.con = sqlite3.connect(self.path, timeout=timeout, isolation_level=None,
+                                           check_same_thread=False)
+                self.con.execute("PRAGMA journal_mode=WAL")
+                # shards are fsynced and re-indexed on recovery, so NORMAL is enough here
+                self.con.execute("PRAGMA synchronous=NORMAL")
+                self.con.executescript(_SCHEMA)
+                self._check_version()
+        except sqlite3.DatabaseError as exc:
+            raise FormatError(f"catalog {str(self.path)!r} cannot be opened: {exc}") from exc
+
+    def _check_version(self) -> None:
+        row = self.con.execute("SELECT value FROM meta WHERE key='catalog_version'").fetchone()
+        if row is None:
+            self.con.execute("INSERT INTO meta VALUES ('catalog_version', ?)", (str(CATALOG_VERSION),))
+        elif int(row[0]) > CATALOG_VERSION:
+            raise FormatError(f"catalog {str(self.path)!r} has version {row[0]}, newer than this "
+                              f"code understands ({CATALOG_VERSION}); upgrade plyfoundry")
+
+    def close(self) -> None:
+        self.con.close()
+
+    # ---- writing (one transaction each) ------------------------------------------------------
+    def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0) -> int:
+        """Insert a shard and its games in one transaction; returns how many game rows were new
+        (rows whose game_id is already known are ignored and added to ``duplicates_total``)."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
+                cur.execute("ROLLBACK")  # already indexed (by another writer's recovery)
+                return 0
+            before = self.con.total_changes
+            cur.executemany(
+                f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
+                f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
+            inserted = self.con.total_changes - before
+            ignored = len(games) - inserted
+            positions = int(cur.execute(
+                "SELECT coalesce(sum(positions), 0) FROM games WHERE shard=?",
+                (shard.name,)).fetchone()[0])
+            # the shard row is written even when every game was a duplicate, so recovery does
+            # not index the file again
+            cur.execute(f"INSERT INTO shards ({', '.join(SHARD_COLUMNS)}) "
+                        f"VALUES ({', '.join('?' * len(SHARD_COLUMNS))})",
+                        (shard.name, inserted, positions, shard.bytes, shard.crc32,
+                         shard.snapshot_min, shard.snapshot_max, shard.created_at,
+                         shard.writer, shard.schema_version))
+            self._bump(cur, "duplicates_total", duplicates + ignored)
+            cur.execute("COMMIT")
+        except BaseException:
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
+            raise
+        return inserted
+
+    def add_duplicates(self, n: int) -> None:
+        if n:
+            cur = self.con.cursor()
+            cur.execute("BEGIN IMMEDIATE")
+            self._bump(cur, "duplicates_total", n)
+            cur.execute("COMMIT")
+
+    @staticmethod
+    def _bump(cur: sqlite3.Cursor, name: str, n: int) -> None:
+        if n:
+            cur.execute("INSERT INTO counters VALUES (?, ?) ON CONFLICT(name) DO UPDATE SET "
+                        "value = value + excluded.value", (name, n))
+
+    def quarantine_shard(self, name: str, reason: str, games_lost: int, games_salvaged: int) -> None:
+        """Forget shard ``name`` and its games (they now live in a salvage shard or are lost),
+        and note why in ``quarantine``."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            cur.execute("DELETE FROM games WHERE shard=?", (name,))
+            cur.execute("DELETE FROM shards WHERE name=?", (name,))
+            cur.execute("INSERT OR REPLACE INTO quarantine VALUES (?, ?, ?, ?, ?)",
+                        (name, reason, time.time(), games_lost, games_salvaged))
+            cur.execute("COMMIT")
+        except BaseException:
+            cur.execute("ROLLBACK")
+            raise
+
+    # ---- reading -----------------------------------------------------------------------------
+    def known_ids(self, ids: Iterable[str]) -> set[str]:
+        """Which of ``ids`` are already committed."""
+        ids = list(ids)
+        found: set[str] = set()
+        for i in range(0, len(ids), 500):
+            chunk = ids[i:i + 500]
+            q = f"SELECT game_id FROM games WHERE game_id IN ({', '.join('?' * len(chunk))})"
+            found.update(r[0] for r in self.con.execute(q, chunk))
+        return found
+
+    def shards(self, after: str | None = None) -> list[ShardRow]:
+        """Readable shards in commit order (those committed after shard ``after`` if given)."""
+        q = f"SELECT {', '.join(SHARD_COLUMNS)} FROM shards"
+        args: tuple = ()
+        if after is not None:
+            q += " WHERE rowid > (SELECT rowid FROM shards WHERE name=?)"
+            args = (after,)
+        return [ShardRow(*r) for r in self.con.execute(q + " ORDER BY rowid", args)]
+
+    def shards_after_rowid(self, rowid: int) -> list[tuple[int, ShardRow]]:
+        """(rowid, shard) of shards committed after ``rowid``, in commit order."""
+        q = f"SELECT rowid, {', '.join(SHARD_COLUMNS)} FROM shards WHERE rowid > ? ORDER BY rowid"
+        return [(r[0], ShardRow(*r[1:])) for r in self.con.execute(q, (rowid,))]
+
+    def shard_names(self) -> set[str]:
+        return {r[0] for r in self.con.execute("SELECT name FROM shards")}
+
+    def quarantined_names(self) -> set[str]:
+        return {r[0] for r in self.con.execute("SELECT name FROM quarantine")}
+
+    def game_offsets(self, shard: str) -> dict[int, str]:
+        """frame offset -> game_id of the games the catalog credits to ``shard``."""
+        return {int(r[0]): r[1] for r in
+                self.con.execute("SELECT frame_offset, game_id FROM games WHERE shard=?", (shard,))}
+
+    def game_location(self, game_id: str) -> tuple[str, int] | None:
+        r = self.con.execute("SELECT shard, frame_offset FROM games WHERE game_id=?", (game_id,)).fetchone()
+        return (r[0], int(r[1])) if r else None
+
+    def game_ids(self, limit: int | None = None) -> list[str]:
+        q = "SELECT game_id FROM games ORDER BY seq"
+        if limit is not None:
+            q += f" LIMIT {int(limit)}"
+        return [r[0] for r in self.con.execute(q)]
+
+    def totals(self) -> CatalogTotals:
+        g, p, s = self.con.execute(
+            "SELECT count(*), coalesce(sum(positions), 0), max(snapshot_max) FROM games").fetchone()
+        shards = self.con.execute("SELECT count(*) FROM shards").fetchone()[0]
+        dup = self.con.execute("SELECT value FROM counters WHERE name='duplicates_total'").fetchone()
+        return CatalogTotals(int(g), int(p), int(shards), int(dup[0]) if dup else 0,
+                             int(s) if s is not None else None)

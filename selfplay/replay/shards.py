@@ -1,0 +1,117 @@
+"""Shard files on disk: write once (temporary name, fsync, rename), read back with every check.
+
+A shard holds the frames of many games (see :mod:`selfplay.replay.codec`). Finished shards are
+never rewritten; a damaged one is moved aside by the store (:mod:`selfplay.replay.store`).
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+from selfplay.errors import FormatError
+from selfplay.records import GameRecord
+from selfplay.replay import codec
+
+#: file name suffix of a finished shard
+SHARD_SUFFIX = ".plyrec"
+#: suffix of a shard being written (discarded on recovery)
+TEMP_SUFFIX = ".tmp"
+
+
+@dataclass
+class ShardScan:
+    """What a full read of one shard found.
+
+    ``records`` are the games decoded before the first problem, with the byte offset of their
+    frame; ``error`` is that problem (None for a sound shard)."""
+
+    path: Path
+    size: int
+    flags: int = 0
+    records: list[tuple[int, GameRecord]] = field(default_factory=list)
+    error: FormatError | None = None
+    crc32: int = 0
+
+    @property
+    def ok(self) -> bool:
+        return self.error is None
+
+
+def fsync_dir(path: Path) -> None:
+    """fsync a directory so a rename inside it survives a crash (no-op where unsupported)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def write_shard(final: Path, frames: list[bytes], flags: int, tmp: Path | None = None) -> tuple[int, int]:
+    """Write header + ``frames`` to ``tmp``, fsync, rename to ``final``; return (bytes, CRC32 of
+    the whole file). Refuses to replace an existing shard."""
+    if final.exists():
+        raise FormatError(f"shard {final.name} already exists; finished shards are never rewritten")
+    tmp = tmp or final.with_name(f".{final.name}{TEMP_SUFFIX}")
+    header = codec.encode_header(flags)
+    crc = zlib.crc32(header)
+    size = len(header)
+    with open(tmp, "wb") as f:
+        f.write(header)
+        for fr in frames:
+            f.write(fr)
+            crc = zlib.crc32(fr, crc)
+            size += len(fr)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, final)
+    fsync_dir(final.parent)
+    return size, crc
+
+
+def scan_shard(path: Path, *, decode: bool = True) -> ShardScan:
+    """Read and check the whole shard at ``path``; never raises FormatError (it is reported in
+    :attr:`ShardScan.error`). ``decode=False`` checks frames and CRCs only."""
+    where = f"shard {path.name}"
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        return ShardScan(path, 0, error=FormatError(f"{where}: cannot be read ({exc})"))
+    scan = ShardScan(path, len(data), crc32=zlib.crc32(data))
+    try:
+        scan.flags = codec.decode_header(data[:codec.HEADER.size], where)
+        buf = io.BytesIO(data)
+        buf.seek(codec.HEADER.size)
+        for fr in codec.iter_frames(buf, len(data), where):
+            if decode:
+                loc = f"{where}: frame {fr.index} at byte {fr.offset}"
+                rec = codec.decode_record(codec.unpack_stored(fr.stored, scan.flags, loc), loc)
+                scan.records.append((fr.offset, rec))
+    except FormatError as exc:
+        scan.error = exc
+    return scan
+
+
+def read_shard(path: Path) -> Iterator[tuple[int, GameRecord]]:
+    """(frame offset, record) of every game in the shard; raises FormatError at the first
+    problem (records before it have been yielded)."""
+    where = f"shard {path.name}"
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise FormatError(f"{where}: cannot be read ({exc})") from exc
+    flags = codec.decode_header(data[:codec.HEADER.size], where)
+    buf = io.BytesIO(data)
+    buf.seek(codec.HEADER.size)
+    for fr in codec.iter_frames(buf, len(data), where):
+        loc = f"{where}: frame {fr.index} at byte {fr.offset}"
+        yield fr.offset, codec.decode_record(codec.unpack_stored(fr.stored, flags, loc), loc)
