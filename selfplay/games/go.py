@@ -120,9 +120,8 @@ class GoGame(Game[GoState]):
         if isinstance(komi, bool) or not isinstance(komi, (int, float, np.integer, np.floating)):
             raise ConfigError(f"go option komi={komi!r} must be a number")
         komi = float(komi)
-        if not np.isfinite(komi) or abs(komi) > 2 * size * size:
-            raise ConfigError(
-                f"go option komi={komi!r} must be a finite number with |komi| <= {2 * size * size}")
+        if not np.isfinite(komi) or abs(komi) > 1000:
+            raise ConfigError(f"go option komi={komi!r} must be a finite number with |komi| <= 1000")
         history = _check_int("history", history)
         if not 1 <= history <= 16:
             raise ConfigError(f"go option history={history} must be in 1..16")
