@@ -1,0 +1,32 @@
+"""``selfplay show RUN --game ID --move K --out FILE.png``: one position with prior, visits and Q."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "show", help="draw one position of a recorded game: network prior, visit share and Q",
+        description="Draw position K of game ID (K = moves played before it, 0 = the initial "
+        "position) as three boards side by side: the network's prior (snapshot that played the "
+        "move), the search's visit share (from the record) and Q per move (a fresh search with the "
+        "record's settings), with the move played marked.")
+    p.add_argument("run", metavar="RUN", help="run directory")
+    p.add_argument("--game", required=True, metavar="ID", help="game id (see the catalog or `selfplay export`)")
+    p.add_argument("--move", required=True, type=int, metavar="K", help="position index, 0 = before the first move")
+    p.add_argument("--out", required=True, metavar="FILE.png", help="PNG file to write")
+    p.add_argument("--simulations", type=int, default=None, metavar="N",
+                   help="simulations of the recomputing search (default: the record's own setting)")
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    from selfplay.errors import ConfigError
+    from selfplay.monitor.show import show_position
+
+    if args.simulations is not None and args.simulations < 1:
+        raise ConfigError(f"--simulations {args.simulations} must be at least 1")
+    path = show_position(args.run, args.game, args.move, args.out, simulations=args.simulations)
+    print(f"wrote {path}")
+    return 0
