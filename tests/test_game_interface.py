@@ -9,6 +9,8 @@ text that round-trips, and bad options refused with a message naming the field.
 from __future__ import annotations
 
 import itertools
+import re
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,7 +20,9 @@ from selfplay.games.base import Game
 from selfplay.games.registry import game_names, make_game
 
 REGISTERED = set(game_names())
+GAMES_DOC = Path(__file__).resolve().parents[1] / "docs" / "games.md"
 
+#: (registry name, options); "docs:NAME" is the example game of docs/games.md
 _CASES = [
     ("tictactoe", {}),
     ("mnk", {"m": 9, "n": 9, "k": 5}),
@@ -28,17 +32,34 @@ _CASES = [
     ("fourinrow", {"columns": 5, "rows": 4, "k": 3}),
     ("go", {"size": 5}),
     ("go", {"size": 9}),
+    ("docs:clusters", {}),
+    ("docs:clusters", {"rows": 4, "cols": 4}),
 ]
+# any other registered game is checked with its default options
+_CASES += [(name, {}) for name in sorted(REGISTERED - {c[0] for c in _CASES})]
+
+
+def load_docs_example() -> type:
+    """Run the example game's code block from docs/games.md and return its Game class."""
+    blocks = re.findall(r"```python\n(.*?)```", GAMES_DOC.read_text(encoding="utf-8"), re.S)
+    code = next(b for b in blocks if "class ClustersGame" in b)
+    namespace: dict = {"__name__": "games_doc_example"}
+    exec(compile(code, str(GAMES_DOC), "exec"), namespace)
+    return namespace["ClustersGame"]
 
 
 def _case_id(case: tuple[str, dict]) -> str:
     name, options = case
-    return name + "".join(f"-{k}{v}" for k, v in options.items())
+    return name.replace("docs:", "docs-") + "".join(f"-{k}{v}" for k, v in options.items())
+
+
+def _available(name: str) -> bool:
+    return name.startswith("docs:") or name in REGISTERED
 
 
 CASES = [
     pytest.param(case, id=_case_id(case),
-                 marks=() if case[0] in REGISTERED else pytest.mark.skip(reason=f"{case[0]} is not registered"))
+                 marks=() if _available(case[0]) else pytest.mark.skip(reason=f"{case[0]} is not registered"))
     for case in _CASES
 ]
 
@@ -49,6 +70,8 @@ GAMES_PER_CASE = {"tictactoe": 20, "fourinrow": 6}
 @pytest.fixture(params=CASES)
 def game(request) -> Game:
     name, options = request.param
+    if name.startswith("docs:"):
+        return load_docs_example()(**options)
     return make_game(name, **options)
 
 
@@ -66,6 +89,27 @@ def random_game(game: Game, rng: np.random.Generator) -> tuple[list, list[int]]:
 
 def test_builtin_games_are_registered():
     assert {"tictactoe", "mnk", "gomoku", "fourinrow", "go"} <= REGISTERED
+
+
+def test_docs_example_plays_and_registers():
+    cls = load_docs_example()
+    game = make_game("clusters", rows=3, cols=4)  # registered by the example's last line
+    assert type(game).__name__ == cls.__name__
+    # the usage shown on the page
+    state = game.play_sequence(["b2", "a1", "c2", "d1"])
+    assert game.render(state) == "....\n.XX.\nO..O"
+    assert game.legal_mask(state).sum() == 8 and game.to_play(state) == 0
+    assert game.encode(state).shape == (3, 3, 4)
+    # the scoring rule, counted by hand: X holds the top row and a2, a1 (3 + 2 = 5 pairs), O the
+    # 2x3 block below right (4 horizontal + 3 vertical = 7 pairs): O wins
+    full = game.play_sequence(["a3", "b2", "b3", "c2", "c3", "d2", "d3", "b1", "a2", "c1", "a1", "d1"])
+    assert game.is_terminal(full)
+    assert (game.pairs(full, 0), game.pairs(full, 1)) == (5, 7) and game.outcome(full) == -1.0
+    # X: top row + c2-d2 + c3-c2, d3-d2 = 6; O: bottom row + a2-b2 + a2-a1, b2-b1 = 6: a draw
+    drawn = game.play_sequence(["a3", "a2", "b3", "b2", "c3", "a1", "d3", "c1", "d2", "b1", "c2", "d1"])
+    assert (game.pairs(drawn, 0), game.pairs(drawn, 1)) == (6, 6) and game.outcome(drawn) == 0.0
+    with pytest.raises(ConfigError, match="rows=9"):
+        make_game("clusters", rows=9)
 
 
 def test_shape_facts(game: Game):
