@@ -258,6 +258,8 @@ def _search_position(rd: Any, game: Any, state: Any, version: int, search: dict[
     settings = {k: v for k, v in (search or {}).items() if k in SearchConfig.model_fields}
     if simulations is not None:
         settings["simulations"] = simulations
+        reduced = settings.get("reduced_simulations", SearchConfig.model_fields["reduced_simulations"].default)
+        settings["reduced_simulations"] = min(int(reduced), simulations)
     try:
         config = SearchConfig(**settings)
     except ValueError as exc:
