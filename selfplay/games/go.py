@@ -155,10 +155,12 @@ class GoGame(Game[GoState]):
         zob[2] = keys[n:2 * n]
         self._zob = zob
         self._side_key = keys[2 * n]
+        # "previous position" of a state that has none (setup): a key no board will have
+        self._no_position = _splitmix64(0x0B5E55ED, 1)[0]
         empty = np.zeros(n, dtype=np.int8)
         groups, _ = K.build_groups(empty, nbr, zob, self._nwords)
-        self._initial = GoState(empty, groups, np.zeros(1, dtype=np.int64), 0, 0, 0, 0, 0,
-                                (empty,))
+        self._initial = GoState(empty, groups, np.zeros(1, dtype=np.int64), 0,
+                                self._no_position, 0, 0, 0, (empty,))
 
     # ---- shape facts ---------------------------------------------------------------------------
     @property
@@ -222,8 +224,8 @@ class GoGame(Game[GoState]):
             raise IllegalMoveError("setup stones leave a group without liberties")
         if to_play not in (0, 1):
             raise IllegalMoveError(f"to_play={to_play!r} must be 0 (Black) or 1 (White)")
-        return GoState(board, groups, np.array([key], dtype=np.int64), int(key), int(key),
-                       int(to_play), 0, 0, (board,))
+        return GoState(board, groups, np.array([key], dtype=np.int64), int(key),
+                       self._no_position, int(to_play), 0, 0, (board,))
 
     def to_play(self, state: GoState) -> int:
         return state.player
