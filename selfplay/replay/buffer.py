@@ -81,6 +81,23 @@ class ReplayBuffer:
         self._game_key = (game.name, json.dumps(game.options(), sort_keys=True))
         self._checked: dict[tuple[str, str], bool] = {}
 
+    @classmethod
+    def from_config(cls, game: Game, config: Any, seed: int | None = None) -> "ReplayBuffer":
+        """A buffer sized and set by a :class:`selfplay.replay.config.ReplayConfig`."""
+        return cls(game, int(config.window_positions), recency_weight=float(config.recency_weight),
+                   augment=bool(config.augment), seed=seed)
+
+    def refill_from(self, source: Any) -> int:
+        """Fill the window from the newest committed shards of a run (a RecordStore, a RunDir or
+        a path), oldest first; damaged shards are skipped. Returns the positions added."""
+        from selfplay.replay.reader import newest_records
+        from selfplay.rundir import RunDir
+        run = getattr(source, "run", source)
+        run = run if isinstance(run, RunDir) else RunDir.open(run)
+        if not run.catalog.exists():
+            return 0
+        return self.add_many(newest_records(run, self.capacity))
+
     # ---- size --------------------------------------------------------------------------------
     def __len__(self) -> int:
         """Positions in the window."""

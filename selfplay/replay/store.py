@@ -77,6 +77,8 @@ class RecordStore:
     Parameters
     ----------
     run_dir: the run directory (created if missing).
+    config: optional :class:`selfplay.replay.config.ReplayConfig`; its shard settings replace
+        the keyword arguments below.
     writer: name of this writer; shard files are ``WRITER-NNNNNNNN.plyrec``. Only one open store
         per writer name (enforced with a lock file).
     max_games, max_bytes, max_age_seconds: a shard is written when the waiting games reach this
@@ -87,10 +89,15 @@ class RecordStore:
         frame and its CRC).
     """
 
-    def __init__(self, run_dir: str | os.PathLike[str] | RunDir, *, writer: str = "main",
-                 max_games: int = 512, max_bytes: int = 16 * 1024 * 1024,
+    def __init__(self, run_dir: str | os.PathLike[str] | RunDir, config: Any = None, *,
+                 writer: str = "main", max_games: int = 512, max_bytes: int = 16 * 1024 * 1024,
                  max_age_seconds: float = 60.0, compress: bool = True,
                  verify: Literal["size", "full"] = "size") -> None:
+        if config is not None:  # a ReplayConfig: its shard settings win over the keywords
+            opts = config.store_options()
+            max_games, max_bytes = int(opts["max_games"]), int(opts["max_bytes"])
+            max_age_seconds, compress = float(opts["max_age_seconds"]), bool(opts["compress"])
+            verify = opts["verify"]  # type: ignore[assignment]
         if not _WRITER_RE.match(writer):
             raise RunDirError(f"writer name {writer!r} must be 1-64 letters, digits, '_' or '.'")
         if max_games < 1 or max_bytes < 1 or max_age_seconds < 0:
@@ -141,11 +148,21 @@ class RecordStore:
         self.close()
 
     # ---- writing -----------------------------------------------------------------------------
-    def add_games(self, records: Iterable[GameRecord]) -> tuple[int, int]:
-        """Accept finished games; returns (added, duplicates). Added games are on disk after
-        the next flush (automatic by count, size or age, or :meth:`flush`)."""
-        res = self.ingest(records)
-        return len(res.accepted), res.duplicates
+    def add_games(self, records: Iterable[GameRecord]) -> tuple[list[str], list[str]]:
+        """Accept finished games; returns (added game ids, duplicate game ids) in input order.
+        Added games are on disk after the next flush (automatic by count, size or age, or
+        :meth:`flush`)."""
+        recs = list(records)
+        res = self.ingest(recs)
+        added = [r.game_id for r in res.accepted]
+        taken = set(added)
+        dups = []
+        for r in recs:
+            if r.game_id in taken:
+                taken.discard(r.game_id)  # the first occurrence was the one added
+            else:
+                dups.append(r.game_id)
+        return added, dups
 
     def ingest(self, records: Iterable[GameRecord]) -> IngestResult:
         """Like :meth:`add_games`, returning the accepted records themselves. Every record is
@@ -219,6 +236,19 @@ class RecordStore:
     def pending_games(self) -> int:
         """Games accepted but not yet in a shard."""
         return len(self._pending)
+
+    @property
+    def pending_positions(self) -> int:
+        """Positions of the games accepted but not yet in a shard."""
+        return sum(p.row[5] for p in self._pending)
+
+    def stats(self) -> dict[str, Any]:
+        """Committed counts (``games``, ``positions``, ``shards``, ``duplicates``,
+        ``newest_snapshot``) and the waiting ones (``pending_games``, ``pending_positions``)."""
+        t = self.totals()
+        return {"games": t.games, "positions": t.positions, "shards": t.shards,
+                "duplicates": t.duplicates, "newest_snapshot": t.newest_snapshot,
+                "pending_games": self.pending_games, "pending_positions": self.pending_positions}
 
     def _check_open(self) -> None:
         if self._lock_fd < 0:

@@ -1,0 +1,216 @@
+"""Go games between SGF files and records.
+
+- :func:`record_to_sgf` / :func:`export_sgf`: a run's Go games as SGF FF[4] files any viewer opens.
+- :func:`sgf_to_record` / :func:`import_sgf_files`: expert games as *supervised* records — at
+  every position the policy target is the move played (one-hot), the value target the final
+  result from the RE property — so a learner can start from human games before self-play, as
+  the supervised first stage of AlphaGo (Silver et al., "Mastering the game of Go with deep
+  neural networks and tree search", Nature 2016). Imported positions carry ``full_search=True``
+  (they are policy targets), ``snapshot=-1`` (no network played them), root value NaN (no
+  search) and worker id ``"sgf-import"``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable
+
+import numpy as np
+
+from selfplay.errors import FormatError, IllegalMoveError, RunDirError, SelfplayError
+from selfplay.records import GameRecord, GameRecordBuilder
+from selfplay.replay.reader import make_record_game, read_game, RunReader
+from selfplay.rundir import RunDir
+
+IMPORT_WORKER = "sgf-import"
+MAX_SGF_BYTES = 8 * 1024 * 1024
+
+
+class NoResultError(FormatError):
+    """An SGF game without a usable result (RE missing, "?" or "Void")."""
+
+
+def result_from_re(re_value: str | None, where: str) -> int:
+    """Result from Black's (player 0's) view from an SGF RE value: "B+..." +1, "W+..." -1,
+    "0" / "Draw" 0 (SGF FF[4], property RE). Anything else raises NoResultError."""
+    v = (re_value or "").strip()
+    up = v.upper()
+    if up.startswith("B+"):
+        return 1
+    if up.startswith("W+"):
+        return -1
+    if up in ("0", "DRAW", "D", "JIGO"):
+        return 0
+    if not v:
+        raise NoResultError(f"{where}: no result (RE property missing); a supervised target needs one")
+    raise NoResultError(f"{where}: result RE[{v}] gives no winner (unknown, void or unfinished)")
+
+
+# ---- export ------------------------------------------------------------------------------------
+
+def record_to_sgf(rec: GameRecord) -> str:
+    """SGF text of one Go record (moves checked under the record's own rules)."""
+    from selfplay.games.go import GoGame
+    from selfplay.games.sgf import write_sgf
+
+    game = make_record_game(rec)
+    if not isinstance(game, GoGame):
+        raise FormatError(f"game {rec.game_id!r} is {rec.game}, not Go; only Go games export to SGF")
+    if rec.num_positions and int(np.asarray(rec.boards[0]).any()):
+        raise FormatError(f"game {rec.game_id!r} starts from setup stones; SGF export handles "
+                          f"games from the empty board")
+    moves = [int(a) for a in np.asarray(rec.actions)]
+    if rec.resigned:
+        result = {1: "B+R", -1: "W+R", 0: "0"}[int(rec.result)]
+    else:
+        state = game.play_sequence(moves)
+        result = game.result_text(state) if game.is_terminal(state) else \
+            {1: "B+", -1: "W+", 0: "0"}[int(rec.result)]
+        scored = 0 if result == "0" else (1 if result.startswith("B") else -1)
+        if scored != int(rec.result):
+            raise FormatError(f"game {rec.game_id!r}: record result {rec.result} disagrees with "
+                              f"the Tromp-Taylor score {result}")
+    snaps = np.asarray(rec.snapshot)
+    tp = np.asarray(rec.to_play)
+
+    def player(colour: int) -> str:
+        s = snaps[tp == colour]
+        if rec.worker_id == IMPORT_WORKER:
+            return str(rec.extra.get("black" if colour == 0 else "white", ""))
+        if s.size == 0:
+            return "plyfoundry"
+        lo, hi = int(s.min()), int(s.max())
+        return f"plyfoundry snapshot {lo}" if lo == hi else f"plyfoundry snapshots {lo}-{hi}"
+
+    comment = {"game_id": rec.game_id, "worker": rec.worker_id, "seed": rec.seed,
+               "resign_disabled": rec.resign_disabled}
+    return write_sgf(game, moves, result=result, black=player(0), white=player(1),
+                     extra={"GN": rec.game_id, "GC": json.dumps(comment, sort_keys=True)})
+
+
+def _safe_name(game_id: str) -> str:
+    keep = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in game_id)
+    return keep[:120] or "game"
+
+
+def export_sgf(run_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str], *,
+               game_ids: Iterable[str] | None = None, overwrite: bool = False) -> list[Path]:
+    """Write the run's Go games (or the ``game_ids``) as ``OUT/GAME_ID.sgf``; returns the paths.
+    Non-Go games are refused when named and skipped otherwise."""
+    from selfplay.rundir import atomic_write_bytes
+
+    run = RunDir.open(run_dir)
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise RunDirError(f"{str(out)!r} is a file; --out must be a directory")
+    if game_ids is not None:
+        records = [read_game(run, gid) for gid in game_ids]
+    else:
+        records = [r for r in RunReader(run, on_corrupt="raise").records() if r.game == "go"]
+    if not records:
+        raise FormatError(f"run {str(run.root)!r} holds no Go games to export")
+    out.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for rec in records:
+        text = record_to_sgf(rec)
+        path = out / f"{_safe_name(rec.game_id)}.sgf"
+        if path.exists() and not overwrite:
+            raise RunDirError(f"{str(path)!r} exists; pass --overwrite to replace it")
+        atomic_write_bytes(path, text.encode())
+        paths.append(path)
+    return paths
+
+
+# ---- import ------------------------------------------------------------------------------------
+
+@dataclass
+class ImportReport:
+    """Games read from SGF files: the records made, and the games skipped with the reason."""
+
+    records: list[GameRecord] = field(default_factory=list)
+    skipped: list[tuple[str, str]] = field(default_factory=list)
+
+    @property
+    def positions(self) -> int:
+        return sum(r.num_positions for r in self.records)
+
+
+def sgf_to_record(text: str, source: str = "sgf", *, komi: float | None = None,
+                  history: int = 4, allow_suicide: bool = False, superko: bool = True,
+                  max_moves: int | None = None, default_komi: float = 7.5) -> GameRecord:
+    """A supervised record of the SGF game ``text`` (its main line).
+
+    ``komi`` forces a komi (default: the file's KM, else ``default_komi``); ``history``,
+    ``allow_suicide``, ``superko``, ``max_moves`` are the Go options the record is labelled with
+    (match them to the run that will train on it). Raises FormatError (NoResultError for a game
+    without a result) naming ``source``."""
+    from selfplay.games.go import GoGame
+    from selfplay.games.sgf import read_sgf
+
+    sg = read_sgf(text, allow_suicide=allow_suicide, superko=superko)
+    result = result_from_re(sg.result, source)
+    k = float(komi if komi is not None else (sg.komi if sg.komi is not None else default_komi))
+    n = sg.size * sg.size
+    cap = max_moves if max_moves is not None else 2 * n
+    if len(sg.moves) > cap:
+        raise FormatError(f"{source}: {len(sg.moves)} moves exceed the move cap of {cap}")
+    try:
+        game = GoGame(size=sg.size, komi=k, allow_suicide=allow_suicide, superko=superko,
+                      history=history, max_moves=cap, tiny=sg.size < 5)
+    except SelfplayError as exc:
+        raise FormatError(f"{source}: {exc}") from None
+    if sg.setup_black or sg.setup_white or sg.first_player != 0:
+        state = game.state_from_setup(sg.setup_black, sg.setup_white, sg.first_player)
+    else:
+        state = game.initial_state()
+    ident = json.dumps([sg.size, k, sorted(sg.setup_black), sorted(sg.setup_white),
+                        sg.first_player, sg.moves, result, game.options()])
+    game_id = "sgf-" + hashlib.sha256(ident.encode()).hexdigest()[:24]
+    b = GameRecordBuilder(game_id, game.name, game.options(), IMPORT_WORKER, 0,
+                          {"source": "sgf", "policy": "one-hot move played"}, 0.0)
+    for i, a in enumerate(sg.moves):
+        b.add_position(game.compact(state), game.to_play(state), a, game.legal_mask(state),
+                       np.array([a]), np.array([1.0]), float("nan"), True, -1)
+        try:
+            state = game.play(state, a)
+        except IllegalMoveError as exc:
+            raise FormatError(f"{source}: move {i + 1}: {exc}") from None
+    rec = b.finish(result, time.time())
+    rec.extra = {"source": source, "black": sg.black_name, "white": sg.white_name,
+                 "RE": sg.result or "", "handicap": sg.handicap}
+    return rec
+
+
+def import_sgf_files(paths: Iterable[str | os.PathLike[str]], **options: Any) -> ImportReport:
+    """Records of every SGF file in ``paths`` (each file's first game); a file that cannot be
+    read, is malformed, or has no result is skipped with its reason in the report."""
+    rep = ImportReport()
+    seen: set[str] = set()
+    for p in paths:
+        path = Path(p)
+        try:
+            if not path.is_file():
+                raise FormatError(f"{path}: no such file")
+            if path.stat().st_size > MAX_SGF_BYTES:
+                raise FormatError(f"{path}: larger than {MAX_SGF_BYTES} bytes; not an SGF game record")
+            raw = path.read_bytes()
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError:
+                text = raw.decode("latin-1")
+            rec = sgf_to_record(text, str(path), **options)
+        except FormatError as exc:
+            msg = str(exc)
+            rep.skipped.append((str(path), msg if str(path) in msg else f"{path}: {msg}"))
+            continue
+        if rec.game_id in seen:
+            rep.skipped.append((str(path), f"{path}: the same game as an earlier file"))
+            continue
+        seen.add(rec.game_id)
+        rep.records.append(rec)
+    return rep
