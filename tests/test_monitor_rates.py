@@ -137,7 +137,7 @@ def test_snapshot_metadata_files_are_read(run: Path) -> None:
 
 def test_resignation_false_positive_rate_from_metrics(run: Path) -> None:
     write_lines(run, [worker(1000, "w1", 0, 0), worker(1100, "w1", 40, 400, resign_disabled_games_total=4,
-                                                      resign_disabled_would_resign_total=3,
+                                                      resign_probe_triggered_total=3,
                                                       resign_false_positives_total=1)])
     r = compute_summary(run)["resignation"]
     # 1 false positive among the 3 resign-disabled games with a would-have-resigned player

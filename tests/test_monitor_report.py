@@ -58,7 +58,7 @@ def run(tmp_path_factory: pytest.TempPathFactory) -> Path:
         for w in ("w0", "w1"):
             rows.append({"t": t, "component": "worker", "source": w, "games_total": k // 2,
                          "positions_total": 8 * k // 2, "evals_total": 1000 * k, "snapshot_version": v0,
-                         "resign_disabled_games_total": k // 10, "resign_disabled_would_resign_total": k // 20,
+                         "resign_disabled_games_total": k // 10, "resign_probe_triggered_total": k // 20,
                          "resign_false_positives_total": k // 40})
         rows.append({"t": t, "component": "learner", "source": "learner", "step": 10 * k,
                      "loss": 2.0 / (1 + k), "loss_policy": 1.5 / (1 + k), "loss_value": 0.4 / (1 + k),

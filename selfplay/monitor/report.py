@@ -301,8 +301,8 @@ class ReportBuilder:
     def draw_resign(self, ax: Any) -> str | None:
         rows = self.rows_of("worker")
         pts: list[tuple[float, float]] = []
-        uses_would = any("resign_disabled_would_resign_total" in r for r in rows)
-        den_key = "resign_disabled_would_resign_total" if uses_would else "resign_disabled_games_total"
+        uses_would = any("resign_probe_triggered_total" in r for r in rows)
+        den_key = "resign_probe_triggered_total" if uses_would else "resign_disabled_games_total"
         fps: dict[str, CounterSeries] = {}
         dens: dict[str, CounterSeries] = {}
         for r in rows:

@@ -42,7 +42,7 @@ from selfplay.rundir import RunDir
 #: counters tracked per component (cumulative; restarts folded in)
 COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
     "worker": ("games_total", "positions_total", "evals_total", "resign_disabled_games_total",
-               "resign_disabled_would_resign_total", "resign_false_positives_total"),
+               "resign_probe_triggered_total", "resign_false_positives_total"),
     "buffer": ("games_total", "positions_total", "duplicates_total", "shards_total"),
     "learner": ("step", "samples_trained_total"),
 }
@@ -547,7 +547,7 @@ class RunMonitor:
                 vals = [s.counters[name].last_value for s in workers if name in s.counters]
                 return sum(vals) if vals else None
             d, wr, f = (total("resign_disabled_games_total"),
-                        total("resign_disabled_would_resign_total"),
+                        total("resign_probe_triggered_total"),
                         total("resign_false_positives_total"))
             if d is None and f is None:
                 return None
