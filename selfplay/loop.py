@@ -33,6 +33,12 @@ from selfplay.rundir import RunDir, atomic_write_bytes
 from selfplay.snapshots import SnapshotStore
 
 
+#: fields of the "worker" metric lines (RULES.md) copied from SelfPlayWorker.stats()
+_WORKER_FIELDS = ("games_total", "positions_total", "evals_total", "evals_per_second", "positions_per_second",
+                  "snapshot_version", "games_in_flight", "resign_disabled_games_total",
+                  "resign_false_positives_total")
+
+
 def network_from_run_config(path: str | os.PathLike[str]) -> torch.nn.Module:
     """A fresh network of the game and architecture that a run.toml describes."""
     from selfplay.config import load_config
@@ -92,10 +98,8 @@ class LocalRun:
         torch.set_num_threads(config.worker.threads)
         self.game: Game = make_game(config.game.name, **config.game.options)
         self.store = SnapshotStore(self.run, source="local-loop")
-        self.records = RecordStore(self.run, writer=f"local{session}")
-        self.buffer = ReplayBuffer(self.game, config.replay.window_positions,
-                                   recency_weight=config.replay.recency_weight,
-                                   augment=config.replay.augment, seed=config.run.seed + 7919 * session)
+        self.records = RecordStore(self.run, writer=f"local{session}", **config.replay.store_options())
+        self.buffer = ReplayBuffer.from_config(self.game, config.replay, seed=config.run.seed + 7919 * session)
         self.learner_net = build_network(self.game, config.network, seed=config.run.seed)
         self.learner = Learner(self.game, self.learner_net, config.learner, self.buffer, self.store,
                                MetricsLog(self.run.metrics, "learner", "learner"))
@@ -142,28 +146,7 @@ class LocalRun:
 
     def refill_buffer(self) -> int:
         """On resume, fill the replay window from the newest shards on disk; returns positions."""
-        from selfplay.replay.shards import read_shard
-
-        rows = self.records.catalog.shards()
-        need = self.config.replay.window_positions
-        chosen = []
-        for row in reversed(rows):
-            chosen.append(row)
-            need -= row.positions
-            if need <= 0:
-                break
-        added = 0
-        for row in reversed(chosen):
-            path = self.run.shards / row.name
-            if not path.exists():
-                continue
-            try:
-                for _, rec in read_shard(path):
-                    self.buffer.add(rec)
-                    added += rec.num_positions
-            except SelfplayError:
-                continue  # a damaged shard: the record store quarantines it on its next check
-        return added
+        return self.buffer.refill_from(self.records)
 
     # ---- the pieces --------------------------------------------------------------------------
     def generate(self, games: int) -> int:
@@ -188,13 +171,9 @@ class LocalRun:
         self.status.games += finished_games
         self.status.positions += added_positions
         dt = time.perf_counter() - t0
-        stats = dict(self.worker.stats()) if hasattr(self.worker, "stats") else {}
-        self.worker_metrics.write(games_total=self.status.games, positions_total=self.status.positions,
-                                  positions_per_second=added_positions / dt if dt > 0 else 0.0,
-                                  snapshot_version=self.worker_version,
-                                  **{k: v for k, v in stats.items() if isinstance(v, (int, float))
-                                     and k not in ("games_total", "positions_total", "snapshot_version",
-                                                   "positions_per_second")})
+        stats = self.worker.stats()
+        self.worker_metrics.write(**{k: stats[k] for k in _WORKER_FIELDS if k in stats},
+                                  phase_positions_per_second=added_positions / dt if dt > 0 else 0.0)
         return added_positions
 
     def train(self, max_steps: int | None = None) -> int:
