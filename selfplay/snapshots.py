@@ -127,7 +127,11 @@ def check_safetensors_bytes(data: bytes, source: str) -> None:
         raise SnapshotError(
             f"{source} is a zip archive (the torch.save format, which holds a pickle), not a safetensors "
             "file; pickled weights are never loaded. Save with safetensors.torch.save_file")
-    if data[:1] == b"\x80":
+    # A safetensors header length whose low byte is 0x80 (e.g. 2944 bytes) also starts with 0x80,
+    # so the pickle opcode only counts when the bytes are not a well-formed safetensors header.
+    looks_safetensors = len(data) >= 10 and data[8:9] == b"{" and \
+        struct.unpack("<Q", data[:8])[0] <= min(len(data) - 8, _MAX_HEADER_BYTES)
+    if data[:1] == b"\x80" and not looks_safetensors:
         raise SnapshotError(f"{source} is a pickle stream, not a safetensors file; pickled weights are never loaded")
     if len(data) < 10:
         raise SnapshotError(f"{source} is too short ({len(data)} bytes) to be a safetensors file")

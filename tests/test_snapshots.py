@@ -231,3 +231,20 @@ def test_publish_command_refuses_wrong_shapes_and_pickled_objects(tmp_path, ttt,
 def test_publish_command_on_a_non_run_directory(tmp_path, capsys):
     assert cli_main(["publish", str(tmp_path / "nope"), str(tmp_path / "w.safetensors")]) == 2
     assert "does not exist" in capsys.readouterr().err
+
+
+def test_safetensors_header_length_with_low_byte_0x80_is_not_taken_for_a_pickle():
+    # The safetensors format starts with the header length as a little-endian u64
+    # (safetensors format spec); a length of 0x0b80 makes the first byte 0x80, the pickle opcode.
+    import json as _json
+    import struct as _struct
+
+    from selfplay.snapshots import check_safetensors_bytes
+
+    header = _json.dumps({"__metadata__": {"pad": "x" * 3000}}).encode()
+    header = header[:0x0B80 - 2] + b'"}' if len(header) > 0x0B80 else header + b" " * (0x0B80 - len(header))
+    data = _struct.pack("<Q", 0x0B80) + header
+    assert data[:1] == b"\x80"
+    check_safetensors_bytes(data, "test")  # must not raise
+    with pytest.raises(SnapshotError, match="pickle"):
+        check_safetensors_bytes(b"\x80\x04\x95" + b"\x00" * 20, "test")
