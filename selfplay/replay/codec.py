@@ -135,6 +135,8 @@ def encode_record(rec: GameRecord, num_actions: int | None = None) -> bytes:
     }
     for name, dtype in ARRAY_DTYPES.items():
         doc[name] = _array(getattr(rec, name), dtype)
+    if rec.num_positions == 0:  # an empty game: give its legal rows their width
+        doc["legal"] = _array(np.zeros((0, packed_width(a)), dtype=np.uint8), ARRAY_DTYPES["legal"])
     try:
         payload = msgpack.packb(doc, use_bin_type=True)
     except (TypeError, ValueError, OverflowError) as exc:
@@ -219,7 +221,11 @@ def decode_record(payload: bytes, where: str = "record") -> GameRecord:
     gid = doc["game_id"]
     where = f"{where} (game {gid!r})"
     for f in _MAP_FIELDS:
-        _field(doc, f, dict, where)
+        m = _field(doc, f, dict, where)
+        if not all(isinstance(k, str) for k in m):
+            raise FormatError(f"{where}: map {f!r} has a key that is not a string")
+    if not all(v is None or isinstance(v, (str, int, float, bool)) for v in doc["game_options"].values()):
+        raise FormatError(f"{where}: game_options values must be strings, numbers or booleans")
     seed = _field(doc, "seed", int, where)
     result = _int_in(doc, "result", -1, 1, where)
     for f in ("resigned", "resign_disabled"):
