@@ -109,14 +109,23 @@ class RecordStore:
         self.max_games, self.max_bytes, self.max_age_seconds = max_games, max_bytes, max_age_seconds
         self.flags = codec.FLAG_DEFLATE if compress else 0
         self._lock_fd = self._take_lock(writer)
-        self.catalog = Catalog(self.run.catalog)
         self._pending: list[_Pending] = []
         self._pending_ids: set[str] = set()
         self._pending_bytes = 0
         self._pending_since = 0.0
-        self._next_index = self._first_free_index()
-        self.recovery = self._recover(verify)
         self._metrics: MetricsLog | None = None
+        try:
+            self.catalog = Catalog(self.run.catalog)
+            try:
+                self._next_index = self._first_free_index()
+                self.recovery = self._recover(verify)
+            except BaseException:
+                self.catalog.close()
+                raise
+        except BaseException:
+            os.close(self._lock_fd)
+            self._lock_fd = -1
+            raise
 
     # ---- lifetime ----------------------------------------------------------------------------
     def _take_lock(self, writer: str) -> int:
