@@ -1,0 +1,137 @@
+"""SGF export of Go records and import of SGF games as supervised records (SGF FF[4])."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from selfplay.cli import main
+from selfplay.games.registry import make_game
+from selfplay.games.sgf import read_sgf, write_sgf
+from selfplay.replay import synthetic
+from selfplay.replay.buffer import ReplayBuffer
+from selfplay.replay.reader import RunReader
+from selfplay.replay.sgf_records import (IMPORT_WORKER, NoResultError, import_sgf_files,
+                                         record_to_sgf, result_from_re, sgf_to_record)
+from selfplay.replay.store import RecordStore
+
+GO9 = make_game("go", size=9, komi=7.5)
+
+
+def pt(r: int, c: int) -> int:
+    return r * 9 + c
+
+
+PASS = 81
+# Black captures the white stone on the top edge at move 5, both pass at the end
+CAPTURE_GAME = [pt(0, 0), pt(0, 1), pt(1, 1), pt(5, 5), pt(0, 2), pt(6, 6), PASS, PASS]
+
+
+def test_result_from_re_follows_the_sgf_standard():
+    # SGF FF[4] RE: "B+..." Black wins, "W+..." White wins, "0" or "Draw" a draw
+    assert result_from_re("B+R", "x") == 1 and result_from_re("W+12.5", "x") == -1
+    assert result_from_re("0", "x") == 0 and result_from_re("Draw", "x") == 0
+    for bad in (None, "", "?", "Void"):
+        with pytest.raises(NoResultError):
+            result_from_re(bad, "x")
+
+
+def test_imported_game_with_captures_and_passes():
+    state = GO9.play_sequence(CAPTURE_GAME)
+    assert GO9.is_terminal(state) and GO9.compact(state)[0, 1] == 0  # the capture happened
+    text = write_sgf(GO9, CAPTURE_GAME, result=GO9.result_text(state), black="Ann", white="Bo")
+    rec = sgf_to_record(text, "capture.sgf")
+    assert rec.worker_id == IMPORT_WORKER and rec.game == "go"
+    assert rec.game_options == GO9.options()
+    np.testing.assert_array_equal(rec.actions, CAPTURE_GAME)
+    expected = int(GO9.outcome(state))
+    assert rec.result == expected
+    np.testing.assert_array_equal(rec.outcomes, [expected if t % 2 == 0 else -expected for t in range(8)])
+    assert rec.full_search.all() and (rec.snapshot == -1).all() and np.isnan(rec.root_values).all()
+    s = GO9.initial_state()
+    for t, a in enumerate(CAPTURE_GAME):
+        np.testing.assert_array_equal(rec.boards[t], GO9.compact(s))
+        np.testing.assert_array_equal(rec.legal_mask(t, 82), GO9.legal_mask(s))
+        onehot = np.zeros(82, dtype=np.float32)
+        onehot[a] = 1
+        np.testing.assert_array_equal(rec.policy_target(t, 82), onehot)
+        s = GO9.play(s, a)
+    assert rec.boards[5][0, 1] == 0 and rec.boards[4][0, 1] == 2  # White's stone, then gone
+    assert rec.extra["black"] == "Ann" and rec.extra["white"] == "Bo"
+    # the same game gives the same id (a second import is a duplicate)
+    assert sgf_to_record(text, "again.sgf").game_id == rec.game_id
+    # and a learner's buffer takes it: one-hot targets, values from the result
+    buf = ReplayBuffer(GO9, 100, seed=0)
+    buf.add(rec)
+    batch = buf.sample(64, policy_targets_only=True)
+    assert (batch["policy"].max(axis=1) == 1.0).all()
+    assert set(batch["value"].tolist()) <= {float(expected), float(-expected)}
+
+
+HANDWRITTEN = "(;GM[1]FF[4]SZ[9]KM[6.5]PB[Kim]PW[Lee]RE[W+2.5]\n;B[ee];W[gc];B[cg]\n;W[];B[])"
+HANDICAP = "(;GM[1]FF[4]SZ[9]HA[2]AB[cc][gg]KM[0.5]RE[B+R];W[ee];B[ce];W[ec])"
+
+
+def test_handwritten_sgf_and_handicap_setup():
+    rec = sgf_to_record(HANDWRITTEN, "hand.sgf")
+    assert rec.game_options["komi"] == 6.5 and rec.result == -1
+    np.testing.assert_array_equal(rec.actions, [pt(4, 4), pt(2, 6), pt(6, 2), PASS, PASS])
+    np.testing.assert_array_equal(rec.outcomes, [-1, 1, -1, 1, -1])
+    h = sgf_to_record(HANDICAP, "ha.sgf")
+    assert h.to_play[0] == 1 and h.outcomes[0] == -1  # White moves first after the setup
+    assert h.boards[0][2, 2] == 1 and h.boards[0][6, 6] == 1 and h.boards[0].sum() == 2
+    assert sgf_to_record(HANDWRITTEN, "k.sgf", komi=7.5).game_options["komi"] == 7.5
+
+
+def test_bad_files_are_skipped_with_a_reason(tmp_path):
+    files = {"ok.sgf": HANDWRITTEN, "nores.sgf": "(;GM[1]SZ[9];B[ee])",
+             "unknown.sgf": "(;GM[1]SZ[9]RE[?];B[ee])", "illegal.sgf": "(;SZ[9]RE[B+R];B[ee];W[ee])",
+             "junk.sgf": "this is not sgf"}
+    for name, text in files.items():
+        (tmp_path / name).write_text(text)
+    rep = import_sgf_files([tmp_path / n for n in files] + [tmp_path / "missing.sgf"])
+    assert [r.extra["source"] for r in rep.records] == [str(tmp_path / "ok.sgf")]
+    reasons = dict(rep.skipped)
+    assert "no result" in reasons[str(tmp_path / "nores.sgf")]
+    assert "gives no winner" in reasons[str(tmp_path / "unknown.sgf")]
+    assert "illegal" in reasons[str(tmp_path / "illegal.sgf")]
+    assert "no such file" in reasons[str(tmp_path / "missing.sgf")]
+    assert len(rep.skipped) == 5
+
+
+def test_export_of_a_played_go_game_reads_back():
+    rec = synthetic.random_record(GO9, np.random.default_rng(4), "sp-1", snapshot=7)
+    text = record_to_sgf(rec)
+    back = read_sgf(text)
+    assert back.size == 9 and back.komi == 7.5 and back.moves == [int(a) for a in rec.actions]
+    final = GO9.play_sequence(back.moves)
+    assert back.result == GO9.result_text(final)
+    assert "snapshot 7" in back.black_name and back.properties["GN"] == ["sp-1"]
+    rec.resigned, rec.result = True, -1
+    rec.outcomes = np.where(rec.to_play == 0, -1, 1).astype(np.int8)
+    assert read_sgf(record_to_sgf(rec)).result == "W+R"
+
+
+def test_sgf_commands_round_trip(tmp_path, capsys):
+    text = write_sgf(GO9, CAPTURE_GAME, result=GO9.result_text(GO9.play_sequence(CAPTURE_GAME)))
+    (tmp_path / "a.sgf").write_text(text)
+    (tmp_path / "b.sgf").write_text(HANDWRITTEN)
+    (tmp_path / "c.sgf").write_text("(;SZ[9];B[ee])")
+    run = tmp_path / "run"
+    assert main(["sgf", "import", str(tmp_path / "a.sgf"), str(tmp_path / "b.sgf"),
+                 str(tmp_path / "c.sgf"), "--out", str(run)]) == 0
+    out = capsys.readouterr()
+    assert "imported 2 game(s), 13 positions" in out.out and "no result" in out.err
+    assert main(["sgf", "import", str(tmp_path / "a.sgf"), "--out", str(run)]) == 0
+    assert "1 already there" in capsys.readouterr().out
+    recs = list(RunReader(run).records())
+    assert len(recs) == 2
+    assert main(["sgf", "export", str(run), "--out", str(tmp_path / "sgf"),
+                 "--game", recs[0].game_id]) == 0
+    (path,) = (tmp_path / "sgf").glob("*.sgf")
+    assert read_sgf(path.read_text()).moves == CAPTURE_GAME
+    assert main(["sgf", "export", str(tmp_path / "nope"), "--out", str(tmp_path / "x")]) == 2
+    assert "does not exist" in capsys.readouterr().err
+    assert main(["sgf", "import", str(tmp_path / "c.sgf"), "--out", str(tmp_path / "r2")]) == 2
+    with RecordStore(run) as store:
+        assert store.totals().games == 2  # nothing lost or doubled
