@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from selfplay.errors import RunDirError
-from selfplay.monitor.rates import CounterSeries, event_counts_rate, window_rate_per_second
+from selfplay.monitor.rates import CounterSeries, window_rate_per_second
 from selfplay.monitor.summary import RunMonitor, compute_summary
 from selfplay.rundir import RunDir
 
@@ -164,15 +164,7 @@ def test_empty_and_missing_run_directories(run: Path, tmp_path: Path) -> None:
     assert s["empty"] is True and s["games"] == 0 and s["games_per_hour"] is None
     with pytest.raises(RunDirError, match="does not exist"):
         compute_summary(tmp_path / "nowhere")
+    assert window_rate_per_second([], 1000.0, 1000.0) is None  # an empty window has no rate
     (tmp_path / "plain").mkdir()
     with pytest.raises(RunDirError, match="not a run directory"):
         compute_summary(tmp_path / "plain")
-
-
-def test_event_rate_of_catalog_times() -> None:
-    # games finished at 10, 20, 310, 320 s, run started at 0; as of 320: window [20, 320]
-    # holds the games at 310 and 320 (20 is at the window's edge, counted before it) → 2 / 300 s
-    recent, since = event_counts_rate([10, 20, 310, 320], 320, 0.0, 300.0)
-    assert recent == pytest.approx(2 / 300)
-    assert since == pytest.approx(4 / 320)
-    assert window_rate_per_second([], 0.0, 0.0) is None

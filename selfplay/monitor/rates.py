@@ -128,28 +128,6 @@ def per_hour(rate_per_second: float | None) -> float | None:
     return None if rate_per_second is None else rate_per_second * 3600.0
 
 
-def event_counts_rate(times_sorted: Sequence[float], end: float, run_start: float | None,
-                      window: float = WINDOW_SECONDS,
-                      weights_cumsum: Sequence[float] | None = None) -> tuple[float | None, float | None]:
-    """Rates of discrete events (e.g. games finished at the catalog's ``finished_at`` times).
-
-    ``times_sorted``: event times, ascending; ``weights_cumsum`` (optional): cumulative sum of
-    a per-event weight (e.g. positions per game) aligned with ``times_sorted``, so that
-    positions per second come out of the same arithmetic. Returns (window rate, since-start rate)
-    in units per second; each None when its span is empty."""
-
-    def cum(t: float) -> float:
-        i = bisect.bisect_right(times_sorted, t)
-        if weights_cumsum is None:
-            return float(i)
-        return float(weights_cumsum[i - 1]) if i > 0 else 0.0
-
-    span = window_span(end, run_start, window)
-    recent = (cum(end) - cum(end - span)) / span if span > 0 else None
-    since = cum(end) / (end - run_start) if run_start is not None and end > run_start else None
-    return recent, since
-
-
 def resample(series: Sequence[CounterSeries], grid: Sequence[float], run_start: float,
              window: float = WINDOW_SECONDS) -> list[float | None]:
     """Windowed per-second rate of the summed counters at each time of ``grid`` (for plots)."""

@@ -32,10 +32,10 @@ from selfplay.errors import FormatError, RunDirError
 from selfplay.monitor.rates import (
     WINDOW_SECONDS,
     CounterSeries,
-    event_counts_rate,
     per_hour,
     since_start_rate_per_second,
     window_rate_per_second,
+    window_span,
 )
 from selfplay.rundir import RunDir
 
@@ -135,17 +135,36 @@ def _round(v: float | None, nd: int = 3) -> float | None:
 
 @dataclass
 class CatalogFacts:
-    """Figures read from catalog.sqlite (None where the catalog lacks the column)."""
+    """Figures read from catalog.sqlite (None where the catalog lacks the column).
 
+    One aggregate scan per refresh; the windowed counts are one more filtered query
+    (:meth:`counts_between`). ``finished_times`` / ``positions_cumsum`` (every game's finish time
+    in order, and the running sum of positions) are loaded only on request (plots)."""
+
+    path: Path
     games: int
     positions: int | None
-    finished_times: list[float]
-    positions_cumsum: list[float] | None
+    first_finished: float | None
+    last_finished: float | None
     started_first: float | None
-    snapshot_max_recent: int | None
-    per_worker: dict[str, tuple[int, int | None]]
     resign: dict[str, int] | None
     shards: int | None
+    fin_col: str | None = None
+    pos_col: str | None = None
+    finished_times: list[float] | None = None
+    positions_cumsum: list[float] | None = None
+
+    def counts_between(self, start: float, end: float) -> tuple[int, int]:
+        """(games, positions) finished in ``(start, end]``."""
+        if self.fin_col is None:
+            return 0, 0
+        if start < (self.first_finished or 0) and end >= (self.last_finished or 0):
+            return self.games, self.positions or 0
+        pos = f"coalesce(sum({self.pos_col}), 0)" if self.pos_col else "0"
+        with _connect_ro(self.path) as con:
+            r = con.execute(f"SELECT count(*), {pos} FROM games WHERE {self.fin_col} > ? AND {self.fin_col} <= ?",
+                            (start, end)).fetchone()
+        return int(r[0]), int(r[1])
 
 
 def _pick(cols: set[str], *names: str) -> str | None:
@@ -155,18 +174,33 @@ def _pick(cols: set[str], *names: str) -> str | None:
     return None
 
 
-def read_catalog(path: Path, window_start: float | None = None) -> CatalogFacts | None:
-    """Read the committed games from ``path`` (read-only); None if there is no catalog yet.
+class _connect_ro:
+    """Context manager: a read-only SQLite connection to ``path`` (closed on exit)."""
+
+    def __init__(self, path: Path) -> None:
+        try:
+            self.con = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0)
+        except sqlite3.Error as exc:
+            raise FormatError(f"cannot open catalog {str(path)!r} read-only: {exc}") from exc
+        self.path = path
+
+    def __enter__(self) -> sqlite3.Connection:
+        return self.con
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> None:
+        self.con.close()
+        if isinstance(exc, sqlite3.Error):
+            raise FormatError(f"cannot read catalog {str(self.path)!r}: {exc}") from exc
+
+
+def read_catalog(path: Path, keep_times: bool = False) -> CatalogFacts | None:
+    """Read the committed games' figures from ``path`` (read-only); None if there is no catalog.
 
     Column names follow the replay store's schema (selfplay/replay/catalog.py); a few aliases
     are accepted so the monitor keeps working across schema revisions."""
     if not path.exists():
         return None
-    try:
-        con = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0)
-    except sqlite3.Error as exc:
-        raise FormatError(f"cannot open catalog {str(path)!r} read-only: {exc}") from exc
-    try:
+    with _connect_ro(path) as con:
         tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
         if "games" not in tables:
             return None
@@ -174,61 +208,37 @@ def read_catalog(path: Path, window_start: float | None = None) -> CatalogFacts 
         pos_col = _pick(cols, "positions", "num_positions", "length")
         fin_col = _pick(cols, "finished_at", "finished")
         start_col = _pick(cols, "started_at")
-        worker_col = _pick(cols, "worker", "worker_id")
-        snap_col = _pick(cols, "snapshot_max", "snapshot_hi", "snapshot")
-        games = int(con.execute("SELECT count(*) FROM games").fetchone()[0])
-        positions = None
-        if pos_col:
-            positions = int(con.execute(f"SELECT coalesce(sum({pos_col}), 0) FROM games").fetchone()[0])
-        finished: list[float] = []
-        cumsum: list[float] | None = None
-        if fin_col:
-            q = f"SELECT {fin_col}{', ' + pos_col if pos_col else ''} FROM games " \
-                f"WHERE {fin_col} IS NOT NULL ORDER BY {fin_col}"
-            rows = con.execute(q).fetchall()
-            finished = [float(r[0]) for r in rows]
-            if pos_col:
-                acc, cumsum = 0.0, []
-                for r in rows:
-                    acc += float(r[1] or 0)
-                    cumsum.append(acc)
-        started_first = None
-        if start_col:
-            v = con.execute(f"SELECT min({start_col}) FROM games WHERE {start_col} > 0").fetchone()[0]
-            started_first = float(v) if v is not None else None
-        snap_recent = None
-        if snap_col and fin_col and window_start is not None:
-            v = con.execute(f"SELECT max({snap_col}) FROM games WHERE {fin_col} >= ?",
-                            (window_start,)).fetchone()[0]
-            snap_recent = int(v) if v is not None else None
-        per_worker: dict[str, tuple[int, int | None]] = {}
-        if worker_col:
-            sel = f"SELECT {worker_col}, count(*){', sum(' + pos_col + ')' if pos_col else ''} " \
-                  f"FROM games GROUP BY {worker_col}"
-            for r in con.execute(sel):
-                per_worker[str(r[0])] = (int(r[1]), int(r[2]) if pos_col and r[2] is not None else None)
+        dis_col, would_col, res_col = _pick(cols, "resign_disabled"), _pick(cols, "resign_would_have"), _pick(cols, "result")
+        have_resign = bool(dis_col and would_col and res_col)
+        parts = ["count(*)",
+                 f"coalesce(sum({pos_col}), 0)" if pos_col else "NULL",
+                 f"min({fin_col})" if fin_col else "NULL",
+                 f"max({fin_col})" if fin_col else "NULL",
+                 f"min(CASE WHEN {start_col} > 0 THEN {start_col} END)" if start_col else "NULL"]
+        if have_resign:
+            # a false positive: the would-have-resigned player did not lose (result: player 0's view)
+            parts += [f"coalesce(sum({dis_col} != 0), 0)",
+                      f"coalesce(sum({dis_col} != 0 AND {would_col} >= 0), 0)",
+                      f"coalesce(sum({dis_col} != 0 AND (({would_col} = 0 AND {res_col} >= 0) OR "
+                      f"({would_col} = 1 AND {res_col} <= 0))), 0)"]
+        r = con.execute(f"SELECT {', '.join(parts)} FROM games").fetchone()
         resign = None
-        dis_col = _pick(cols, "resign_disabled")
-        would_col = _pick(cols, "resign_would_have")
-        res_col = _pick(cols, "result")
-        if dis_col and would_col and res_col:
-            # false positive: the would-have-resigned player did not lose (result from player 0)
-            r = con.execute(
-                f"SELECT coalesce(sum({dis_col} != 0), 0), "
-                f"coalesce(sum({dis_col} != 0 AND {would_col} >= 0), 0), "
-                f"coalesce(sum({dis_col} != 0 AND (({would_col} = 0 AND {res_col} >= 0) OR "
-                f"({would_col} = 1 AND {res_col} <= 0))), 0) FROM games").fetchone()
-            resign = {"disabled_games": int(r[0]), "would_resign_games": int(r[1]),
-                      "false_positives": int(r[2])}
-        shards = None
-        if "shards" in tables:
-            shards = int(con.execute("SELECT count(*) FROM shards").fetchone()[0])
-        return CatalogFacts(games, positions, finished, cumsum, started_first, snap_recent,
-                            per_worker, resign, shards)
-    except sqlite3.Error as exc:
-        raise FormatError(f"cannot read catalog {str(path)!r}: {exc}") from exc
-    finally:
-        con.close()
+        if have_resign:
+            resign = {"disabled_games": int(r[5]), "would_resign_games": int(r[6]), "false_positives": int(r[7])}
+        shards = int(con.execute("SELECT count(*) FROM shards").fetchone()[0]) if "shards" in tables else None
+        facts = CatalogFacts(path, int(r[0]), None if r[1] is None else int(r[1]),
+                             None if r[2] is None else float(r[2]), None if r[3] is None else float(r[3]),
+                             None if r[4] is None else float(r[4]), resign, shards, fin_col, pos_col)
+        if keep_times and fin_col:
+            rows = con.execute(f"SELECT {fin_col}, {pos_col or 0} FROM games WHERE {fin_col} IS NOT NULL "
+                               f"ORDER BY {fin_col}").fetchall()
+            facts.finished_times = [float(x[0]) for x in rows]
+            acc, cum = 0.0, []
+            for x in rows:
+                acc += float(x[1] or 0)
+                cum.append(acc)
+            facts.positions_cumsum = cum
+        return facts
 
 
 # ---- snapshots -----------------------------------------------------------------------------------
@@ -289,9 +299,7 @@ class RunMonitor:
         for row in self._tail.read_new():
             self._ingest(row)
         self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache))
-        ref = self._reference_time(None)
-        self.catalog = read_catalog(self.run.catalog,
-                                    None if ref is None else ref - self.window)
+        self.catalog = read_catalog(self.run.catalog, keep_times=self.keep_rows)
         if not self.keep_rows and self.last_t is not None:
             horizon = self.last_t - self.window
             for st in self.sources.values():
@@ -328,8 +336,8 @@ class RunMonitor:
         if now is not None:
             return now
         cands = [self.last_t]
-        if self.catalog and self.catalog.finished_times:
-            cands.append(self.catalog.finished_times[-1])
+        if self.catalog and self.catalog.last_finished is not None:
+            cands.append(self.catalog.last_finished)
         cands += [ts for ts in self.snapshot_times.values() if ts is not None]
         cands = [c for c in cands if c is not None]
         return max(cands) if cands else None
@@ -338,8 +346,8 @@ class RunMonitor:
         cands = [self.first_t]
         if self.catalog:
             cands.append(self.catalog.started_first)
-            if self.catalog.finished_times and self.catalog.started_first is None:
-                cands.append(self.catalog.finished_times[0])
+            if self.catalog.started_first is None:
+                cands.append(self.catalog.first_finished)
         cands = [c for c in cands if c is not None]
         return min(cands) if cands else None
 
@@ -393,11 +401,16 @@ class RunMonitor:
             if cat is not None and (cat.games > 0 or not (buffers or workers)):
                 source = "catalog"
                 games, positions = cat.games, cat.positions or 0
-                g_recent, g_since = event_counts_rate(cat.finished_times, as_of, start, w)
-                gph, gph_start = per_hour(g_recent), per_hour(g_since)
-                if cat.positions_cumsum is not None:
-                    pps, pps_start = event_counts_rate(cat.finished_times, as_of, start, w,
-                                                       cat.positions_cumsum)
+                span = window_span(as_of, start, w)
+                if span > 0:
+                    g_recent, p_recent = cat.counts_between(as_of - span, as_of)
+                    g_all, p_all = cat.counts_between(-math.inf, as_of)
+                    gph, pps = g_recent / span * 3600.0, p_recent / span
+                    if start is not None and as_of > start:
+                        gph_start = g_all / (as_of - start) * 3600.0
+                        pps_start = p_all / (as_of - start)
+                    if cat.pos_col is None:
+                        pps = pps_start = None
             else:
                 group = buffers if buffers else workers
                 if group:

@@ -112,8 +112,8 @@ def render_summary(s: Summary) -> RenderableType:
     learn_rows = [
         ("step", fmt_num(ln.get("step"))),
         ("steps/s", fmt_num(ln.get("steps_per_second"))),
-        ("loss (policy + value + l2)", f"{fmt_num(ln.get('loss'), 3)} = {fmt_num(ln.get('loss_policy'), 3)}"
-                                       f" + {fmt_num(ln.get('loss_value'), 3)} + {fmt_num(ln.get('loss_l2'), 3)}"
+        ("loss = policy + value + l2", f"{fmt_num(ln.get('loss'))} = {fmt_num(ln.get('loss_policy'))}"
+                                       f" + {fmt_num(ln.get('loss_value'))} + {fmt_num(ln.get('loss_l2'))}"
          if ln else "-"),
         ("sample reuse", fmt_num(ln.get("reuse_ratio"))),
     ]
@@ -131,10 +131,10 @@ def render_summary(s: Summary) -> RenderableType:
     workers = s.get("workers") or []
     if workers:
         wt = Table(title="workers (dim: silent for longer than the window)", title_justify="left",
-                   box=box.SIMPLE_HEAD, pad_edge=False)
+                   box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True, padding=(0, 1))
         for col, just in (("worker", "left"), ("games", "right"), ("games/h", "right"),
                           ("pos/s", "right"), ("evals/s", "right"), ("snap", "right"),
-                          ("lag", "right"), ("age", "right"), ("live", "right"),
+                          ("lag", "right"), ("age", "right"), ("playing", "right"),
                           ("seen", "right")):
             wt.add_column(col, justify=just, no_wrap=True)  # type: ignore[arg-type]
         shown = sorted(workers, key=lambda w: str(w.get("id")))
@@ -163,7 +163,8 @@ def render_summary(s: Summary) -> RenderableType:
 def watch_run(run: str | os.PathLike[str], interval: float = 2.0, once: bool = False,
               console: Console | None = None, max_frames: int | None = None,
               on_summary: Callable[[Summary], None] | None = None) -> int:
-    """Show the run's status, refreshing every ``interval`` seconds until Ctrl-C.
+    """Show the run's status, refreshing every ``interval`` seconds until Ctrl-C (which ends
+    the watch normally).
 
     ``once``: draw one frame and return. In a non-interactive console frames are printed one
     after another. ``max_frames`` bounds the number of refreshes (tests); ``on_summary`` is
@@ -184,16 +185,19 @@ def watch_run(run: str | os.PathLike[str], interval: float = 2.0, once: bool = F
     if once:
         console.print(frame())
         return frames
-    if not console.is_terminal:
-        while max_frames is None or frames < max_frames:
-            console.print(frame())
-            console.file.flush()
-            if max_frames is not None and frames >= max_frames:
-                break
-            time.sleep(interval)
-        return frames
-    with Live(frame(), console=console, refresh_per_second=4, transient=False) as live:
-        while max_frames is None or frames < max_frames:
-            time.sleep(interval)
-            live.update(frame())
+    try:
+        if not console.is_terminal:
+            while max_frames is None or frames < max_frames:
+                console.print(frame())
+                console.file.flush()
+                if max_frames is not None and frames >= max_frames:
+                    break
+                time.sleep(interval)
+            return frames
+        with Live(frame(), console=console, refresh_per_second=4, transient=False) as live:
+            while max_frames is None or frames < max_frames:
+                time.sleep(interval)
+                live.update(frame())
+    except KeyboardInterrupt:  # Ctrl-C is how a watch ends
+        pass
     return frames
