@@ -470,3 +470,7 @@ def test_benchmark_playouts_runs_in_compiled_code_and_is_seeded() -> None:
     assert n1 == g.benchmark_playouts(5, seed=1)
     assert 5 * 20 < n1 <= 5 * g.max_moves
     assert g.benchmark_playouts(0, seed=1) == 0
+    # the other rule variants run too (the kernel checks its predicted keys as it plays)
+    for options in ({"allow_suicide": True}, {"superko": False}, {"size": 19}):
+        g2 = GoGame(**{"size": 7, **options})
+        assert g2.benchmark_playouts(3, seed=2) > 3 * 10
