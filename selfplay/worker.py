@@ -57,11 +57,13 @@ class SelfPlayWorker:
     ``step()`` advances every game in flight by at least one move and returns the games that
     finished; ``play_games(n)`` returns the next ``n`` finished games. ``set_evaluator`` swaps in
     a new snapshot between calls; each position records the snapshot version in use when its
-    search started."""
+    search started. ``start_state`` (default: the game's initial state) is where every game
+    starts; ``clock`` gives the records' Unix times (inject a fixed one for byte-equal replays)."""
 
     def __init__(self, game: Game, evaluator: Evaluator, search: SearchConfig | dict[str, Any], *,
                  games_in_parallel: int, worker_id: str, seed: int, snapshot_version: int = 0,
-                 run_tag: str = "", clock: Callable[[], float] = time.time) -> None:
+                 run_tag: str = "", clock: Callable[[], float] = time.time,
+                 start_state: Any | None = None) -> None:
         if isinstance(search, dict):
             search = SearchConfig.parse(search)
         if not isinstance(search, SearchConfig):
@@ -73,6 +75,9 @@ class SelfPlayWorker:
         if not isinstance(worker_id, str) or not worker_id:
             raise ConfigError(f"worker_id={worker_id!r} must be a non-empty string")
         evaluator.check_game(game)
+        if start_state is not None and game.is_terminal(start_state):
+            raise ConfigError("start_state is a finished position; self-play needs a position with a move to make")
+        self.start_state = start_state
         self.game = game
         self.evaluator = evaluator
         self.config = search
@@ -119,7 +124,7 @@ class SelfPlayWorker:
         game_id = f"{self.run_tag}{self.worker_id}-{index:08d}"
         builder = GameRecordBuilder(game_id, self.game.name, self.game.options(), self.worker_id, gseed,
                                     self._search_settings, self.clock())
-        state = self.game.initial_state()
+        state = self.game.initial_state() if self.start_state is None else self.start_state
         self._tree.set_root(slot, state)
         return _GameInFlight(index, game_id, gseed, rng, state, builder, resign_disabled)
 
@@ -142,16 +147,18 @@ class SelfPlayWorker:
             action = res.chosen
         else:
             action = choose_by_visits(res.visits, cfg.temperature_at(game.move_count(state)), g.rng)
+        g.builder.add_position(game.compact(state), mover, action, self._tree.root_legal(slot),
+                               res.policy_actions, res.policy_weights, res.root_value, res.full,
+                               g.search_snapshot)
         if cfg.resign_threshold is not None and res.root_value < cfg.resign_threshold:
             if g.resign_disabled:
                 if g.resign_would_have < 0:
                     g.resign_would_have = mover
             else:
+                # The resigning position stays in the record (a lost position with its search
+                # target); its action is the move the search chose, never played.
                 self._finish(slot, -1 if mover == 0 else 1, resigned=True)
                 return
-        g.builder.add_position(game.compact(state), mover, action, self._tree.root_legal(slot),
-                               res.policy_actions, res.policy_weights, res.root_value, res.full,
-                               g.search_snapshot)
         new_state = self._tree.advance(slot, action)
         g.state = new_state
         g.moves_made += 1

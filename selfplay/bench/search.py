@@ -1,0 +1,178 @@
+"""``selfplay bench search``: how close self-play comes to the network's own speed.
+
+Measured in one run, same network, same torch thread count:
+
+- ``inference_bound_evals_per_second``: evaluations/s of the network alone (one forward pass of
+  ready-made input planes) at the mean batch size the search fed it;
+- ``selfplay_evals_per_second`` and ``positions_per_second`` of the vectorised worker with
+  ``--games-in-parallel`` games;
+- ``efficiency`` = self-play evals/s / inference bound (target >= 0.8);
+- ``batching_speedup`` = positions/s with G games over positions/s of ONE game with batch-1
+  evaluation (target >= 3);
+- the share of self-play time in rules, tree and network (and input encoding within network).
+
+Figures are medians over repeats of ``--seconds`` each; the machine is shared, so read ratios.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import statistics
+import time
+from typing import Any
+
+import numpy as np
+import torch
+
+from selfplay.errors import ConfigError
+from selfplay.evaluators import NetworkEvaluator
+from selfplay.games.registry import make_game
+from selfplay.network import NetworkConfig, build_network
+from selfplay.search.config import SearchConfig
+from selfplay.worker import SelfPlayWorker
+
+_GAMES = {
+    "go9": ("go", {"size": 9}),
+    "go": ("go", {"size": 9}),
+    "fourinrow": ("fourinrow", {}),
+    "tictactoe": ("tictactoe", {}),
+    "gomoku9": ("gomoku", {"m": 9, "n": 9, "k": 5}),
+}
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--game", default="go9", choices=sorted(_GAMES),
+                        help="game to play (default go9: Go on 9x9)")
+    parser.add_argument("--net", default="reference", choices=["tiny", "reference"],
+                        help="network size: reference = 6 blocks x 64 channels (default)")
+    parser.add_argument("--seconds", type=float, default=8.0, help="seconds per measurement (default 8)")
+    parser.add_argument("--repeats", type=int, default=3, help="repeats of each measurement; medians are shown (default 3)")
+    parser.add_argument("--games-in-parallel", type=int, default=32, help="games per worker, G (default 32)")
+    parser.add_argument("--leaves-per-game", type=int, default=1, help="leaves per game per batch, virtual loss beyond 1 (default 1)")
+    parser.add_argument("--simulations", type=int, default=64, help="simulations per move (default 64)")
+    parser.add_argument("--algorithm", default="puct", choices=["puct", "gumbel"], help="root search (default puct)")
+    parser.add_argument("--threads", type=int, default=1, help="torch threads (default 1)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the worker (default 0)")
+
+
+def _check(args: argparse.Namespace) -> None:
+    for name in ("seconds",):
+        if getattr(args, name) <= 0:
+            raise ConfigError(f"--{name}={getattr(args, name)} must be positive")
+    for name in ("repeats", "games_in_parallel", "leaves_per_game", "simulations", "threads"):
+        if getattr(args, name) < 1:
+            raise ConfigError(f"--{name.replace('_', '-')}={getattr(args, name)} must be at least 1")
+
+
+def _measure(worker: SelfPlayWorker, seconds: float) -> dict[str, Any]:
+    moves0 = worker.positions_total_moves()
+    stats = worker.stats()
+    stats["_moves"] = moves0
+    ev_times = worker.evaluator.times
+    enc0, fwd0 = ev_times.encode, ev_times.forward
+    t0 = time.perf_counter()
+    while time.perf_counter() - t0 < seconds:
+        worker.step()
+    elapsed = time.perf_counter() - t0
+    after = worker.stats()
+    d = {k: after[k] - stats[k] for k in ("evals_total", "batches_total", "seconds_rules", "seconds_tree",
+                                          "seconds_network")}
+    total = max(d["seconds_rules"] + d["seconds_tree"] + d["seconds_network"], 1e-9)
+    return {
+        "evals_per_second": d["evals_total"] / elapsed,
+        "positions_per_second": (worker.positions_total_moves() - moves0) / elapsed,
+        "mean_batch": d["evals_total"] / max(d["batches_total"], 1),
+        "share_rules": d["seconds_rules"] / total,
+        "share_tree": d["seconds_tree"] / total,
+        "share_network": d["seconds_network"] / total,
+        "share_encode": (ev_times.encode - enc0) / total,
+        "share_forward": (ev_times.forward - fwd0) / total,
+        "us_per_eval_outside_forward": 1e6 * (total - (ev_times.forward - fwd0)) / max(d["evals_total"], 1),
+    }
+
+
+def inference_bound(net: torch.nn.Module, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
+    """Evaluations/s of ``net`` alone on random planes at ``batch`` (inference mode)."""
+    x = torch.from_numpy(np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round())
+    n = 0
+    with torch.inference_mode():
+        for _ in range(3):
+            net(x)
+        t0 = time.perf_counter()
+        while time.perf_counter() - t0 < seconds:
+            net(x)
+            n += batch
+    return n / (time.perf_counter() - t0)
+
+
+def run(args: argparse.Namespace) -> int:
+    _check(args)
+    name, options = _GAMES[args.game]
+    game = make_game(name, **options)
+    net_cfg = NetworkConfig.reference() if args.net == "reference" else NetworkConfig.tiny()
+    net = build_network(game, net_cfg, seed=args.seed)
+    search = SearchConfig(algorithm=args.algorithm, simulations=args.simulations,
+                          leaves_per_game=args.leaves_per_game, temperature_moves=10_000)
+    evaluator = NetworkEvaluator(net, threads=args.threads, game=game)
+    many = SelfPlayWorker(game, evaluator, search, games_in_parallel=args.games_in_parallel,
+                          worker_id="bench", seed=args.seed)
+    single_search = search.model_copy(update={"leaves_per_game": 1})
+    one = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game), single_search,
+                         games_in_parallel=1, worker_id="bench1", seed=args.seed)
+    many.step()  # warm-up (compilation, allocator)
+    one.step()
+    many_runs, one_runs, bounds = [], [], []
+    for _ in range(args.repeats):
+        m = _measure(many, args.seconds)
+        many_runs.append(m)
+        bounds.append(inference_bound(net, tuple(game.input_shape), max(1, round(m["mean_batch"])), args.seconds / 2))
+        one_runs.append(_measure(one, args.seconds / 2))
+
+    def med(runs: list[dict[str, Any]], key: str) -> float:
+        return float(statistics.median(r[key] for r in runs))
+
+    bound = float(statistics.median(bounds))
+    evals = med(many_runs, "evals_per_second")
+    pps = med(many_runs, "positions_per_second")
+    pps_one = med(one_runs, "positions_per_second")
+    out = {
+        "game": args.game,
+        "network": f"{net_cfg.blocks}x{net_cfg.channels}",
+        "threads": args.threads,
+        "algorithm": args.algorithm,
+        "simulations": args.simulations,
+        "games_in_parallel": args.games_in_parallel,
+        "leaves_per_game": args.leaves_per_game,
+        "mean_batch_size": med(many_runs, "mean_batch"),
+        "inference_bound_evals_per_second": bound,
+        "selfplay_evals_per_second": evals,
+        "positions_per_second": pps,
+        "efficiency": evals / bound if bound else 0.0,
+        "single_game_positions_per_second": pps_one,
+        "single_game_evals_per_second": med(one_runs, "evals_per_second"),
+        "batching_speedup": pps / pps_one if pps_one else 0.0,
+        "time_share_rules": med(many_runs, "share_rules"),
+        "time_share_tree": med(many_runs, "share_tree"),
+        "time_share_network": med(many_runs, "share_network"),
+        "time_share_encode": med(many_runs, "share_encode"),
+        "time_share_forward": med(many_runs, "share_forward"),
+        "microseconds_per_eval_outside_forward": med(many_runs, "us_per_eval_outside_forward"),
+        "repeats": args.repeats,
+        "seconds_per_measurement": args.seconds,
+    }
+    if getattr(args, "json", False):
+        print(json.dumps(out))
+        return 0
+    print(f"search benchmark: {out['game']}, net {out['network']}, {args.threads} thread(s), {args.algorithm}, "
+          f"{args.simulations} simulations, G={args.games_in_parallel}, leaves/game={args.leaves_per_game}")
+    print(f"  inference bound (batch {out['mean_batch_size']:.1f}):  {bound:10.0f} evals/s")
+    print(f"  self-play:                         {evals:10.0f} evals/s  {pps:8.1f} positions/s")
+    print(f"  efficiency:                        {out['efficiency']:10.2f}   (target >= 0.8)")
+    print(f"  one game, batch 1:                 {out['single_game_evals_per_second']:10.0f} evals/s  {pps_one:8.1f} positions/s")
+    print(f"  batching speedup:                  {out['batching_speedup']:10.2f}   (target >= 3)")
+    print(f"  time shares: rules {out['time_share_rules']:.1%}  tree {out['time_share_tree']:.1%}  "
+          f"network {out['time_share_network']:.1%} (encode {out['time_share_encode']:.1%}, "
+          f"forward {out['time_share_forward']:.1%})")
+    print(f"  outside the forward pass: {out['microseconds_per_eval_outside_forward']:.0f} us per evaluation")
+    return 0

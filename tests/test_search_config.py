@@ -1,0 +1,70 @@
+"""Search settings: bad values are refused with the field named; the published defaults hold."""
+
+from __future__ import annotations
+
+import pytest
+from pydantic import ValidationError
+
+from selfplay.errors import ConfigError
+from selfplay.games.mnk import MNKGame, tictactoe
+from selfplay.search import SearchConfig
+
+
+@pytest.mark.parametrize("field,value", [
+    ("simulations", 0),
+    ("simulations", -5),
+    ("temperature", -0.1),
+    ("final_temperature", -1.0),
+    ("rollout_mix_lambda", -0.01),
+    ("rollout_mix_lambda", 1.5),
+    ("dirichlet_epsilon", 1.2),
+    ("full_search_share", -0.5),
+    ("resign_disabled_share", 2.0),
+    ("resign_threshold", -1.0),
+    ("leaves_per_game", 0),
+    ("c_puct", 0.0),
+    ("gumbel_considered_actions", 0),
+    ("algorithm", "minimax"),
+])
+def test_bad_values_name_the_field(field, value):
+    with pytest.raises(ValidationError) as exc:
+        SearchConfig(**{field: value})
+    assert field in str(exc.value)
+    with pytest.raises(ConfigError) as exc2:
+        SearchConfig.parse({field: value})
+    assert f"search.{field}" in str(exc2.value)
+
+
+def test_unknown_field_and_inconsistent_budgets_are_refused():
+    with pytest.raises(ConfigError, match="simulatons"):
+        SearchConfig.parse({"simulatons": 10})
+    with pytest.raises(ConfigError, match="reduced_simulations"):
+        SearchConfig.parse({"simulations": 16, "reduced_simulations": 32})
+
+
+def test_published_defaults():
+    cfg = SearchConfig()
+    # AlphaGo Zero / AlphaZero: epsilon 0.25; resignation disabled in 10% of games.
+    assert cfg.dirichlet_epsilon == 0.25
+    assert cfg.resign_disabled_share == 0.1
+    # Danihelka et al. 2022: m = 16 considered actions, c_visit = 50, c_scale = 1.
+    assert (cfg.gumbel_considered_actions, cfg.gumbel_c_visit, cfg.gumbel_c_scale) == (16, 50.0, 1.0)
+    # every field carries a description
+    assert all(f.description for f in SearchConfig.model_fields.values())
+
+
+def test_default_alpha_is_inversely_proportional_to_legal_moves():
+    cfg = SearchConfig()
+    small, large = tictactoe(), MNKGame(15, 15, 5)
+    assert cfg.alpha_for(small) == pytest.approx(10 / small.typical_legal_moves)
+    assert cfg.alpha_for(large) == pytest.approx(10 / large.typical_legal_moves)
+    # AlphaZero's 0.03 for Go (about 250 typical legal moves on 19x19, from the papers'
+    # inverse-proportional rule) and 0.3 for chess (about 35): the rule 10 / moves gives both.
+    assert 10 / 250 == pytest.approx(0.04, abs=0.011)
+    assert 10 / 35 == pytest.approx(0.3, abs=0.02)
+    assert SearchConfig(dirichlet_alpha=0.5).alpha_for(large) == 0.5
+
+
+def test_temperature_schedule():
+    cfg = SearchConfig(temperature=1.0, temperature_moves=3, final_temperature=0.0)
+    assert [cfg.temperature_at(i) for i in range(5)] == [1.0, 1.0, 1.0, 0.0, 0.0]
