@@ -173,3 +173,19 @@ def test_bad_input():
                                     game_options={}, full_search_share=0.0))
     with pytest.raises(BufferEmptyError, match="full-search"):
         buf.sample(4, policy_targets_only=True)
+
+
+def test_replay_benchmark_reports_its_figures(capsys):
+    import json
+
+    from selfplay.cli import main
+
+    assert main(["bench", "replay", "--json", "--games", "3", "--positions", "1500", "--batches", "2",
+                 "--repeats", "1", "--fill", "2000", "--game", "tictactoe"]) == 0
+    figs = json.loads(capsys.readouterr().out)
+    for key in ("ingest_ram_positions_per_second", "ingest_disk_positions_per_second",
+                "sample_positions_per_second", "disk_bytes_per_position", "ram_bytes_per_position",
+                "ram_bytes_for_fill"):
+        assert figs[key] > 0, key
+    assert figs["fill_positions"] == 2000
+    assert main(["bench", "replay", "--repeats", "0"]) == 2
