@@ -22,6 +22,7 @@ def test_json_has_an_entry_per_game_with_positive_rates(capsys):
     for key, entry in doc["games"].items():
         assert entry["moves_per_second"] > 0, key
         assert entry["legal_masks_per_second"] > 0, key
+        assert entry["moves_per_cpu_second"] > 0, key
         assert len(entry["moves_per_second_repeats"]) == 2
         assert min(entry["moves_per_second_repeats"]) <= entry["moves_per_second"] <= max(entry["moves_per_second_repeats"])
         assert entry["games_finished"] >= 0 and entry["mean_game_length"] != 0
@@ -49,8 +50,8 @@ def test_random_playouts_play_whole_games():
     import numpy as np
 
     game = make_game("tictactoe")
-    moves, games, elapsed = rules.random_playouts(game, 0.05, np.random.default_rng(0))
-    assert games > 0 and elapsed >= 0.05
+    moves, games, elapsed, cpu = rules.random_playouts(game, 0.05, np.random.default_rng(0))
+    assert games > 0 and elapsed >= 0.05 and cpu > 0
     # a tic-tac-toe game lasts 5 to 9 moves
     assert 5 * games <= moves <= 9 * (games + 1)
 
