@@ -336,6 +336,10 @@ class Launcher:
         self.started_at = time.time()
         self.initial_games = int(self.buffer_stats["games_total"])
         self.initial_positions = int(self.buffer_stats["positions_total"])
+        already = self.stop_reached()
+        if already:
+            self.say(f"the run already holds {already}: nothing to do (raise --games/--positions to go on)")
+            return
         self._top_up()
         if self.learner is not None:
             self._submit_learner()
@@ -584,5 +588,18 @@ class Launcher:
         if self.buffer is not None:
             self.say(self.status_line())
         return self.buffer_stats
+
+    def kill_actors(self) -> None:
+        """End every actor of this run (after :meth:`finish`); a driver that exits does the same."""
+        import ray
+
+        handles = [ws.handle for ws in self.slots.values()]
+        handles += list(self.buffer.handles) if self.buffer is not None else []
+        handles += [h for h in (self.learner, self.snapshots) if h is not None]
+        for h in handles:
+            try:
+                ray.kill(h, no_restart=True)
+            except Exception:  # noqa: BLE001 - already gone
+                pass
 
     stopping = False

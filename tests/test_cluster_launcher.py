@@ -1,0 +1,132 @@
+"""`selfplay run` refuses bad input before anything starts (no Ray, nothing written)."""
+
+from __future__ import annotations
+
+import argparse
+import socket
+
+import pytest
+
+from cluster.launcher import RunPlan, resolve_run, write_run_toml
+from selfplay.cli import main
+from selfplay.config import dump_config, load_config, load_preset, with_overrides
+
+
+def _run(argv, capsys):
+    code = main(["run", *argv])
+    return code, capsys.readouterr().err
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _args(**kw):
+    base = dict(preset=None, config=None, out=None, games=None, positions=None, minutes=None, workers=None,
+                resume=False, no_learner=False, address=None, metrics_port=None, metrics_host="127.0.0.1")
+    base.update(kw)
+    return argparse.Namespace(**base)
+
+
+def _make_run(tmp_path, preset="tictactoe"):
+    out = tmp_path / "run"
+    plan = resolve_run(_args(preset=preset, out=str(out)))
+    write_run_toml(plan)
+    return out
+
+
+def test_unknown_preset(tmp_path, capsys):
+    code, err = _run(["--preset", "chess", "--out", str(tmp_path / "r")], capsys)
+    assert code == 2
+    assert "no preset named 'chess'" in err and "tictactoe" in err
+    assert not (tmp_path / "r").exists()
+
+
+def test_more_workers_than_cpus(tmp_path, capsys):
+    code, err = _run(["--preset", "tictactoe", "--out", str(tmp_path / "r"), "--workers", "4096"], capsys)
+    assert code == 2
+    assert "--workers 4096" in err and "CPU" in err
+    assert not (tmp_path / "r").exists()
+
+
+def test_unreachable_address(tmp_path, capsys, monkeypatch):
+    monkeypatch.delenv("RAY_ADDRESS", raising=False)
+    port = _free_port()
+    code, err = _run(["--preset", "tictactoe", "--out", str(tmp_path / "r"), "--address", f"127.0.0.1:{port}"],
+                     capsys)
+    assert code == 2
+    assert f"127.0.0.1:{port}" in err and "cannot reach" in err
+    assert not (tmp_path / "r").exists()
+    code, err = _run(["--preset", "tictactoe", "--out", str(tmp_path / "r"), "--address", "headnode"], capsys)
+    assert code == 2 and "not host:port" in err
+
+
+def test_ray_address_variable_is_used(tmp_path, monkeypatch):
+    monkeypatch.setenv("RAY_ADDRESS", "10.1.2.3:6379")
+    plan = resolve_run(_args(preset="tictactoe", out=str(tmp_path / "r")))
+    assert plan.address == "10.1.2.3:6379"
+    monkeypatch.delenv("RAY_ADDRESS")
+    assert resolve_run(_args(preset="tictactoe", out=str(tmp_path / "r"))).address is None
+
+
+def test_bad_stop_conditions(tmp_path, capsys):
+    for flag, value in (("--games", "0"), ("--positions", "-5"), ("--minutes", "0"), ("--workers", "0")):
+        code, err = _run(["--preset", "tictactoe", "--out", str(tmp_path / "r"), flag, value], capsys)
+        assert code == 2, flag
+        assert flag in err, err
+
+
+def test_needs_a_config(tmp_path, capsys):
+    code, err = _run(["--out", str(tmp_path / "r")], capsys)
+    assert code == 2 and "--preset NAME or --config FILE" in err
+
+
+def test_existing_run_needs_resume(tmp_path, capsys):
+    out = _make_run(tmp_path)
+    code, err = _run(["--preset", "tictactoe", "--out", str(out)], capsys)
+    assert code == 2 and "holds a run" in err and "--resume" in err
+    (tmp_path / "other").mkdir()
+    (tmp_path / "other" / "notes.txt").write_text("mine")
+    code, err = _run(["--preset", "tictactoe", "--out", str(tmp_path / "other")], capsys)
+    assert code == 2 and "is not empty" in err
+    assert (tmp_path / "other" / "notes.txt").read_text() == "mine"
+
+
+def test_resume_refuses_another_game_or_config(tmp_path, capsys):
+    out = _make_run(tmp_path)
+    before = (out / "run.toml").read_bytes()
+    code, err = _run(["--preset", "fourinrow", "--out", str(out), "--resume"], capsys)
+    assert code == 2
+    assert "from another game" in err and "game.name is 'mnk' there, 'fourinrow' here" in err
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(dump_config(with_overrides(load_preset("tictactoe"), {"search.simulations": 65})))
+    code, err = _run(["--config", str(cfg), "--out", str(out), "--resume"], capsys)
+    assert code == 2 and "from another config" in err and "search.simulations is 64 there, 65 here." in err
+    assert (out / "run.toml").read_bytes() == before  # nothing rewritten
+
+
+def test_resume_keeps_the_stored_config_and_takes_new_stop_conditions(tmp_path):
+    out = _make_run(tmp_path)
+    plan = resolve_run(_args(out=str(out), resume=True, games=77, workers=1))
+    assert plan.config.identity() == load_preset("tictactoe").identity()
+    assert plan.config.run.games == 77 and plan.config.run.workers == 1
+    write_run_toml(plan)
+    assert load_config(out / "run.toml").run.games == 77
+
+
+def test_resume_of_nothing(tmp_path, capsys):
+    code, err = _run(["--out", str(tmp_path / "none"), "--resume"], capsys)
+    assert code == 2 and "does not exist; nothing to resume" in err
+    (tmp_path / "empty").mkdir()
+    code, err = _run(["--out", str(tmp_path / "empty"), "--resume"], capsys)
+    assert code == 2 and "has no run.toml" in err
+
+
+def test_run_toml_is_complete(tmp_path):
+    out = _make_run(tmp_path)
+    text = (out / "run.toml").read_text()
+    assert load_config(out / "run.toml") == load_preset("tictactoe")
+    assert "# torch threads per worker" in text
+    assert isinstance(resolve_run(_args(out=str(out), resume=True)), RunPlan)
