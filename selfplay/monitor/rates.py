@@ -41,14 +41,15 @@ class CounterSeries:
 
     def add(self, t: float, raw: float) -> None:
         """Add the sample ``raw`` (the counter as reported) taken at ``t``."""
-        raw = float(raw)
-        if self._last_raw is not None and raw < self._last_raw:
-            self._offset += self._last_raw  # counter restarted from 0
+        last = self._last_raw
+        if last is not None and raw < last:
+            self._offset += last  # counter restarted from 0
             self.resets += 1
         self._last_raw = raw
-        v = raw + self._offset
-        if not self.times or t >= self.times[-1]:
-            self.times.append(float(t))
+        v = float(raw) + self._offset
+        times = self.times
+        if not times or t >= times[-1]:
+            times.append(float(t))
             self.values.append(v)
         else:
             i = bisect.bisect_right(self.times, t)

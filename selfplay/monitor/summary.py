@@ -61,7 +61,9 @@ class MetricsTail:
         self.offset = 0
         self.bad_lines = 0
 
-    def read_new(self) -> list[dict[str, Any]]:
+    def read_new(self, max_bytes: int = 8 << 20) -> list[dict[str, Any]]:
+        """Parse complete lines from the last offset, reading at most ``max_bytes`` (call again
+        until it returns [] to reach the end; memory stays bounded however big the file)."""
         try:
             size = self.path.stat().st_size
         except FileNotFoundError:
@@ -72,10 +74,14 @@ class MetricsTail:
             return []
         with open(self.path, "rb") as f:
             f.seek(self.offset)
-            data = f.read(size - self.offset)
+            data = f.read(min(size - self.offset, max_bytes))
         end = data.rfind(b"\n")
         if end < 0:
-            return []
+            if len(data) >= max_bytes:  # one line longer than max_bytes: skip past it
+                self.offset += len(data)
+                self.bad_lines += 1
+                return self.read_new(max_bytes)
+            return []  # a line still being written
         self.offset += end + 1
         rows = []
         for raw in data[: end + 1].splitlines():
@@ -108,14 +114,22 @@ class SourceState:
 
     def ingest(self, row: dict[str, Any]) -> None:
         t = float(row["t"])
-        self.first_t = min(self.first_t, t)
+        if t < self.first_t:
+            self.first_t = t
         if t >= self.last_t:
             self.last_t = t
             self.last.update(row)
+        counters = self.counters
         for name in COUNTER_FIELDS.get(self.component, ()):
             v = row.get(name)
-            if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v):
-                self.counters.setdefault(name, CounterSeries()).add(t, v)
+            if v is None:
+                continue
+            kind = type(v)
+            if kind is int or (kind is float and math.isfinite(v)):
+                series = counters.get(name)
+                if series is None:
+                    series = counters[name] = CounterSeries()
+                series.add(t, v)
 
     def counter(self, name: str) -> CounterSeries:
         return self.counters.get(name) or CounterSeries()
@@ -296,15 +310,24 @@ class RunMonitor:
         """Read what the run wrote since the last refresh."""
         if not self.run.root.is_dir():
             raise RunDirError(f"run directory {str(self.run.root)!r} is gone")
-        for row in self._tail.read_new():
-            self._ingest(row)
+        while True:
+            rows = self._tail.read_new()
+            if not rows:
+                break
+            for row in rows:
+                self._ingest(row)
+            self._trim()
         self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache))
         self.catalog = read_catalog(self.run.catalog, keep_times=self.keep_rows)
-        if not self.keep_rows and self.last_t is not None:
-            horizon = self.last_t - self.window
-            for st in self.sources.values():
-                for s in st.counters.values():
-                    s.trim_before(horizon)
+
+    def _trim(self) -> None:
+        """Forget counter samples older than the window (live views keep bounded memory)."""
+        if self.keep_rows or self.last_t is None:
+            return
+        horizon = self.last_t - self.window
+        for st in self.sources.values():
+            for s in st.counters.values():
+                s.trim_before(horizon)
 
     def _ingest(self, row: dict[str, Any]) -> None:
         t = float(row["t"])
