@@ -14,6 +14,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from selfplay.errors import ConfigError, IllegalMoveError, UnknownGameError
 from selfplay.games.base import Game
@@ -325,3 +327,27 @@ BAD_SIZES = [
 def test_out_of_range_options_name_the_field(name, options, field):
     with pytest.raises(ConfigError, match=rf"\b{field}="):
         make_game(name, **options)
+
+
+@pytest.mark.parametrize("text", ["A\u00b9", "a\u00b2", "\u00b9", "\u0663", "1\x00", " ", "a-1", "pass pass"])
+def test_tricky_move_text_is_an_action_or_a_clear_error(game: Game, text: str):
+    # superscript and non-ASCII digits pass str.isdigit() but are not move numbers
+    try:
+        a = game.text_to_action(text)
+    except IllegalMoveError as exc:
+        assert str(exc)
+    else:
+        assert isinstance(a, int) and 0 <= a < game.num_actions
+        assert text.isascii()
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(text=st.text(max_size=6))
+def test_any_move_text_is_an_action_or_a_clear_error(game: Game, text: str):
+    # fuzzing (common practice for readers): no text may end in anything but IllegalMoveError
+    try:
+        a = game.text_to_action(text)
+    except IllegalMoveError as exc:
+        assert str(exc)
+    else:
+        assert isinstance(a, int) and 0 <= a < game.num_actions

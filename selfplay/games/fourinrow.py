@@ -227,7 +227,7 @@ class FourInRowGame(Game[FourInRowState]):
 
     def text_to_action(self, text: str) -> int:
         t = str(text).strip().lower()
-        if t.isdigit() and 1 <= int(t) <= self.columns:
+        if t.isascii() and t.isdigit() and 1 <= int(t) <= self.columns:
             return int(t) - 1
         if self.columns <= 26 and len(t) == 1 and "a" <= t <= "z" and ord(t) - ord("a") < self.columns:
             return ord(t) - ord("a")

@@ -182,7 +182,7 @@ class MNKGame(Game[MNKState]):
 
     def text_to_action(self, text: str) -> int:
         t = text.strip().lower()
-        if len(t) >= 2 and t[0].isalpha() and t[1:].isdigit():
+        if len(t) >= 2 and t.isascii() and t[0].isalpha() and t[1:].isdigit():
             c = ord(t[0]) - ord("a")
             r = self.n - int(t[1:])
             if 0 <= c < self.m and 0 <= r < self.n:
