@@ -192,7 +192,10 @@ class Learner:
         return max(0, int(budget // self.config.batch_size))
 
     # ---- one optimiser step ------------------------------------------------------------------
-    def _apply(self, batch: Mapping[str, np.ndarray], *, counts_toward_reuse: bool) -> LossParts:
+    def train_on_batch(self, batch: Mapping[str, np.ndarray], *, counts_toward_reuse: bool = True) -> LossParts:
+        """One optimiser step on ``batch`` (the replay buffer's sample format); no publishing.
+
+        Raises TrainingDivergedError, leaving the network untouched, if the loss is not finite."""
         cfg = self.config
         lr = learning_rate_at(cfg, self.step + self.pretrain_steps)
         for group in self.optimizer.param_groups:
@@ -231,10 +234,10 @@ class Learner:
         The batch is drawn from all positions (each is a value target); the AlphaZero policy
         term is averaged over the batch's full-search rows only. Publishes every K steps."""
         batch = self._sample(self.buffer, need_policy=False)
-        parts = self._apply(batch, counts_toward_reuse=True)
-        self._log(parts)
+        parts = self.train_on_batch(batch, counts_toward_reuse=True)
         if self.step % self.config.steps_per_snapshot == 0:
             self.publish()
+        self._log(parts)
         return parts
 
     def train_available(self, positions_generated: int | None = None, max_steps: int | None = None) -> int:
@@ -325,7 +328,7 @@ class Learner:
         out = []
         try:
             for _ in range(steps):
-                parts = self._apply(self._sample(buf, need_policy=False), counts_toward_reuse=False)
+                parts = self.train_on_batch(self._sample(buf, need_policy=False), counts_toward_reuse=False)
                 self._log(parts, phase="pretrain")
                 out.append(parts)
         finally:

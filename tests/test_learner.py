@@ -74,7 +74,7 @@ def test_alphazero_loss_matches_the_published_formula(ttt):
     want_l2 = 1e-3 * sum(float((p.detach().double() ** 2).sum()) for p in net.parameters())
     assert float(parts["loss_policy"].detach()) == pytest.approx(want_policy, rel=1e-5)
     assert float(parts["loss_value"].detach()) == pytest.approx(want_value, rel=1e-5)
-    assert float(parts["loss_l2"]) == pytest.approx(want_l2, rel=1e-5)
+    assert float(parts["loss_l2"].detach()) == pytest.approx(want_l2, rel=1e-5)
     assert float(total.detach()) == pytest.approx(want_policy + want_value + want_l2, rel=1e-5)
 
 
@@ -124,3 +124,211 @@ def test_learning_rate_schedules():
 def test_bad_learner_config_is_refused_with_the_field(field, value, words):
     with pytest.raises(ConfigError, match=words.replace("(", r"\(")):
         LearnerConfig(**{field: value})
+
+
+# ---- with the real replay buffer -----------------------------------------------------------
+
+from selfplay.replay.buffer import ReplayBuffer  # noqa: E402
+
+
+def random_records(game, n_games, seed, *, expert=None):
+    """Finished games of uniformly random play (policy target: uniform over the legal moves),
+    or, with ``expert`` (a MinimaxSolver), supervised games whose every move is minimax-optimal
+    with a one-hot target on it."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for g in range(n_games):
+        b = GameRecordBuilder(f"test-{seed}-{g}", game.name, game.options(), "test", seed, {}, 0.0)
+        s = game.initial_state()
+        while not game.is_terminal(s):
+            legal = game.legal_actions(s)
+            if expert is not None:
+                best = expert.optimal_actions(s)
+                a = best[int(rng.integers(len(best)))]
+                pa, pw = np.array([a]), np.array([1.0])
+            else:
+                a = int(legal[rng.integers(legal.size)])
+                pa, pw = legal, np.ones(legal.size)
+            b.add_position(game.compact(s), game.to_play(s), a, game.legal_mask(s), pa, pw, 0.0,
+                           bool(len(out) % 2 == 0 or expert is not None), 1)
+            s = game.play(s, a)
+        out.append(b.finish(int(game.outcome(s)), 0.0))
+    return out
+
+
+def make_learner(tmp_path, game, records, **cfg):
+    buf = ReplayBuffer(game, 50_000, augment=True, seed=0)
+    for r in records:
+        buf.add(r)
+    net = build_network(game, NetworkConfig.tiny(), seed=0)
+    store = SnapshotStore(tmp_path)
+    config = LearnerConfig(**{"batch_size": 32, "min_buffer_positions": 10, **cfg})
+    return Learner(game, net, config, buf, store), buf, store
+
+
+def test_sampled_action_follows_the_board_symmetry(ttt):
+    recs = random_records(ttt, 20, seed=3)
+    buf = ReplayBuffer(ttt, 10_000, augment=True, seed=1)
+    for r in recs:
+        buf.add(r)
+    batch = buf.sample(512)
+    # the move played was legal, so after the same symmetry it is legal in the transformed mask
+    assert batch["mask"][np.arange(512), batch["action"]].all()
+    assert len(set(batch["symmetry"].tolist())) == 8
+    plain = ReplayBuffer(ttt, 10_000, augment=False, seed=1)
+    plain.add(recs[0])
+    got = plain.sample(256)
+    played = {(bytes(ttt.encode(ttt.play_sequence(recs[0].actions[:t])).tobytes()), int(recs[0].actions[t]))
+              for t in range(recs[0].num_positions)}
+    assert all((p.tobytes(), int(a)) in played for p, a in zip(got["planes"], got["action"]))
+
+
+def test_reuse_ratio_is_held_and_snapshots_every_k_steps(tmp_path, ttt):
+    learner, buf, store = make_learner(tmp_path, ttt, random_records(ttt, 30, 0), target_reuse_ratio=2.0,
+                                       steps_per_snapshot=5, min_buffer_positions=100)
+    assert learner.train_available(99) == 0  # below min_buffer_positions
+    took = learner.train_available(160)
+    assert took == (2 * 160) // 32 == 10
+    assert learner.samples_trained_total == 320 <= 2.0 * 160
+    assert learner.train_available(160) == 0  # no new data: the ratio holds the learner back
+    assert learner.reuse_ratio == pytest.approx(2.0)
+    assert store.versions() == [1, 2]  # every K = 5 steps
+    assert [store.info(v).training_steps for v in (1, 2)] == [5, 10]
+    rows = [r for r in read_metrics(store.run.metrics) if r["component"] == "learner"]
+    need = {"step", "steps_per_second", "loss", "loss_policy", "loss_value", "loss_l2",
+            "samples_trained_total", "reuse_ratio", "learning_rate", "snapshot_version"}
+    assert rows and all(need <= set(r) for r in rows)  # the field names of RULES.md
+    assert rows[-1]["step"] == 10 and rows[-1]["snapshot_version"] == 2
+
+
+def test_a_ratio_that_can_never_be_met_is_a_clear_error(tmp_path, ttt):
+    learner, buf, store = make_learner(tmp_path, ttt, random_records(ttt, 10, 0), target_reuse_ratio=1.0,
+                                       max_wait_seconds=0.3)
+    with pytest.raises(ReuseRatioError, match="no new positions.*ratio"):
+        learner.train_waiting(lambda: 64, steps=10, poll_seconds=0.05)
+    assert learner.step == 2  # it trained what the data allowed, then gave up waiting
+    with pytest.raises(ConfigError, match="min_buffer_positions"):
+        learner.check_reachable(5)
+    with pytest.raises(ConfigError, match="never be met"):
+        make_learner(tmp_path / "b", ttt, [], target_reuse_ratio=0.01, batch_size=256,
+                     min_buffer_positions=10)[0].check_reachable(1000)
+
+
+def test_waiting_learner_continues_when_data_arrives(tmp_path, ttt):
+    learner, buf, store = make_learner(tmp_path, ttt, random_records(ttt, 10, 0), target_reuse_ratio=1.0,
+                                       max_wait_seconds=5.0)
+    produced = iter([32, 32, 32, 64, 64, 96, 96, 128] + [128] * 1000)
+    assert learner.train_waiting(lambda: next(produced), steps=4, poll_seconds=0.01) == 4
+    assert learner.samples_trained_total == 128
+
+
+def test_nan_loss_stops_and_keeps_the_last_good_snapshot(tmp_path, ttt):
+    learner, buf, store = make_learner(tmp_path, ttt, random_records(ttt, 20, 0), steps_per_snapshot=3)
+    learner.train_available(10_000, max_steps=3)
+    assert store.latest_version() == 1
+    good = store.load(1)[0]
+    ckpt = (tmp_path / "learner" / "checkpoint.json").read_bytes()
+    with torch.no_grad():
+        learner.net.value_fc2.bias.fill_(float("nan"))  # a diverged parameter
+    with pytest.raises(TrainingDivergedError, match="nan.*step 3.*version 1"):
+        learner.train_step()
+    assert store.versions() == [1] and torch.equal(store.load(1)[0]["value_fc2.bias"], good["value_fc2.bias"])
+    assert (tmp_path / "learner" / "checkpoint.json").read_bytes() == ckpt
+    assert learner.step == 3
+
+
+@pytest.mark.parametrize("optimizer", ["adam", "sgd"])
+def test_checkpoint_and_resume_with_optimizer_state(tmp_path, ttt, optimizer):
+    recs = random_records(ttt, 20, 0)
+    a, buf, store = make_learner(tmp_path, ttt, recs, optimizer=optimizer, steps_per_snapshot=4,
+                                 lr_schedule="cosine", lr_cosine_steps=50, learning_rate=0.01)
+    a.train_available(10_000, max_steps=8)  # checkpoint written with snapshot 2 at step 8
+    b, _, _ = make_learner(tmp_path, ttt, recs, optimizer=optimizer, steps_per_snapshot=4,
+                           lr_schedule="cosine", lr_cosine_steps=50, learning_rate=0.01)
+    assert b.resume() == "checkpoint"
+    assert (b.step, b.samples_trained_total, b.snapshot_version) == (8, 256, 2)
+    sa, sb = a.optimizer.state_dict()["state"], b.optimizer.state_dict()["state"]
+    assert sa.keys() == sb.keys() and sa
+    for idx in sa:
+        for key, val in sa[idx].items():
+            assert torch.equal(torch.as_tensor(val), torch.as_tensor(sb[idx][key])), (idx, key)
+    # the same batch from the same state gives the same weights: the optimiser state was restored
+    batch = buf.sample(32)
+    a.train_on_batch(batch)
+    b.train_on_batch(batch)
+    for (k, va), vb in zip(a.net.state_dict().items(), b.net.state_dict().values()):
+        assert torch.allclose(va, vb, atol=1e-6), k
+
+
+def test_bad_checkpoints_are_refused(tmp_path, ttt):
+    recs = random_records(ttt, 10, 0)
+    a, _, _ = make_learner(tmp_path, ttt, recs, optimizer="adam", steps_per_snapshot=2)
+    a.train_available(10_000, max_steps=2)
+    b, _, _ = make_learner(tmp_path, ttt, recs, optimizer="sgd")
+    with pytest.raises(CheckpointError, match="optimizer"):
+        b.resume()
+    path = tmp_path / "learner" / "checkpoint.safetensors"
+    data = bytearray(path.read_bytes())
+    data[-3] ^= 0x55
+    path.write_bytes(bytes(data))
+    c, _, _ = make_learner(tmp_path, ttt, recs, optimizer="adam")
+    with pytest.raises(CheckpointError, match="checksum"):
+        c.resume()
+
+
+def test_resume_without_checkpoint_starts_from_the_newest_snapshot(tmp_path, ttt):
+    recs = random_records(ttt, 10, 0)
+    a, _, store = make_learner(tmp_path, ttt, recs, steps_per_snapshot=3)
+    a.train_available(10_000, max_steps=3)
+    (tmp_path / "learner" / "checkpoint.json").unlink()
+    b, _, _ = make_learner(tmp_path, ttt, recs)
+    assert b.resume() == "snapshot" and b.step == 3 and b.samples_trained_total == 96
+    assert all(torch.equal(x, y) for x, y in zip(a.net.state_dict().values(), b.net.state_dict().values()))
+
+
+def test_policy_gradient_objective_trains_from_the_buffer(tmp_path, ttt):
+    learner, buf, store = make_learner(tmp_path, ttt, random_records(ttt, 20, 0), objective="policy_gradient",
+                                       steps_per_snapshot=4)
+    assert learner.train_available(10_000, max_steps=4) == 4
+    assert store.latest_version() == 1 and math.isfinite(learner.history[-1]["loss"])
+
+
+@pytest.mark.slow
+def test_pretrain_on_supervised_records_learns_the_expert_moves(tmp_path, ttt):
+    # supervised first stage (AlphaGo, Silver et al. 2016): one-hot targets on an expert's moves;
+    # the expert here is perfect play computed by minimax
+    expert = random_records(ttt, 60, 5, expert=MinimaxSolver(ttt))
+    learner, _, store = make_learner(tmp_path, ttt, [], optimizer="adam", learning_rate=0.01, weight_decay=0.0)
+    probe = ReplayBuffer(ttt, 10_000, augment=False, seed=2)
+    for r in expert:
+        probe.add(r)
+    batch = probe.sample(400)
+
+    def expert_log_likelihood() -> float:
+        learner.net.eval()
+        with torch.no_grad():
+            _, parts = compute_loss(learner.net, batch, learner.config)
+        return -float(parts["loss_policy"])
+
+    before = expert_log_likelihood()
+    learner.pretrain(expert, steps=150)
+    after = expert_log_likelihood()
+    assert after > before + 0.25, (before, after)  # nats per position
+    info = store.latest()
+    assert info.version == 1 and info.extra["phase"] == "pretrain" and info.extra["pretrain_steps"] == 150
+    assert learner.samples_trained_total == 0 and learner.step == 0  # self-play ratio untouched
+    with pytest.raises(ConfigError, match="no records"):
+        learner.pretrain([], steps=5)
+
+
+def test_pretrain_from_sgf_imports(tmp_path):
+    # a short 5x5 game of our own in SGF FF[4] (the open standard), imported as supervised records
+    from selfplay.replay.sgf_records import sgf_to_record
+
+    sgf = "(;GM[1]FF[4]SZ[5]KM[0.5]RE[B+R];B[cc];W[bc];B[cb];W[bb];B[cd];W[bd];B[ca];W[ba];B[ce];W[be])"
+    rec = sgf_to_record(sgf, "own-game.sgf")
+    go = make_game(rec.game, **rec.game_options)
+    learner, _, store = make_learner(tmp_path, go, [], optimizer="adam", learning_rate=0.01, batch_size=16)
+    parts = learner.pretrain([rec], steps=40)
+    assert parts[-1].loss_policy < parts[0].loss_policy
+    assert store.latest().game == "go"

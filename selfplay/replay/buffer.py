@@ -64,6 +64,7 @@ class ReplayBuffer:
         self._outcome = np.zeros(cap, dtype=np.int8)
         self._full = np.zeros(cap, dtype=bool)
         self._snapshot = np.zeros(cap, dtype=np.int32)
+        self._action = np.zeros(cap, dtype=np.int16)  # the move played (policy-gradient objective)
         self._hist_avail = np.zeros(cap, dtype=np.uint8)  # predecessors of the same game, <= history-1
         self._pol_start = np.zeros(cap, dtype=np.int64)   # global entry sequence number
         self._pol_count = np.zeros(cap, dtype=np.uint16)
@@ -112,7 +113,7 @@ class ReplayBuffer:
     def nbytes(self) -> int:
         """Bytes of RAM held by the ring arrays (as allocated)."""
         arrays = (self._boards, self._to_play, self._legal, self._outcome, self._full,
-                  self._snapshot, self._hist_avail, self._pol_start, self._pol_count,
+                  self._snapshot, self._action, self._hist_avail, self._pol_start, self._pol_count,
                   self._e_action, self._e_prob)
         return int(sum(a.nbytes for a in arrays))
 
@@ -174,6 +175,7 @@ class ReplayBuffer:
         self._put(self._full, seq0, full)
         snap = np.asarray(rec.snapshot[s])
         self._put(self._snapshot, seq0, snap)
+        self._put(self._action, seq0, np.asarray(rec.actions[s], dtype=np.int16))
         self._put(self._hist_avail, seq0,
                   np.minimum(np.arange(first, t), self.history - 1).astype(np.uint8))
         starts = self._next_entry + np.cumsum(counts) - counts
@@ -252,7 +254,8 @@ class ReplayBuffer:
         Returns numpy arrays: ``planes`` float32 (B, C, H, W); ``policy`` float32 (B, A) rows
         summing to 1 (zero for a position stored without a policy target); ``value`` float32
         (B,) final outcome from the mover's view; ``mask`` bool (B, A) legal moves;
-        ``full_search`` bool (B,); ``snapshot`` int32 (B,); ``symmetry`` int8 (B,).
+        ``full_search`` bool (B,); ``snapshot`` int32 (B,); ``symmetry`` int8 (B,); ``action``
+        int64 (B,) the move played, transformed by the same symmetry.
         ``policy_targets_only`` draws only full-search positions with a policy target."""
         if batch_size < 1:
             raise ConfigError(f"batch_size={batch_size} must be >= 1")
@@ -318,9 +321,12 @@ class ReplayBuffer:
         sym = None
         if self.augment and self.builder.num_symmetries > 1:
             sym = self.rng.integers(self.builder.num_symmetries, size=b)
-        return self.builder.build(hist, self._to_play[slots], self._legal[slots], rows,
-                                  self._e_action[entry], self._e_prob[entry].astype(np.float64),
-                                  self._outcome[slots], self._full[slots], self._snapshot[slots], sym)
+        out = self.builder.build(hist, self._to_play[slots], self._legal[slots], rows,
+                                 self._e_action[entry], self._e_prob[entry].astype(np.float64),
+                                 self._outcome[slots], self._full[slots], self._snapshot[slots], sym)
+        # the move played, under the same symmetry as the board (int64 (B,))
+        out["action"] = self.builder.perms[out["symmetry"].astype(np.int64), self._action[slots].astype(np.int64)]
+        return out
 
     def stats(self) -> dict[str, Any]:
         """Counts for metric lines: window_positions, window_capacity, games and positions added."""
