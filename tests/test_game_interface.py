@@ -159,7 +159,7 @@ def test_random_games_keep_mask_and_play_consistent(game: Game):
 
 def test_out_of_range_and_finished_game_moves_raise(game: Game):
     state = game.initial_state()
-    for bad in (-1, game.num_actions, game.num_actions + 5):
+    for bad in (-1, game.num_actions, game.num_actions + 5, None, "x"):
         with pytest.raises(IllegalMoveError):
             game.play(state, bad)
     states, _ = random_game(game, np.random.default_rng(3))

@@ -151,7 +151,10 @@ class FourInRowGame(Game[FourInRowState]):
         return mask.copy()
 
     def play(self, state: FourInRowState, action: int) -> FourInRowState:
-        a = int(action)
+        try:
+            a = int(action)
+        except (TypeError, ValueError):
+            raise IllegalMoveError(f"move {action!r} is not an action number") from None
         first, occupied, moves, winner, key = state
         if winner >= 0 or moves >= self._cells:
             raise IllegalMoveError(f"the game is over; column {self._text_or_raw(a)} cannot be played")

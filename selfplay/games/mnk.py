@@ -118,7 +118,10 @@ class MNKGame(Game[MNKState]):
         return state.key ^ (self._zobrist_side if state.player else 0)
 
     def play(self, state: MNKState, action: int) -> MNKState:
-        a = int(action)
+        try:
+            a = int(action)
+        except (TypeError, ValueError):
+            raise IllegalMoveError(f"move {action!r} is not an action number") from None
         cells, player, moves, winner, key, lines = state
         if winner >= 0 or moves >= self.m * self.n:
             raise IllegalMoveError(f"the game is over; move {self._text_or_raw(a)} cannot be played")
