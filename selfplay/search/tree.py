@@ -113,14 +113,18 @@ class SearchTimes:
 class BatchedSearch:
     """Trees of ``slots`` games searched together; see the module docstring."""
 
-    def __init__(self, game: Game, config: SearchConfig, slots: int) -> None:
+    def __init__(self, game: Game, config: SearchConfig, slots: int, capacity: int | None = None) -> None:
         if slots < 1:
             raise ValueError("slots must be positive")
         self.game = game
         self.config = config
         self.num_slots = slots
         self.A = A = game.num_actions
-        self.capacity = C = int(math.ceil(config.node_capacity_factor * config.simulations)) + 2
+        if capacity is None:
+            capacity = int(math.ceil(config.node_capacity_factor * config.simulations)) + 2
+        if capacity < config.simulations + 2:
+            raise ValueError(f"capacity {capacity} cannot hold a search of {config.simulations} simulations")
+        self.capacity = C = int(capacity)
         total = slots * C
         self.P = np.zeros((total, A), dtype=np.float32)
         self.N = np.zeros((total, A), dtype=np.float32)
@@ -537,7 +541,8 @@ def search_states(game: Game, states: Sequence[Any], evaluator: Evaluator, confi
     results: list[SearchResult] = []
     for lo in range(0, len(states), chunk):
         part = list(states[lo:lo + chunk])
-        bs = BatchedSearch(game, config, len(part))
+        # fresh trees, no reuse: a search never holds more than its budget plus the root
+        bs = BatchedSearch(game, config, len(part), capacity=config.simulations + 2)
         for i, st in enumerate(part):
             bs.set_root(i, st)
             bs.begin(i, config.simulations, full, np.random.default_rng([seed, lo + i]))
