@@ -212,3 +212,19 @@ def test_not_a_run_directory(tmp_path):
     assert (garbage / "catalog.sqlite").read_bytes() == b"this is not sqlite" * 100
     assert sqlite3  # the catalog is plain SQLite
     assert os.path.isdir(garbage / "shards")
+
+
+def test_verify_while_open_quarantines_a_damaged_shard(tmp_path):
+    with RecordStore(tmp_path, max_games=3, compress=False) as store:
+        store.add_games(records(6))
+        store.flush()
+        path = tmp_path / "shards" / "main-00000000.plyrec"
+        data = bytearray(path.read_bytes())
+        data[-3] ^= 0xFF  # inside the last frame's payload: the first two games survive
+        path.write_bytes(bytes(data))
+        assert store.verify(full=False).clean  # same size: only a full check sees it
+        rep = store.verify()
+        assert rep.shards_quarantined == ["main-00000000.plyrec"]
+        assert (rep.games_salvaged, rep.games_lost) == (2, 1)
+        assert store.totals().games == 5
+    assert sorted(ids_in_run(tmp_path)) == ["g0", "g1", "g3", "g4", "g5"]

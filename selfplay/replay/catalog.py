@@ -7,7 +7,7 @@ Tables (column meanings in ``docs/record-format.md``):
   ``result`` (player 0's view), ``snapshot_min``/``snapshot_max``, ``started_at``/``finished_at``
   (Unix s), ``resigned``, ``resign_disabled``, ``resign_would_have``, ``full_search_positions``,
   ``added_at``; ``seq`` gives the commit order.
-- ``shards``: readable shards only: ``name``, ``games``, ``positions``, ``bytes``, ``crc32`` (of
+- ``shards``: readable shards only, ``seq`` giving the commit order: ``name``, ``games``, ``positions``, ``bytes``, ``crc32`` (of
   the whole file), ``snapshot_min``/``snapshot_max``, ``created_at``, ``writer``, ``schema_version``.
 - ``quarantine``: shards moved to RUN/quarantine/ with the reason.
 - ``counters``: ``duplicates_total`` (retried writes ignored).
@@ -31,7 +31,8 @@ CATALOG_VERSION = 1
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS shards (
-    name TEXT PRIMARY KEY,
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    name TEXT NOT NULL UNIQUE,
     games INTEGER NOT NULL,
     positions INTEGER NOT NULL,
     bytes INTEGER NOT NULL,
@@ -230,13 +231,14 @@ class Catalog:
         q = f"SELECT {', '.join(SHARD_COLUMNS)} FROM shards"
         args: tuple = ()
         if after is not None:
-            q += " WHERE rowid > (SELECT rowid FROM shards WHERE name=?)"
+            q += " WHERE seq > (SELECT seq FROM shards WHERE name=?)"
             args = (after,)
-        return [ShardRow(*r) for r in self.con.execute(q + " ORDER BY rowid", args)]
+        return [ShardRow(*r) for r in self.con.execute(q + " ORDER BY seq", args)]
 
     def shards_after_rowid(self, rowid: int) -> list[tuple[int, ShardRow]]:
-        """(rowid, shard) of shards committed after ``rowid``, in commit order."""
-        q = f"SELECT rowid, {', '.join(SHARD_COLUMNS)} FROM shards WHERE rowid > ? ORDER BY rowid"
+        """(seq, shard) of shards committed after commit number ``rowid``, in commit order
+        (``seq`` never repeats, even after a shard is quarantined)."""
+        q = f"SELECT seq, {', '.join(SHARD_COLUMNS)} FROM shards WHERE seq > ? ORDER BY seq"
         return [(r[0], ShardRow(*r[1:])) for r in self.con.execute(q, (rowid,))]
 
     def shard_names(self) -> set[str]:

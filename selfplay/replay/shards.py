@@ -6,12 +6,11 @@ never rewritten; a damaged one is moved aside by the store (:mod:`selfplay.repla
 
 from __future__ import annotations
 
-import io
 import os
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator
+from typing import BinaryIO, Iterator
 
 from selfplay.errors import FormatError
 from selfplay.records import GameRecord
@@ -78,26 +77,40 @@ def write_shard(final: Path, frames: list[bytes], flags: int, tmp: Path | None =
     return size, crc
 
 
+class _CrcReader:
+    """File wrapper that keeps the CRC-32 of every byte read."""
+
+    def __init__(self, f: BinaryIO) -> None:
+        self.f = f
+        self.crc = 0
+
+    def read(self, n: int) -> bytes:
+        data = self.f.read(n)
+        self.crc = zlib.crc32(data, self.crc)
+        return data
+
+
 def scan_shard(path: Path, *, decode: bool = True) -> ShardScan:
     """Read and check the whole shard at ``path``; never raises FormatError (it is reported in
-    :attr:`ShardScan.error`). ``decode=False`` checks frames and CRCs only."""
+    :attr:`ShardScan.error`). ``decode=False`` checks frames and CRCs only. Reads only sizes
+    it has checked against the limits and the file's length."""
     where = f"shard {path.name}"
+    scan = ShardScan(path, 0)
     try:
-        data = path.read_bytes()
-    except OSError as exc:
-        return ShardScan(path, 0, error=FormatError(f"{where}: cannot be read ({exc})"))
-    scan = ShardScan(path, len(data), crc32=zlib.crc32(data))
-    try:
-        scan.flags = codec.decode_header(data[:codec.HEADER.size], where)
-        buf = io.BytesIO(data)
-        buf.seek(codec.HEADER.size)
-        for fr in codec.iter_frames(buf, len(data), where):
-            if decode:
-                loc = f"{where}: frame {fr.index} at byte {fr.offset}"
-                rec = codec.decode_record(codec.unpack_stored(fr.stored, scan.flags, loc), loc)
-                scan.records.append((fr.offset, rec))
+        with open(path, "rb") as raw:
+            scan.size = size = os.fstat(raw.fileno()).st_size
+            f = _CrcReader(raw)
+            scan.flags = codec.decode_header(f.read(codec.HEADER.size), where)
+            for fr in codec.iter_frames(f, size, where):  # type: ignore[arg-type]
+                if decode:
+                    loc = f"{where}: frame {fr.index} at byte {fr.offset}"
+                    rec = codec.decode_record(codec.unpack_stored(fr.stored, scan.flags, loc), loc)
+                    scan.records.append((fr.offset, rec))
+            scan.crc32 = f.crc
     except FormatError as exc:
         scan.error = exc
+    except OSError as exc:
+        scan.error = FormatError(f"{where}: cannot be read ({exc})")
     return scan
 
 
@@ -106,12 +119,12 @@ def read_shard(path: Path) -> Iterator[tuple[int, GameRecord]]:
     problem (records before it have been yielded)."""
     where = f"shard {path.name}"
     try:
-        data = path.read_bytes()
+        raw = open(path, "rb")
     except OSError as exc:
         raise FormatError(f"{where}: cannot be read ({exc})") from exc
-    flags = codec.decode_header(data[:codec.HEADER.size], where)
-    buf = io.BytesIO(data)
-    buf.seek(codec.HEADER.size)
-    for fr in codec.iter_frames(buf, len(data), where):
-        loc = f"{where}: frame {fr.index} at byte {fr.offset}"
-        yield fr.offset, codec.decode_record(codec.unpack_stored(fr.stored, flags, loc), loc)
+    with raw:
+        size = os.fstat(raw.fileno()).st_size
+        flags = codec.decode_header(raw.read(codec.HEADER.size), where)
+        for fr in codec.iter_frames(raw, size, where):
+            loc = f"{where}: frame {fr.index} at byte {fr.offset}"
+            yield fr.offset, codec.decode_record(codec.unpack_stored(fr.stored, flags, loc), loc)

@@ -317,21 +317,7 @@ class RecordStore:
                     p.unlink(missing_ok=True)
                     rep.temp_files_removed.append(p.name)
         # 2. catalogued shards: present and of the recorded size (or fully sound)
-        for row in self.catalog.shards():
-            path = self.run.shards / row.name
-            if not path.exists():
-                self._quarantine(row.name, None, f"shard file {row.name} is missing", rep)
-                continue
-            size = path.stat().st_size
-            if size != row.bytes:
-                self._quarantine(row.name, scan_shard(path),
-                                 f"size {size} bytes differs from the catalog's {row.bytes}", rep)
-            elif verify == "full":
-                scan = scan_shard(path)
-                if not scan.ok:
-                    self._quarantine(row.name, scan, str(scan.error), rep)
-                elif scan.crc32 != row.crc32:
-                    self._quarantine(row.name, scan, "file CRC32 differs from the catalog's", rep)
+        self._check_catalogued(verify, rep)
         # 3. finished shards the catalog does not know (a crash between rename and commit)
         known = self.catalog.shard_names()
         quarantined = self.catalog.quarantined_names()
@@ -348,6 +334,31 @@ class RecordStore:
             else:
                 self._quarantine(p.name, scan, str(scan.error), rep)
         return rep
+
+    def verify(self, full: bool = True) -> RecoveryReport:
+        """Check every catalogued shard now — its size, and with ``full`` every frame's CRC and
+        decoding — and quarantine the damaged ones (salvaging the games before the damage)."""
+        self._check_open()
+        rep = RecoveryReport()
+        self._check_catalogued("full" if full else "size", rep)
+        return rep
+
+    def _check_catalogued(self, verify: str, rep: RecoveryReport) -> None:
+        for row in self.catalog.shards():
+            path = self.run.shards / row.name
+            if not path.exists():
+                self._quarantine(row.name, None, f"shard file {row.name} is missing", rep)
+                continue
+            size = path.stat().st_size
+            if size != row.bytes:
+                self._quarantine(row.name, scan_shard(path),
+                                 f"size {size} bytes differs from the catalog's {row.bytes}", rep)
+            elif verify == "full":
+                scan = scan_shard(path)
+                if not scan.ok:
+                    self._quarantine(row.name, scan, str(scan.error), rep)
+                elif scan.crc32 != row.crc32:
+                    self._quarantine(row.name, scan, "file CRC32 differs from the catalog's", rep)
 
     def _index(self, name: str, scan: ShardScan) -> None:
         now = time.time()
