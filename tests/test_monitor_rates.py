@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from selfplay.errors import RunDirError
+from selfplay.errors import FormatError, RunDirError
 from selfplay.monitor.rates import CounterSeries, window_rate_per_second
 from selfplay.monitor.summary import RunMonitor, compute_summary
 from selfplay.rundir import RunDir
@@ -168,3 +168,16 @@ def test_empty_and_missing_run_directories(run: Path, tmp_path: Path) -> None:
     (tmp_path / "plain").mkdir()
     with pytest.raises(RunDirError, match="not a run directory"):
         compute_summary(tmp_path / "plain")
+
+
+def test_garbage_metric_lines_are_counted_and_a_corrupt_catalog_is_named(run: Path) -> None:
+    write_lines(run, [worker(1000, "w1", 0, 0)])
+    with open(run / "metrics.jsonl", "a") as f:
+        f.write("not json at all\n")
+        f.write('["a list", "not an object"]\n')
+        f.write(json.dumps(worker(1100, "w1", 2, 20)) + "\n")
+    s = compute_summary(run)
+    assert s["games"] == 2 and s["metrics_bad_lines"] == 2
+    (run / "catalog.sqlite").write_bytes(b"this is not a database" * 100)
+    with pytest.raises(FormatError, match="catalog"):
+        compute_summary(run)

@@ -17,6 +17,7 @@ piece dropped in that column would land on. Extra actions are listed under each 
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
@@ -120,18 +121,38 @@ def _panel(ax: Any, view: PositionView, values: np.ndarray | None, title: str, c
         ax.add_patch(Rectangle((c - 0.5, r - 0.5), 1, 1, fill=False, edgecolor="red", linewidth=2.5, zorder=5))
     ax.set_xlim(-0.5, w - 0.5)
     ax.set_ylim(h - 0.5, -0.5)
-    ax.set_xticks(range(w))
-    ax.set_yticks(range(h))
+    xl, yl = _tick_labels(view, cells, h, w)
+    ax.set_xticks(range(w), xl)
+    ax.set_yticks(range(h), yl)
     ax.tick_params(labelsize=7)
     ax.set_title(title, fontsize=10)
     extra_text = []
     if values is not None:
         for a in extras:
             if view.legal[a] and np.isfinite(values[a]):
-                extra_text.append(f"{view.action_text(a)}: {fmt(float(values[a]))}")
+                extra_text.append(f"{view.action_text(a)}: {fmt(float(values[a])) or '~0'}")
     if values is None:
         ax.text(0.5, -0.12, "not available", transform=ax.transAxes, ha="center", fontsize=9, color="0.4")
     return ", ".join(extra_text)
+
+
+_COORD = re.compile(r"^([A-Za-z]+)(\d+)$")
+
+
+def _tick_labels(view: PositionView, cells: dict[int, tuple[int, int]], h: int, w: int
+                 ) -> tuple[list[str], list[str]]:
+    """Axis labels in the game's own move notation where it is letter+number (Go, m,n,k);
+    column games label the columns with their move text; otherwise indices."""
+    if len(view.legal) == w:
+        return [view.action_text(c) for c in range(w)], [""] * h
+    try:
+        xs = [_COORD.match(view.action_text(c)) for c in range(w)]
+        ys = [_COORD.match(view.action_text(r * w)) for r in range(h)]
+    except Exception:  # a game whose move text needs a legal state: fall back to indices
+        xs, ys = [None], [None]
+    if all(xs) and all(ys):
+        return [m.group(1) for m in xs], [m.group(2) for m in ys]  # type: ignore[union-attr]
+    return [str(c) for c in range(w)], [str(r) for r in range(h)]
 
 
 def _best(values: np.ndarray | None, legal: np.ndarray) -> int | None:
