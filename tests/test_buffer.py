@@ -14,6 +14,7 @@ from selfplay.replay.buffer import BufferEmptyError, ReplayBuffer
 TTT = make_game("tictactoe")
 GO7 = make_game("go", size=7, history=4)
 GO9 = make_game("go", size=9)
+C4 = make_game("fourinrow")
 
 
 def numbered_game(game, rng, gid, first_snapshot, full_share=0.5, max_moves=None, dense=False):
@@ -53,7 +54,7 @@ def filled(game, n_games=6, capacity=10_000, seed=0, **kw):
     return buf, table
 
 
-@pytest.mark.parametrize("game", [TTT, GO7], ids=["tictactoe", "go7"])
+@pytest.mark.parametrize("game", [TTT, GO7, C4], ids=["tictactoe", "go7", "fourinrow"])
 def test_samples_agree_with_the_rules_encoding(game):
     buf, table = filled(game, augment=False)
     batch = buf.sample(128)
@@ -69,7 +70,7 @@ def test_samples_agree_with_the_rules_encoding(game):
     np.testing.assert_allclose(batch["policy"].sum(axis=1), 1.0, rtol=1e-5)
 
 
-@pytest.mark.parametrize("game", [TTT, GO7], ids=["tictactoe", "go7"])
+@pytest.mark.parametrize("game", [TTT, GO7, C4], ids=["tictactoe", "go7", "fourinrow"])
 def test_symmetry_is_applied_to_boards_policy_and_mask_alike(game):
     buf, table = filled(game, augment=True, seed=3)
     batch = buf.sample(256)

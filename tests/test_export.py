@@ -140,3 +140,35 @@ def test_torch_dataset_streams_and_samples(run):
     got = list(win)
     assert len(got) == 3 and got[0]["policy"].shape == (32, 9)
     assert torch.allclose(got[0]["policy"].sum(1), torch.ones(32))
+
+
+def test_worker_games_flow_through_store_buffer_and_export(tmp_path):
+    from selfplay.evaluators import UniformEvaluator
+    from selfplay.replay.buffer import ReplayBuffer
+    from selfplay.search import SearchConfig
+    from selfplay.worker import SelfPlayWorker
+
+    game = make_game("fourinrow")
+    worker = SelfPlayWorker(game, UniformEvaluator(), SearchConfig(simulations=8, reduced_simulations=2),
+                            games_in_parallel=3, worker_id="w0", seed=5)
+    recs = worker.play_games(3)
+    with RecordStore(tmp_path / "run") as store:
+        added, dups = store.add_games(recs + recs[:1])
+        assert len(added) == 3 and dups == [recs[0].game_id]
+    buf = ReplayBuffer(game, 1000, seed=0)
+    assert buf.refill_from(tmp_path / "run") == sum(r.num_positions for r in recs)
+    export_npz(tmp_path / "run", tmp_path / "c4.npz")
+    z = np.load(tmp_path / "c4.npz")
+    committed = {r.game_id: r for r in RunReader(tmp_path / "run").records()}
+    row = 0
+    for gid in z["game_ids"]:
+        rec = committed[str(gid)]
+        state = game.initial_state()
+        for t, a in enumerate(rec.actions):
+            np.testing.assert_array_equal(z["planes"][row], game.encode(state))
+            np.testing.assert_array_equal(z["mask"][row], game.legal_mask(state))
+            state = game.play(state, int(a))
+            row += 1
+        if not rec.resigned:
+            assert rec.result == game.outcome(state)
+    assert row == z["planes"].shape[0]
