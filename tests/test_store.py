@@ -228,3 +228,44 @@ def test_verify_while_open_quarantines_a_damaged_shard(tmp_path):
         assert (rep.games_salvaged, rep.games_lost) == (2, 1)
         assert store.totals().games == 5
     assert sorted(ids_in_run(tmp_path)) == ["g0", "g1", "g3", "g4", "g5"]
+
+
+def test_a_lost_catalog_is_rebuilt_from_the_shards(tmp_path):
+    with RecordStore(tmp_path, max_games=4) as store:
+        store.add_games(records(10))
+    for p in tmp_path.glob("catalog.sqlite*"):
+        p.unlink()
+    with RecordStore(tmp_path) as store:
+        assert len(store.recovery.shards_indexed) == 3
+        assert store.totals().games == 10
+    assert ids_in_run(tmp_path) == [f"g{i}" for i in range(10)]
+
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+_BASE = records(6, seed=3)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.integers(0, 10**6), st.sampled_from(["flip", "cut", "zero"]), st.booleans())
+def test_any_damage_to_a_shard_is_contained(tmp_path_factory, where, how, compress):
+    root = tmp_path_factory.mktemp("run")
+    with RecordStore(root, max_games=3, compress=compress) as store:
+        store.add_games(_BASE)
+    path = root / "shards" / "main-00000001.plyrec"
+    data = bytearray(path.read_bytes())
+    i = where % len(data)
+    if how == "flip":
+        data[i] ^= 0x5A
+    elif how == "cut":
+        del data[i:]
+    else:
+        data[i:i + 16] = bytes(len(data[i:i + 16]))
+    path.write_bytes(bytes(data))
+    with RecordStore(root, verify="full") as store:  # only SelfplayErrors are handled inside
+        rep = store.recovery
+        assert rep.shards_quarantined in ([], ["main-00000001.plyrec"])
+        total = store.totals().games
+    got = ids_in_run(root)  # the whole run stays readable
+    assert {"g0", "g1", "g2"} <= set(got) and len(got) == total == 6 - rep.games_lost
