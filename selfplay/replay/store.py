@@ -21,7 +21,6 @@ import os
 import re
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Iterable, Literal
 
 from selfplay.errors import FormatError, RunDirError
