@@ -26,6 +26,7 @@ from selfplay.errors import ConfigError, IllegalMoveError
 from selfplay.games.base import Game
 from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
+from selfplay.games.zobrist_keys import zobrist_keys
 
 #: inclusive range accepted for ``columns`` and ``rows``
 MAX_SIDE = 32
@@ -84,13 +85,12 @@ class FourInRowGame(Game[FourInRowState]):
         self._nbits = columns * stride
         self._nbytes = (self._nbits + 7) // 8
         # Zobrist keys: one per (player, cell), keyed by the cell's single-bit integer
-        rng = np.random.default_rng(0x46495224)
-        table = rng.integers(1, 2**63, size=(2, columns, rows), dtype=np.int64)
+        keys = zobrist_keys(0x46495224 + 1000 * columns + rows, 2 * columns * rows + 1)
         self._zobrist_piece = [
-            {1 << (c * stride + r): int(table[p, c, r]) for c in range(columns) for r in range(rows)}
+            {1 << (c * stride + r): keys[(p * columns + c) * rows + r] for c in range(columns) for r in range(rows)}
             for p in (0, 1)
         ]
-        self._zobrist_side = int(rng.integers(1, 2**63, dtype=np.int64))
+        self._zobrist_side = keys[-1]
         self._mask_cache: dict[int, np.ndarray] = {}
         self._no_moves = np.zeros(columns, dtype=bool)
 

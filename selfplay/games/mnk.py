@@ -15,6 +15,7 @@ from selfplay.errors import ConfigError, IllegalMoveError
 from selfplay.games.base import Game, dihedral, dihedral_point_permutation
 from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
+from selfplay.games.zobrist_keys import zobrist_keys
 
 #: inclusive upper bound of ``m`` and ``n`` (the move text names columns by one letter)
 MAX_SIDE = 25
@@ -57,9 +58,10 @@ class MNKGame(Game[MNKState]):
                 "or no line can ever be made"
             )
         self.m, self.n, self.k = m, n, k
-        rng = np.random.default_rng(0x6D6E6B)
-        self._zobrist: list[list[int]] = rng.integers(1, 2**63, size=(3, m * n), dtype=np.int64).tolist()
-        self._zobrist_side = int(rng.integers(1, 2**63, dtype=np.int64))
+        keys = zobrist_keys(0x6D6E6B + 10000 * m + 100 * n + k, 2 * m * n + 1)
+        # _zobrist[stone][cell], stone 1 or 2 (row 0 unused)
+        self._zobrist: list[list[int]] = [[0] * (m * n), keys[: m * n], keys[m * n : 2 * m * n]]
+        self._zobrist_side = keys[-1]
         self._square = m == n
         stride = m + 1  # bits per row, guard cell included
         self._cell_bit = [1 << (a // m * stride + a % m) for a in range(m * n)]
