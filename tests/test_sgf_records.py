@@ -135,3 +135,27 @@ def test_sgf_commands_round_trip(tmp_path, capsys):
     assert main(["sgf", "import", str(tmp_path / "c.sgf"), "--out", str(tmp_path / "r2")]) == 2
     with RecordStore(run) as store:
         assert store.totals().games == 2  # nothing lost or doubled
+
+
+def test_import_into_a_configured_run_takes_its_go_options(tmp_path, capsys):
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "run.toml").write_text('[game]\nname = "go"\noptions = { size = 9, komi = 5.5, history = 2 }\n')
+    text = write_sgf(GO9, CAPTURE_GAME, result="B+R")
+    (tmp_path / "a.sgf").write_text(text)
+    (tmp_path / "b.sgf").write_text(HANDWRITTEN)
+    (tmp_path / "big.sgf").write_text("(;SZ[19]KM[6.5]RE[B+R];B[pd])")
+    assert main(["sgf", "import", str(tmp_path / "a.sgf"), str(tmp_path / "b.sgf"),
+                 str(tmp_path / "big.sgf"), "--out", str(run)]) == 0
+    err = capsys.readouterr().err
+    assert "19x19 game, but the run plays on 9x9" in err
+    recs = list(RunReader(run).records())
+    want = make_game("go", size=9, komi=5.5, history=2).options()
+    assert [r.game_options for r in recs] == [want, want]
+    buf = ReplayBuffer(make_game("go", **want), 50)  # the run's own buffer takes them
+    buf.add_many(recs)
+    assert len(buf) == 13
+    (tmp_path / "c4").mkdir()
+    (tmp_path / "c4" / "run.toml").write_text('[game]\nname = "fourinrow"\n')
+    assert main(["sgf", "import", str(tmp_path / "a.sgf"), "--out", str(tmp_path / "c4")]) == 2
+    assert "not go" in capsys.readouterr().err

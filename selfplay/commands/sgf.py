@@ -35,12 +35,32 @@ def register(sub: argparse._SubParsersAction) -> None:
     i.add_argument("--out", required=True, metavar="RUN", help="run directory (created if missing)")
     i.add_argument("--komi", type=float, help="label every game with this komi (default: the file's KM)")
     i.add_argument("--default-komi", type=float, default=7.5, help="komi for files without KM (7.5)")
-    i.add_argument("--history", type=int, default=4, help="Go option history (boards in the input; 4)")
+    i.add_argument("--history", type=int, default=4, help="Go option history (boards in the input; 4). "
+                   "When RUN has a run.toml, its Go options are used instead (komi too, unless --komi)")
     i.add_argument("--max-moves", type=int, help="Go option max_moves (default 2 x points)")
     i.add_argument("--allow-suicide", action="store_true", help="Go option allow_suicide")
     i.add_argument("--no-superko", action="store_true", help="simple ko instead of positional superko")
     i.add_argument("--strict", action="store_true", help="fail on the first bad file instead of skipping it")
     i.set_defaults(func=run_import)
+
+
+def _run_go_options(run_path: str) -> dict | None:
+    """The Go options RUN/run.toml declares (None without a run.toml or for another game)."""
+    from pathlib import Path
+
+    from selfplay.errors import RunDirError
+    from selfplay.games.registry import make_game
+    from selfplay.replay.reader import run_toml_game
+    from selfplay.rundir import RunDir
+
+    if not (Path(run_path) / "run.toml").exists():
+        return None
+    declared = run_toml_game(RunDir(Path(run_path)))
+    if declared is None:
+        return None
+    if declared[0] != "go":
+        raise RunDirError(f"run {run_path!r} plays {declared[0]}, not go; SGF games cannot go there")
+    return make_game("go", **declared[1]).options()
 
 
 def run_export(args: argparse.Namespace) -> int:
@@ -56,9 +76,14 @@ def run_import(args: argparse.Namespace) -> int:
     from selfplay.replay.sgf_records import import_sgf_files
     from selfplay.replay.store import RecordStore
 
+    run_options = _run_go_options(args.out)
+    if run_options is not None:
+        print(f"selfplay sgf import: labelling games with the run's Go options {run_options}"
+              + (f" (komi {args.komi:g})" if args.komi is not None else ""))
     rep = import_sgf_files(args.files, komi=args.komi, default_komi=args.default_komi,
                            history=args.history, max_moves=args.max_moves,
-                           allow_suicide=args.allow_suicide, superko=not args.no_superko)
+                           allow_suicide=args.allow_suicide, superko=not args.no_superko,
+                           run_options=run_options)
     for _, reason in rep.skipped:
         print(f"selfplay sgf import: skipped {reason}", file=sys.stderr)
     if args.strict and rep.skipped:

@@ -142,21 +142,34 @@ class ImportReport:
 
 def sgf_to_record(text: str, source: str = "sgf", *, komi: float | None = None,
                   history: int = 4, allow_suicide: bool = False, superko: bool = True,
-                  max_moves: int | None = None, default_komi: float = 7.5) -> GameRecord:
+                  max_moves: int | None = None, default_komi: float = 7.5,
+                  run_options: dict[str, Any] | None = None) -> GameRecord:
     """A supervised record of the SGF game ``text`` (its main line).
 
     ``komi`` forces a komi (default: the file's KM, else ``default_komi``); ``history``,
-    ``allow_suicide``, ``superko``, ``max_moves`` are the Go options the record is labelled with
-    (match them to the run that will train on it). Raises FormatError (NoResultError for a game
-    without a result) naming ``source``."""
+    ``allow_suicide``, ``superko``, ``max_moves`` are the Go options the record is labelled with.
+    ``run_options`` (the Go options of the run that will train on the records) replaces them
+    all, komi included unless ``komi`` is given, so the run's buffer accepts the records; a game
+    on another board size is then refused. The value target always comes from RE. Raises
+    FormatError (NoResultError for a game without a result) naming ``source``."""
     from selfplay.games.go import GoGame
     from selfplay.games.sgf import read_sgf
 
+    if run_options is not None:
+        history = int(run_options.get("history", history))
+        allow_suicide = bool(run_options.get("allow_suicide", allow_suicide))
+        superko = bool(run_options.get("superko", superko))
+        max_moves = run_options.get("max_moves", max_moves)
+        if komi is None and "komi" in run_options:
+            komi = float(run_options["komi"])
     sg = read_sgf(text, allow_suicide=allow_suicide, superko=superko)
+    if run_options is not None and int(run_options.get("size", sg.size)) != sg.size:
+        raise FormatError(f"{source}: a {sg.size}x{sg.size} game, but the run plays on "
+                          f"{run_options['size']}x{run_options['size']}")
     result = result_from_re(sg.result, source)
     k = float(komi if komi is not None else (sg.komi if sg.komi is not None else default_komi))
     n = sg.size * sg.size
-    cap = max_moves if max_moves is not None else 2 * n
+    cap = int(max_moves) if max_moves is not None else 2 * n
     if len(sg.moves) > cap:
         raise FormatError(f"{source}: {len(sg.moves)} moves exceed the move cap of {cap}")
     try:
