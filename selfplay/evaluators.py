@@ -105,13 +105,22 @@ class NetworkEvaluator:
     """Batched policy-value network evaluation under ``torch.inference_mode``.
 
     ``threads`` sets ``torch.set_num_threads`` (process-wide) so that workers sharing a machine do
-    not fight over cores; one thread by default. Pass ``game`` to check the fit at once."""
+    not fight over cores; one thread by default. Pass ``game`` to check the fit at once.
 
-    def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None) -> None:
+    ``channels_last`` (default on) converts the net's weights in place to torch's channels-last
+    memory format and feeds it channels-last inputs: on these CPUs the convolutions run faster
+    that way. The conversion is in place so that weights loaded later into the same net object
+    (``load_state_dict`` keeps the layout) reach this evaluator."""
+
+    def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None,
+                 channels_last: bool = True) -> None:
         if not isinstance(net, PolicyValueNet):
             raise ConfigError(f"NetworkEvaluator needs a PolicyValueNet, got {type(net).__name__}")
         if not isinstance(threads, int) or threads < 1:
             raise ConfigError(f"evaluator threads={threads!r} must be a positive integer")
+        self.channels_last = bool(channels_last)
+        if self.channels_last:
+            net.to(memory_format=torch.channels_last)
         self.net = net.eval()
         self.threads = threads
         torch.set_num_threads(threads)
@@ -124,11 +133,16 @@ class NetworkEvaluator:
         if problem:
             raise ConfigError(problem)
 
+    def input_tensor(self, planes: np.ndarray) -> torch.Tensor:
+        """The tensor the net is fed for float32 planes (N, C, H, W), in its memory format."""
+        x = torch.from_numpy(np.ascontiguousarray(planes, dtype=np.float32))
+        return x.contiguous(memory_format=torch.channels_last) if self.channels_last else x
+
     def forward_planes(self, planes: np.ndarray, legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Network on ready-made input planes: (priors over legal moves, values)."""
         t0 = time.perf_counter()
         with torch.inference_mode():
-            x = torch.from_numpy(np.ascontiguousarray(planes, dtype=np.float32))
+            x = self.input_tensor(planes)
             logits, values = self.net(x)
             mask = torch.from_numpy(np.ascontiguousarray(legal, dtype=bool))
             logits = logits.masked_fill(~mask, float("-inf"))

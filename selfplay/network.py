@@ -106,6 +106,8 @@ class PolicyValueNet(nn.Module):
     def fits(self, game: Game) -> str | None:
         """None if this net fits ``game``; otherwise a sentence saying what does not fit."""
         problems = []
+        if game.name != self.game_name:
+            problems.append(f"it was built for game {self.game_name!r}")
         if tuple(game.input_shape) != self.input_shape:
             problems.append(f"input shape {self.input_shape} but the game encodes {tuple(game.input_shape)}")
         if game.num_actions != self.num_actions:

@@ -92,9 +92,12 @@ def _measure(worker: SelfPlayWorker, seconds: float) -> dict[str, Any]:
     }
 
 
-def inference_bound(net: torch.nn.Module, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
-    """Evaluations/s of ``net`` alone on random planes at ``batch`` (inference mode)."""
-    x = torch.from_numpy(np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round())
+def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
+    """Evaluations/s of the evaluator's net alone (ready input tensor, same memory format and
+    threads, inference mode) on random 0/1 planes at ``batch``."""
+    planes = np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round()
+    x = evaluator.input_tensor(planes)
+    net = evaluator.net
     n = 0
     with torch.inference_mode():
         for _ in range(3):
@@ -126,7 +129,7 @@ def run(args: argparse.Namespace) -> int:
     for _ in range(args.repeats):
         m = _measure(many, args.seconds)
         many_runs.append(m)
-        bounds.append(inference_bound(net, tuple(game.input_shape), max(1, round(m["mean_batch"])), args.seconds / 2))
+        bounds.append(inference_bound(evaluator, tuple(game.input_shape), max(1, round(m["mean_batch"])), args.seconds / 2))
         one_runs.append(_measure(one, args.seconds / 2))
 
     def med(runs: list[dict[str, Any]], key: str) -> float:
