@@ -108,7 +108,7 @@ class SnapshotActor:
 
     def info(self) -> dict[str, Any]:
         return {"version": self.version, "published_at": self.published_at, "puts": self.puts,
-                "refused": dict(self.refused)}
+                "refused": dict(self.refused), "node_id": ray.get_runtime_context().get_node_id()}
 
 
 # ---- the buffer -------------------------------------------------------------------------------------
@@ -188,6 +188,9 @@ class BufferActor:
 
     def sample(self, batch_size: int, **kwargs: Any) -> dict[str, np.ndarray]:
         return self.buffer.sample(batch_size, **kwargs)
+
+    def where(self) -> dict[str, Any]:
+        return {"pid": os.getpid(), "node_id": ray.get_runtime_context().get_node_id()}
 
     def flush(self) -> dict[str, Any]:
         self.store.flush()
@@ -342,6 +345,9 @@ class LearnerActor:
                 "samples_trained_total": self.learner.samples_trained_total,
                 "reuse_ratio": self.learner.reuse_ratio, "loss": last.get("loss"),
                 "resumed_from": self.resumed_from}
+
+    def where(self) -> dict[str, Any]:
+        return {"pid": os.getpid(), "node_id": ray.get_runtime_context().get_node_id()}
 
     def checkpoint(self) -> int:
         """Save a checkpoint now (at a clean stop); returns the current snapshot version."""

@@ -172,10 +172,8 @@ def resolve_run(args: argparse.Namespace) -> RunPlan:
 
     address = args.address or os.environ.get("RAY_ADDRESS") or None
     cpus = local_cpu_count()
-    if address is None and config.run.workers > cpus:
-        raise ConfigError(
-            f"--workers {config.run.workers}: this machine has {cpus} CPU(s); each worker needs one. "
-            f"Ask for at most {cpus}, or join a cluster with --address")
+    if address is None:
+        check_worker_count(config, cpus, "this machine")
     if config.run.learner is False and args.resume is False:
         notes.append("generation only (--no-learner): publish snapshots with `selfplay publish RUN WEIGHTS`")
     port = getattr(args, "metrics_port", None)
@@ -209,11 +207,7 @@ def execute(plan: RunPlan, *, out: Callable[[str], None] | None = None) -> int:
     else:
         sess = session.join_cluster(plan.address)
     try:
-        cpus = session.cluster_cpus()
-        if plan.config.run.workers > cpus:
-            raise ConfigError(
-                f"--workers {plan.config.run.workers}: the cluster at {sess.address} has {cpus} CPU(s); "
-                "each worker needs one")
+        check_worker_count(plan.config, session.cluster_cpus(), f"the cluster at {sess.address}")
         write_run_toml(plan)
         for note in plan.notes:
             say(note)
@@ -236,6 +230,15 @@ def execute(plan: RunPlan, *, out: Callable[[str], None] | None = None) -> int:
     finally:
         session.shutdown()
     return 0
+
+
+def check_worker_count(config: RunConfig, cpus: int, where: str) -> None:
+    """ConfigError when ``run.workers`` asks for more workers than ``where`` has CPUs for."""
+    need = config.run.workers * config.worker.threads
+    if need > cpus:
+        raise ConfigError(
+            f"--workers {config.run.workers}: {where} has {cpus} CPU(s); each worker needs "
+            f"{config.worker.threads} (worker.threads). Ask for at most {cpus // config.worker.threads}")
 
 
 class _StopSignals:

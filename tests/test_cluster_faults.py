@@ -1,0 +1,176 @@
+"""Faults on a multi-node Ray cluster simulated on this machine (ray.cluster_utils.Cluster, every
+node on 127.0.0.1): a worker killed mid-game, a worker node removed and another added, the
+learner killed. After each, every game reported finished is in the catalog exactly once, buffer
+and catalog agree, snapshot versions only increase, and the run goes on.
+
+The head has no CPU of its own, so the buffer, learner and snapshot store (pinned to the head)
+are the only actors there and every worker runs on a worker node."""
+
+from __future__ import annotations
+
+import os
+import signal
+import time
+
+import pytest
+
+from cluster import session
+from cluster_support import check_run_consistent, tiny_config
+
+pytestmark = [pytest.mark.ray, pytest.mark.slow]
+
+TIME_LIMIT = 120.0  # seconds a scenario may take before it counts as stuck
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    session.local_only_environment()
+    import ray
+    from ray.cluster_utils import Cluster
+
+    c = Cluster(initialize_head=True, connect=True,
+                head_node_args={"num_cpus": 0, "node_ip_address": "127.0.0.1", "include_dashboard": False})
+    try:
+        yield c
+    finally:
+        ray.shutdown()
+        c.shutdown()
+
+
+@pytest.fixture
+def worker_nodes(cluster):
+    """Two 1-CPU worker nodes for one test; whatever nodes the test left are removed after it."""
+    nodes = [cluster.add_node(num_cpus=1, node_ip_address="127.0.0.1") for _ in range(2)]
+    cluster.wait_for_nodes()
+    yield nodes
+    for node in list(cluster.worker_nodes):
+        cluster.remove_node(node)
+
+
+def _launcher(tmp_path, **overrides):
+    from cluster.launcher import Launcher
+    from selfplay.rundir import RunDir
+
+    lines: list[str] = []
+    launcher = Launcher(tiny_config(**overrides), RunDir(tmp_path / "run"), say=lines.append, progress=False)
+    launcher.lines = lines
+    return launcher
+
+
+def _finish(launcher):
+    stats = launcher.finish()
+    launcher.kill_actors()
+    return stats
+
+
+def _games(launcher) -> int:
+    return int(launcher.buffer_stats["games_total"])
+
+
+def test_worker_killed_mid_game(cluster, worker_nodes, tmp_path):
+    import ray
+
+    from cluster.launcher import check_worker_count
+    from cluster.placement import head_node_id
+    from selfplay.errors import ConfigError
+
+    # more workers than the cluster has CPUs: refused with the numbers
+    with pytest.raises(ConfigError, match=r"--workers 3: the test cluster has 2 CPU\(s\)"):
+        check_worker_count(tiny_config(run__workers=3), session.cluster_cpus(), "the test cluster")
+
+    launcher = _launcher(tmp_path)
+    launcher.start()
+    state: dict = {}
+    t0 = time.monotonic()
+    # placement: buffer, learner, snapshot store on the head; one worker per CPU, spread over the nodes
+    head = head_node_id()
+    assert head == cluster.head_node.node_id
+    assert ray.get(launcher.learner.where.remote())["node_id"] == head
+    assert ray.get(launcher.buffer.handles[0].where.remote())["node_id"] == head
+    assert ray.get(launcher.snapshots.info.remote())["node_id"] == head
+    assert len(launcher.slots) == 2
+    assert {ray.get(ws.handle.where.remote())["node_id"] for ws in launcher.slots.values()} == \
+        {n.node_id for n in worker_nodes}
+
+    def tick(la) -> bool:
+        assert time.monotonic() - t0 < TIME_LIMIT, la.lines[-5:]
+        ws = la.slots[0]
+        if "killed_at" not in state and _games(la) >= 20:
+            where = ray.get(ws.handle.where.remote())
+            os.kill(where["pid"], signal.SIGKILL)  # the worker process dies with its games in flight
+            state.update(killed_at=_games(la), old_tag=where["tag"])
+        if "killed_at" in state:
+            replaced = ws.last_tag and ws.last_tag != state["old_tag"]
+            return bool(replaced) and _games(la) >= state["killed_at"] + 30
+        return False
+
+    try:
+        launcher.loop(tick=tick)
+    finally:
+        stats = _finish(launcher)
+    assert launcher.slots[0].restarts_seen >= 1
+    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    assert facts["games"] >= state["killed_at"] + 30
+
+
+def test_worker_node_removed_and_another_added(cluster, worker_nodes, tmp_path):
+    import ray
+
+    launcher = _launcher(tmp_path)
+    launcher.start()
+    state: dict = {}
+    t0 = time.monotonic()
+    try:
+        launcher.loop(tick=lambda la: _games(la) >= 20)
+        victim_slot = next(s for s, ws in launcher.slots.items()
+                           if ray.get(ws.handle.where.remote())["node_id"] == worker_nodes[1].node_id)
+        cluster.remove_node(worker_nodes[1])
+        state["removed_at"] = _games(launcher)
+        # A 2-CPU node joins: the lost worker comes back on it and one more worker is started there.
+        new_node = cluster.add_node(num_cpus=2, node_ip_address="127.0.0.1")
+
+        def tick(la) -> bool:
+            assert time.monotonic() - t0 < TIME_LIMIT, la.lines[-5:]
+            return (len(la.slots) == 3 and la.slots[2].games_total > 0
+                    and la.slots[victim_slot].restarts_seen >= 1
+                    and _games(la) >= state["removed_at"] + 30)
+
+        launcher.loop(tick=tick)
+        assert ray.get(launcher.slots[victim_slot].handle.where.remote())["node_id"] == new_node.node_id
+        assert ray.get(launcher.slots[2].handle.where.remote())["node_id"] == new_node.node_id
+    finally:
+        stats = _finish(launcher)
+    check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+
+
+def test_learner_killed_restarts_from_its_checkpoint(cluster, worker_nodes, tmp_path):
+    import ray
+
+    launcher = _launcher(tmp_path)
+    launcher.start()
+    state: dict = {}
+    t0 = time.monotonic()
+
+    def tick(la) -> bool:
+        assert time.monotonic() - t0 < TIME_LIMIT, la.lines[-5:]
+        if "killed" not in state and la.snapshot_version >= 3:
+            where = ray.get(la.learner.where.remote())
+            state.update(killed=True, pid=where["pid"], version=la.snapshot_version,
+                         step=la.learner_status.get("step", 0), games=_games(la))
+            os.kill(where["pid"], signal.SIGKILL)
+        if "killed" in state:
+            st = la.learner_status
+            return (st.get("resumed_from") == "checkpoint" and la.snapshot_version >= state["version"] + 2
+                    and _games(la) >= state["games"] + 20)
+        return False
+
+    try:
+        launcher.loop(tick=tick)
+        now = ray.get(launcher.learner.where.remote())
+        assert now["pid"] != state["pid"]
+    finally:
+        stats = _finish(launcher)
+    assert launcher.learner_status["step"] >= state["step"]
+    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    assert facts["snapshots"] >= state["version"] + 2
+    assert any("learner lost" in line for line in launcher.lines)
