@@ -44,7 +44,6 @@ def write_run(root: Path, n: int = 30) -> list:
         store.add_games(recs)
         store.add_games(recs[:5])  # a retried write: ignored by the catalog's unique game id
         store.flush()
-        store.log_metrics()
     return recs
 
 
@@ -59,14 +58,16 @@ def sql(root: Path, q: str):
 def test_counts_agree_with_the_catalog(tmp_path: Path) -> None:
     root = tmp_path / "run"
     recs = write_run(root)
-    s = compute_summary(root, now=T0 + 20 * 29)
+    with RecordStore(root, writer="main") as store:  # reopened: the buffer line of its counts
+        store.log_metrics(window_positions=100, window_capacity=1000)
+    s = compute_summary(root)
     games, positions = sql(root, "SELECT count(*), sum(positions) FROM games")
     assert s["counts_source"] == "catalog"
     assert s["games"] == games == len(recs)
     assert s["positions"] == positions == sum(r.num_positions for r in recs)
     assert s["counts"]["catalog"]["shards"] == sql(root, "SELECT count(*) FROM shards")[0]
-    # the buffer line the store wrote agrees with the catalog as well
-    assert s["counts"]["buffer"]["games"] == games
+    # the buffer line the store wrote agrees with the catalog as well; nothing is waiting
+    assert s["counts"]["buffer"]["games"] == games and s["games_pending"] == 0
     assert s["buffer"]["duplicates"] == 5
 
 

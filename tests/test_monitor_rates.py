@@ -100,7 +100,7 @@ def test_buffer_counts_take_precedence_over_workers(run: Path) -> None:
          "window_positions": 324, "window_capacity": 1000, "duplicates_total": 1},
     ])
     s = compute_summary(run)
-    assert s["counts_source"] == "buffer"
+    assert s["counts_source"] == "buffer" and s["rates_source"] == "buffer"
     assert s["games"] == 36 and s["positions"] == 324
     # window [1300, 1600]: value_at(1300) = 0 (the 1310 sample is later), value_at(1600) = 36
     assert s["games_per_hour"] == pytest.approx(36 / 300 * 3600)
@@ -181,3 +181,21 @@ def test_garbage_metric_lines_are_counted_and_a_corrupt_catalog_is_named(run: Pa
     (run / "catalog.sqlite").write_bytes(b"this is not a database" * 100)
     with pytest.raises(FormatError, match="catalog"):
         compute_summary(run)
+
+
+def test_buffer_shards_report_the_shared_total_not_a_share(run: Path) -> None:
+    # two buffer shards each report the whole catalog's committed games plus their own waiting
+    # games (100 committed; shard 0 has 3 waiting, shard 1 has 5): the total is read as the
+    # largest report, never the sum (which would count the 100 twice)
+    write_lines(run, [
+        {"t": 1000, "component": "buffer", "source": "buffer0", "games_total": 0, "positions_total": 0},
+        {"t": 1000, "component": "buffer", "source": "buffer1", "games_total": 0, "positions_total": 0},
+        {"t": 1300, "component": "buffer", "source": "buffer0", "games_total": 103, "positions_total": 927,
+         "window_positions": 500, "window_capacity": 1000},
+        {"t": 1300, "component": "buffer", "source": "buffer1", "games_total": 105, "positions_total": 945,
+         "window_positions": 450, "window_capacity": 1000},
+    ])
+    s = compute_summary(run)
+    assert s["games"] == 105
+    assert s["games_per_hour"] == pytest.approx(105 / 300 * 3600)
+    assert s["buffer"]["window_positions"] == 950 and s["buffer"]["fill"] == pytest.approx(0.475)

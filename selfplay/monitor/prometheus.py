@@ -72,6 +72,7 @@ def families_from_summary(s: Summary) -> list[Metric]:
     m.gauge("selfplay_idle_seconds", "seconds since the run last wrote anything (reader's clock)", s.get("idle_seconds"))
     m.counter("selfplay_games", "finished games committed (catalog, else buffer, else workers)", s.get("games"))
     m.counter("selfplay_positions", "positions in finished games", s.get("positions"))
+    m.gauge("selfplay_games_pending", "games the buffer accepted that wait for their shard to be written", s.get("games_pending"))
     m.gauge("selfplay_games_per_hour", "games per hour over the last window (window_seconds, 5 minutes by default)", s.get("games_per_hour"))
     m.gauge("selfplay_games_per_hour_since_start", "games per hour since the run started", s.get("games_per_hour_since_start"))
     m.gauge("selfplay_positions_per_second", "positions per second over the last window", s.get("positions_per_second"))

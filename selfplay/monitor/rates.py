@@ -89,6 +89,29 @@ class CounterSeries:
             del self.values[:i]
 
 
+class LargestOf:
+    """Several counters that each report the same total plus a little of their own (buffer
+    shards report the whole catalog's committed games plus their own waiting ones): read as
+    their largest value at each time, not their sum. Quacks like :class:`CounterSeries` for
+    the rate functions below."""
+
+    def __init__(self, series: Sequence[CounterSeries]) -> None:
+        self.series = list(series)
+
+    def value_at(self, t: float) -> float:
+        return max((s.value_at(t) for s in self.series), default=0.0)
+
+    def increase(self, start: float, end: float) -> float:
+        return self.value_at(end) - self.value_at(start)
+
+    @property
+    def last_value(self) -> float:
+        return max((s.last_value for s in self.series), default=0.0)
+
+    def __len__(self) -> int:
+        return sum(len(s) for s in self.series)
+
+
 def window_span(end: float, run_start: float | None, window: float = WINDOW_SECONDS) -> float:
     """Seconds covered by the recent window ending at ``end``: ``min(window, end - run_start)``."""
     if run_start is None:
@@ -96,17 +119,17 @@ def window_span(end: float, run_start: float | None, window: float = WINDOW_SECO
     return max(0.0, min(window, end - run_start))
 
 
-def total_increase(series: Iterable[CounterSeries], start: float, end: float) -> float:
+def total_increase(series: Iterable[CounterSeries | LargestOf], start: float, end: float) -> float:
     """Sum of the increases of several counters (one per source) over ``[start, end]``."""
     return sum(s.increase(start, end) for s in series)
 
 
-def total_at(series: Iterable[CounterSeries], t: float) -> float:
+def total_at(series: Iterable[CounterSeries | LargestOf], t: float) -> float:
     """Sum of several counters at time ``t``."""
     return sum(s.value_at(t) for s in series)
 
 
-def window_rate_per_second(series: Sequence[CounterSeries], end: float, run_start: float | None,
+def window_rate_per_second(series: Sequence[CounterSeries | LargestOf], end: float, run_start: float | None,
                            window: float = WINDOW_SECONDS) -> float | None:
     """Summed rate (units per second) over the recent window ending at ``end``; None if the
     window is empty (``end`` is the run's start)."""
@@ -116,7 +139,7 @@ def window_rate_per_second(series: Sequence[CounterSeries], end: float, run_star
     return total_increase(series, end - span, end) / span
 
 
-def since_start_rate_per_second(series: Sequence[CounterSeries], end: float,
+def since_start_rate_per_second(series: Sequence[CounterSeries | LargestOf], end: float,
                                 start: float | None) -> float | None:
     """Summed counter at ``end`` divided by the seconds since ``start``; None if no time passed."""
     if start is None or end <= start:

@@ -32,6 +32,7 @@ from selfplay.errors import FormatError, RunDirError
 from selfplay.monitor.rates import (
     WINDOW_SECONDS,
     CounterSeries,
+    LargestOf,
     per_hour,
     since_start_rate_per_second,
     window_rate_per_second,
@@ -406,8 +407,8 @@ class RunMonitor:
                                  "shards": self.catalog.shards}
         if buffers:
             counts["buffer"] = {
-                "games": int(sum(b.counter("games_total").last_value for b in buffers)),
-                "positions": int(sum(b.counter("positions_total").last_value for b in buffers)),
+                "games": int(LargestOf([b.counter("games_total") for b in buffers]).last_value),
+                "positions": int(LargestOf([b.counter("positions_total") for b in buffers]).last_value),
             }
         if workers:
             counts["workers"] = {
@@ -415,16 +416,41 @@ class RunMonitor:
                 "positions": int(sum(s.counter("positions_total").last_value for s in workers)),
             }
 
-        # headline counts and rates: catalog > buffer > workers
+        # headline counts: catalog (committed games) > buffer lines > worker lines.
+        # headline rates: buffer lines while they are fresh (they count games the moment the
+        # buffer accepts them; the catalog only once their shard is written) > catalog > workers.
+        cat = self.catalog
+        buf_g = LargestOf([b.counter("games_total") for b in buffers])
+        buf_p = LargestOf([b.counter("positions_total") for b in buffers])
+        wrk_g = [s.counter("games_total") for s in workers]
+        wrk_p = [s.counter("positions_total") for s in workers]
         games = positions = 0
+        pending = None
         gph = gph_start = pps = pps_start = None
-        source = "none"
+        source = rates_source = "none"
         if as_of is not None:
-            cat = self.catalog
-            if cat is not None and (cat.games > 0 or not (buffers or workers)):
+            if cat is not None:
                 source = "catalog"
                 games, positions = cat.games, cat.positions or 0
-                span = window_span(as_of, start, w)
+                if buffers:
+                    pending = max(0, int(buf_g.value_at(as_of)) - games)
+            elif buffers:
+                source = "buffer"
+                games, positions = int(buf_g.value_at(as_of)), int(buf_p.value_at(as_of))
+            elif workers:
+                source = "workers"
+                games = int(sum(s.value_at(as_of) for s in wrk_g))
+                positions = int(sum(s.value_at(as_of) for s in wrk_p))
+            buffer_fresh = bool(buffers) and max(b.last_t for b in buffers) >= as_of - w
+            span = window_span(as_of, start, w)
+            if buffer_fresh or (cat is None and buffers):
+                rates_source = "buffer"
+                gph = per_hour(window_rate_per_second([buf_g], as_of, start, w))
+                gph_start = per_hour(since_start_rate_per_second([buf_g], as_of, start))
+                pps = window_rate_per_second([buf_p], as_of, start, w)
+                pps_start = since_start_rate_per_second([buf_p], as_of, start)
+            elif cat is not None:
+                rates_source = "catalog"
                 if span > 0:
                     g_recent, p_recent = cat.counts_between(as_of - span, as_of)
                     g_all, p_all = cat.counts_between(-math.inf, as_of)
@@ -434,18 +460,12 @@ class RunMonitor:
                         pps_start = p_all / (as_of - start)
                     if cat.pos_col is None:
                         pps = pps_start = None
-            else:
-                group = buffers if buffers else workers
-                if group:
-                    source = "buffer" if buffers else "workers"
-                    gs = [s.counter("games_total") for s in group]
-                    ps = [s.counter("positions_total") for s in group]
-                    games = int(sum(s.value_at(as_of) for s in gs))
-                    positions = int(sum(s.value_at(as_of) for s in ps))
-                    gph = per_hour(window_rate_per_second(gs, as_of, start, w))
-                    gph_start = per_hour(since_start_rate_per_second(gs, as_of, start))
-                    pps = window_rate_per_second(ps, as_of, start, w)
-                    pps_start = since_start_rate_per_second(ps, as_of, start)
+            elif workers:
+                rates_source = "workers"
+                gph = per_hour(window_rate_per_second(wrk_g, as_of, start, w))
+                gph_start = per_hour(since_start_rate_per_second(wrk_g, as_of, start))
+                pps = window_rate_per_second(wrk_p, as_of, start, w)
+                pps_start = since_start_rate_per_second(wrk_p, as_of, start)
 
         # workers
         worker_rows = []
@@ -466,8 +486,10 @@ class RunMonitor:
             "window_seconds": w,
             "empty": as_of is None,
             "counts_source": source,
+            "rates_source": rates_source,
             "games": int(games),
             "positions": int(positions),
+            "games_pending": pending,
             "games_per_hour": _round(gph, 2),
             "games_per_hour_since_start": _round(gph_start, 2),
             "positions_per_second": _round(pps, 3),
@@ -535,10 +557,13 @@ class RunMonitor:
         newest_v = max(newest) if newest else None
         pub = self.snapshot_times.get(newest_v) if newest_v is not None else None
         return {
-            "games": int(sum(b.counter("games_total").last_value for b in buffers)),
-            "positions": int(sum(b.counter("positions_total").last_value for b in buffers)),
-            "duplicates": int(sum(b.counter("duplicates_total").last_value for b in buffers)),
-            "shards": int(sum(b.counter("shards_total").last_value for b in buffers)),
+            # each buffer shard reports whole-catalog counts (+ its own waiting games): the
+            # largest across shards, not the sum
+            "games": int(LargestOf([b.counter("games_total") for b in buffers]).last_value),
+            "positions": int(LargestOf([b.counter("positions_total") for b in buffers]).last_value),
+            "duplicates": int(LargestOf([b.counter("duplicates_total") for b in buffers]).last_value),
+            "shards": int(LargestOf([b.counter("shards_total") for b in buffers]).last_value),
+            "sources": len(buffers),
             "window_positions": None if size is None else int(size),
             "window_capacity": None if cap is None else int(cap),
             "fill": _round(size / cap, 4) if size is not None and cap else None,

@@ -84,11 +84,12 @@ def render_summary(s: Summary) -> RenderableType:
         return Panel(head, title="selfplay status")
     head.append(f"\nas of {fmt_time(s.get('as_of'))} · running {fmt_duration(s.get('elapsed_seconds'))}"
                 f" · last write {fmt_duration(s.get('idle_seconds'))} ago"
-                f" · counts from {s.get('counts_source')}")
+                f" · counts from {s.get('counts_source')}, rates from {s.get('rates_source')}")
 
     snap = s.get("latest_snapshot") or {}
     main = _kv_table("production", [
-        ("games", fmt_num(s.get("games"))),
+        ("games", fmt_num(s.get("games")) + (f" (+{fmt_num(s['games_pending'])} waiting)"
+                                             if s.get("games_pending") else "")),
         ("positions", fmt_num(s.get("positions"))),
         (f"games/h, last {window}", fmt_num(s.get("games_per_hour"))),
         ("games/h, since start", fmt_num(s.get("games_per_hour_since_start"))),
