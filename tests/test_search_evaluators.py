@@ -63,8 +63,10 @@ def test_make_evaluator_picks_by_settings():
     assert isinstance(make_evaluator(net, GAME, rollout_mix_lambda=0.5), MixedEvaluator)
 
 
-def test_pure_mcts_finds_the_win_and_the_block():
-    cfg = SearchConfig(simulations=300, dirichlet_epsilon=0.0)
+@pytest.mark.parametrize("leaves", [1, 4])
+def test_pure_mcts_finds_the_win_and_the_block(leaves):
+    # several leaves per game use virtual loss; the search must still see the threats
+    cfg = SearchConfig(simulations=300, dirichlet_epsilon=0.0, leaves_per_game=leaves)
     win = GAME.play_sequence([0, 3, 1, 4])        # X to move: c3 (2) wins
     block = GAME.play_sequence([0, 4, 1])          # O to move: must block at 2
     for ev in (RandomRolloutEvaluator(), UniformEvaluator()):
