@@ -2,7 +2,8 @@
 
 Plots (each a PNG in the output folder; a plot with nothing to show yet says "no data yet"):
 
-- ``games_per_hour.png``   games per hour over the run: over the recent window and since start
+- ``games_per_hour.png``   games per hour over the run: over a trailing window (5 minutes, or a
+  tenth of the run if that is shorter) and since start
 - ``game_length.png``      histogram of game lengths (moves), from the catalog or the records
 - ``snapshot_lag.png``     per worker: versions behind the newest snapshot, and data age (s)
 - ``losses.png``           learner loss and its parts against the step
@@ -39,6 +40,7 @@ from selfplay.errors import ConfigError, SelfplayError  # noqa: E402
 from selfplay.monitor.data import newest_records  # noqa: E402
 from selfplay.monitor.rates import WINDOW_SECONDS, CounterSeries, window_rate_per_second  # noqa: E402
 from selfplay.monitor.summary import RunMonitor  # noqa: E402
+from selfplay.monitor.watch import fmt_duration  # noqa: E402
 from selfplay.records import GameRecord  # noqa: E402
 
 #: resignation false-positive bound used by AlphaGo Zero (Silver et al., Nature 2017)
@@ -177,10 +179,13 @@ class ReportBuilder:
         if not src or sum(x.last_value for x in src) == 0:
             _no_data(ax, "no finished games yet")
             return NO_DATA
-        recent = [window_rate_per_second(src, t, start, self.window) for t in grid]
+        # a run shorter than a few windows is plotted with a shorter window, so the curve shows
+        # how the rate changed rather than repeating the since-start line
+        win = min(self.window, max(10.0, (as_of - start) / 10.0))
+        recent = [window_rate_per_second(src, t, start, win) for t in grid]
         since = [sum(x.value_at(t) for x in src) / (t - start) for t in grid]
         x = _rel_minutes(grid, start)
-        ax.plot(x, [3600 * (r or 0) for r in recent], label=f"last {self.window / 60:g} min")
+        ax.plot(x, [3600 * (r or 0) for r in recent], label=f"over the last {fmt_duration(win)}")
         ax.plot(x, [3600 * r for r in since], label="since start", linestyle="--")
         ax.set_xlabel("minutes since start")
         ax.set_ylabel("games per hour")
