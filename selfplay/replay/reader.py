@@ -106,6 +106,8 @@ class RunReader:
             try:
                 for rowid, row in cat.shards_after_rowid(self._last_rowid):
                     self._last_rowid = rowid
+                    if row.name in self._seen_files:  # read before the catalog appeared
+                        continue
                     out.append((row, self.run.shards / row.name, cat.game_offsets(row.name)))
             finally:
                 cat.close()

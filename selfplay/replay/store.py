@@ -234,7 +234,12 @@ class RecordStore:
         row = ShardRow(name, len(rows), sum(r[5] for r in rows), size, crc,
                        min(snaps_lo) if snaps_lo else None, max(snaps_hi) if snaps_hi else None,
                        time.time(), self.writer, codec.SCHEMA_VERSION)
-        self.catalog.commit_shard(row, rows)
+        try:
+            self.catalog.commit_shard(row, rows)
+        except BaseException:
+            # never committed: remove the file so a retry of these games is not a duplicate
+            final.unlink(missing_ok=True)
+            raise
         self._pending.clear()
         self._pending_ids.clear()
         self._pending_bytes = 0
