@@ -333,6 +333,27 @@ def test_incremental_groups_match_rebuilt_groups_in_random_games() -> None:
                 assert g.liberties(s, p) == _flood_liberties(board, p)
 
 
+def test_single_point_test_agrees_with_the_legal_mask() -> None:
+    # The playout kernel judges one point at a time (move_result); the mask has the same logic
+    # written out in its loop. Both must agree everywhere, keys included.
+    rng = np.random.default_rng(8)
+    for size, allow, superko in ((5, False, True), (5, True, True), (7, True, False),
+                                 (9, False, False)):
+        g = GoGame(size=size, allow_suicide=allow, superko=superko, max_moves=3 * size * size)
+        s = g.initial_state()
+        while not g.is_terminal(s):
+            mask = g.legal_mask(s)
+            for p in np.flatnonzero(s.board == 0):
+                st, nk = K.move_result(s.board, s.groups, int(p), s.player + 1, s.key, allow,
+                                       g._nbr, g._zob, g._nwords)
+                repeat = (nk in set(s.seen.tolist())) if superko else nk == s.prev_key
+                assert mask[p] == (st == K.OK and not repeat)
+                if mask[p]:
+                    assert g.play(s, int(p)).key == nk
+            legal = np.flatnonzero(mask[:-1])
+            s = g.play(s, g.pass_action if legal.size == 0 else int(legal[rng.integers(legal.size)]))
+
+
 def _flood_liberties(board: np.ndarray, p: int) -> int:
     n = board.shape[0]
     r0, c0 = divmod(p, n)

@@ -222,21 +222,42 @@ def play_inplace(board, grp, key, color, p, allow_suicide, nbr, zob, nwords):
     return OK, key, captured
 
 
+@njit(cache=True)
+def _suicide_key(board, grp, p, color, key, nbr):
+    """Key of the board after a suicide at ``p``: every friendly group touching ``p`` goes
+    (the new stone never stays). Off the hot path: suicides are rare."""
+    nk = key
+    r0 = -1
+    r1 = -1
+    r2 = -1
+    for k in range(4):
+        q = nbr[p, k]
+        if q >= 0 and board[q] == color:
+            r = grp[q, REP]
+            if r != r0 and r != r1 and r != r2:
+                nk ^= grp[r, HASH]
+                if r0 < 0:
+                    r0 = r
+                elif r1 < 0:
+                    r1 = r
+                else:
+                    r2 = r
+    return nk
+
+
 @njit(cache=True, inline="always")
 def move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords):
-    """Without changing anything: status (OK / OCCUPIED / SUICIDE) of a ``color`` stone at ``p``
-    and the key of the board it would make."""
-    if board[p] != 0:
-        return OCCUPIED, key
+    """Without changing anything: status (OK or SUICIDE) of a ``color`` stone on the empty
+    point ``p`` and the key of the board it would make (``key`` itself when not OK).
+
+    The caller checks that ``p`` is empty. Kept branch-light on purpose: with the emptiness
+    test or the suicide bookkeeping wrapped around the neighbour loop, numba made this
+    several times slower."""
     nk = key ^ zob[color, p]
     has_lib = False
     c0 = -1
     c1 = -1
     c2 = -1
-    o0 = -1
-    o1 = -1
-    o2 = -1
-    o3 = -1
     for k in range(4):
         q = nbr[p, k]
         if q < 0:
@@ -245,21 +266,11 @@ def move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords):
         if v == 0:
             has_lib = True
         elif v == color:
-            r = grp[q, REP]
-            if _lib_other_than(grp, r, p, nwords):
+            if _lib_other_than(grp, grp[q, REP], p, nwords):
                 has_lib = True
-            elif r != o0 and r != o1 and r != o2 and r != o3:
-                if o0 < 0:
-                    o0 = r
-                elif o1 < 0:
-                    o1 = r
-                elif o2 < 0:
-                    o2 = r
-                else:
-                    o3 = r
         else:
             r = grp[q, REP]
-            if _lib_only(grp, r, p, nwords) and r != c0 and r != c1 and r != c2:
+            if r != c0 and r != c1 and r != c2 and _lib_only(grp, r, p, nwords):
                 nk ^= grp[r, HASH]
                 has_lib = True
                 if c0 < 0:
@@ -268,21 +279,14 @@ def move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords):
                     c1 = r
                 else:
                     c2 = r
-    if has_lib:
-        return OK, nk
-    if not allow_suicide:
-        return SUICIDE, key
-    # Suicide: the new stone and every friendly group it touches (all in atari on p) go.
-    nk = key
-    if o0 >= 0:
-        nk ^= grp[o0, HASH]
-    if o1 >= 0:
-        nk ^= grp[o1, HASH]
-    if o2 >= 0:
-        nk ^= grp[o2, HASH]
-    if o3 >= 0:
-        nk ^= grp[o3, HASH]
-    return OK, nk
+    status = OK
+    if not has_lib:
+        if allow_suicide:
+            nk = _suicide_key(board, grp, p, color, key, nbr)
+        else:
+            status = SUICIDE
+            nk = key
+    return status, nk
 
 
 @njit(cache=True, inline="always")
@@ -295,15 +299,63 @@ def _repeats(nk, seen, nseen, prev_key, superko):
 @njit(cache=True)
 def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob,
                  nwords, out):
-    """Fill ``out[:N]`` with the legality of a ``color`` stone on each point (pass not touched)."""
+    """Fill ``out[:N]`` with the legality of a ``color`` stone on each point (pass not touched).
+
+    The per-point test is :func:`move_result` written out in the loop: numba's inlined version
+    ran several times slower here. ``tests/test_go_rules.py`` checks that both agree."""
     n = board.shape[0]
     nseen = seen.shape[0]
     for p in range(n):
         if board[p] != 0:
             out[p] = False
             continue
-        st, nk = move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords)
-        out[p] = st == OK and not _repeats(nk, seen, nseen, prev_key, superko)
+        nk = key ^ zob[color, p]
+        has_lib = False
+        c0 = -1
+        c1 = -1
+        c2 = -1
+        for k in range(4):
+            q = nbr[p, k]
+            if q < 0:
+                continue
+            v = board[q]
+            if v == 0:
+                has_lib = True
+            elif v == color:
+                if _lib_other_than(grp, grp[q, REP], p, nwords):
+                    has_lib = True
+            else:
+                r = grp[q, REP]
+                if r != c0 and r != c1 and r != c2 and _lib_only(grp, r, p, nwords):
+                    nk ^= grp[r, HASH]
+                    has_lib = True
+                    if c0 < 0:
+                        c0 = r
+                    elif c1 < 0:
+                        c1 = r
+                    else:
+                        c2 = r
+        ok = has_lib
+        if not has_lib and allow_suicide:
+            nk = _suicide_key(board, grp, p, color, key, nbr)
+            ok = True
+        if ok:
+            if superko:
+                lo = 0
+                hi = nseen
+                while lo < hi:
+                    mid = (lo + hi) >> 1
+                    sv = seen[mid]
+                    if sv < nk:
+                        lo = mid + 1
+                    elif sv > nk:
+                        hi = mid
+                    else:
+                        ok = False
+                        break
+            elif nk == prev_key:
+                ok = False
+        out[p] = ok
 
 
 @njit(cache=True)
