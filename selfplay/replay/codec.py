@@ -268,6 +268,8 @@ def decode_record(payload: bytes, where: str = "record") -> GameRecord:
     snapshot = _decode_array(doc, "snapshot", (t,), where)
 
     if t:
+        if np.any(boards.view(np.uint8) > 2):
+            raise FormatError(f"{where}: a board cell holds a value other than 0, 1 or 2")
         if np.any((to_play != 0) & (to_play != 1)):
             raise FormatError(f"{where}: to_play holds a value other than 0 or 1")
         if actions.min() < 0 or actions.max() >= a:
