@@ -303,6 +303,7 @@ class RunMonitor:
         self.first_t: float | None = None
         self.last_t: float | None = None
         self.catalog: CatalogFacts | None = None
+        self.catalog_error: str | None = None
         self._tail = MetricsTail(self.run.metrics)
         self._snap_cache: dict[str, tuple[int, float | None]] = {}
 
@@ -319,7 +320,14 @@ class RunMonitor:
                 self._ingest(row)
             self._trim()
         self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache))
-        self.catalog = read_catalog(self.run.catalog, keep_times=self.keep_rows)
+        try:
+            self.catalog = read_catalog(self.run.catalog, keep_times=self.keep_rows)
+            self.catalog_error = None
+        except FormatError as exc:
+            # unreadable for now (locked, not readable from this machine, damaged): keep
+            # monitoring from the metric lines and say why the catalog is missing
+            self.catalog = None
+            self.catalog_error = str(exc)
 
     def _trim(self) -> None:
         """Forget counter samples older than the window (live views keep bounded memory)."""
@@ -505,6 +513,7 @@ class RunMonitor:
             "resignation": self._resign_block(workers),
             "evaluations": [self._eval_row(r) for _, r in sorted(self.evals.items())],
             "counts": counts,
+            "catalog_error": self.catalog_error,
             "metrics_bad_lines": self._tail.bad_lines,
         }
         return summary

@@ -86,6 +86,10 @@ def render_summary(s: Summary) -> RenderableType:
                 f" · last write {fmt_duration(s.get('idle_seconds'))} ago"
                 f" · counts from {s.get('counts_source')}, rates from {s.get('rates_source')}")
 
+    if s.get("catalog_error"):
+        head.append(f"\nwarning: {s['catalog_error']}; counts from the metric lines instead", style="bold yellow")
+    if s.get("metrics_bad_lines"):
+        head.append(f"\nwarning: {s['metrics_bad_lines']} malformed line(s) in metrics.jsonl skipped", style="yellow")
     snap = s.get("latest_snapshot") or {}
     main = _kv_table("production", [
         ("games", fmt_num(s.get("games")) + (f" (+{fmt_num(s['games_pending'])} waiting)"
