@@ -40,6 +40,9 @@ def test_unknown_field_and_inconsistent_budgets_are_refused():
         SearchConfig.parse({"simulatons": 10})
     with pytest.raises(ConfigError, match="reduced_simulations"):
         SearchConfig.parse({"simulations": 16, "reduced_simulations": 32})
+    # left unset, the reduced budget follows a small full budget down
+    assert SearchConfig(simulations=8).reduced_simulations == 8
+    assert SearchConfig(simulations=8).model_dump()["reduced_simulations"] == 8
 
 
 def test_published_defaults():

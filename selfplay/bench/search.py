@@ -130,7 +130,7 @@ def run(args: argparse.Namespace) -> int:
         m = _measure(many, args.seconds)
         many_runs.append(m)
         bounds.append(inference_bound(evaluator, tuple(game.input_shape), max(1, round(m["mean_batch"])), args.seconds / 2))
-        one_runs.append(_measure(one, args.seconds / 2))
+        one_runs.append(_measure(one, args.seconds))
 
     def med(runs: list[dict[str, Any]], key: str) -> float:
         return float(statistics.median(r[key] for r in runs))
@@ -151,10 +151,13 @@ def run(args: argparse.Namespace) -> int:
         "inference_bound_evals_per_second": bound,
         "selfplay_evals_per_second": evals,
         "positions_per_second": pps,
-        "efficiency": evals / bound if bound else 0.0,
+        # ratios per repeat (each from measurements taken back to back), then their median:
+        # steadier on a shared machine than a ratio of medians
+        "efficiency": float(statistics.median(m["evals_per_second"] / b for m, b in zip(many_runs, bounds))),
         "single_game_positions_per_second": pps_one,
         "single_game_evals_per_second": med(one_runs, "evals_per_second"),
-        "batching_speedup": pps / pps_one if pps_one else 0.0,
+        "batching_speedup": float(statistics.median(m["positions_per_second"] / max(o["positions_per_second"], 1e-9)
+                                                    for m, o in zip(many_runs, one_runs))),
         "time_share_rules": med(many_runs, "share_rules"),
         "time_share_tree": med(many_runs, "share_tree"),
         "time_share_network": med(many_runs, "share_network"),

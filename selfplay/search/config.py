@@ -41,7 +41,9 @@ class SearchConfig(BaseModel):
     full_search_share: float = Field(
         1.0, ge=0, le=1, description="Playout cap randomisation: share of moves searched with the full budget "
         "(policy targets); the others use `reduced_simulations` without noise. 1 = every move is full.")
-    reduced_simulations: int = Field(32, ge=1, description="Simulations of a reduced (fast) search under playout cap randomisation.")
+    reduced_simulations: int = Field(
+        32, ge=1, description="Simulations of a reduced (fast) search under playout cap randomisation "
+        "(left unset, 32 or `simulations` if that is smaller).")
     resign_threshold: float | None = Field(
         None, gt=-1, lt=1, description="The mover resigns when its root value (mover's view) falls below this; None = never resign.")
     resign_disabled_share: float = Field(
@@ -61,6 +63,9 @@ class SearchConfig(BaseModel):
 
     @model_validator(mode="after")
     def _consistent(self) -> "SearchConfig":
+        if self.reduced_simulations > self.simulations and "reduced_simulations" not in self.model_fields_set:
+            # the default (32) never exceeds a smaller full budget
+            object.__setattr__(self, "reduced_simulations", self.simulations)
         if self.reduced_simulations > self.simulations:
             raise ValueError(f"reduced_simulations={self.reduced_simulations} must not exceed simulations={self.simulations}")
         return self

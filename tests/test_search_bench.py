@@ -1,0 +1,25 @@
+"""`selfplay bench search`: the JSON carries the agreed keys; bad arguments are refused."""
+
+from __future__ import annotations
+
+import json
+
+from selfplay.cli import main
+
+
+def test_bench_json_keys(capsys):
+    code = main(["bench", "search", "--json", "--game", "tictactoe", "--net", "tiny", "--seconds", "0.3",
+                 "--repeats", "1", "--games-in-parallel", "4", "--simulations", "8"])
+    assert code == 0
+    out = json.loads(capsys.readouterr().out)
+    for key in ("inference_bound_evals_per_second", "selfplay_evals_per_second", "positions_per_second",
+                "efficiency", "batching_speedup", "time_share_rules", "time_share_tree", "time_share_network"):
+        assert isinstance(out[key], float) and out[key] >= 0, key
+    assert out["inference_bound_evals_per_second"] > 0 and out["selfplay_evals_per_second"] > 0
+    assert abs(out["time_share_rules"] + out["time_share_tree"] + out["time_share_network"] - 1) < 1e-6
+    assert out["mean_batch_size"] <= 4
+
+
+def test_bench_refuses_bad_arguments(capsys):
+    assert main(["bench", "search", "--simulations", "0", "--game", "tictactoe"]) == 2
+    assert "--simulations=0" in capsys.readouterr().err
