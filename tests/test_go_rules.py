@@ -440,7 +440,7 @@ def test_coordinates_letter_number_and_sgf() -> None:
         assert g.text_to_action(g.action_to_text(a)) == a
     g19 = GoGame(size=19)
     assert g19.action_to_text(18) == "T19" and g19.text_to_action("sa") == 18 and g19.text_to_action("ss") == 360
-    for bad in ("I5", "K1", "A10", "A0", "jj", "Z", "D4x", "e 5"):
+    for bad in ("I5", "K1", "A10", "A0", "jj", "Z", "D4x", "e 5", "A\u00b9", "\u0661\u0661"):
         with pytest.raises(IllegalMoveError):
             g.text_to_action(bad)
 

@@ -376,7 +376,7 @@ class GoGame(Game[GoState]):
         t = text.strip()
         if t.lower() == "pass" or t == "":
             return self._pass
-        if len(t) >= 2 and t[0].isalpha() and t[1:].isdigit():
+        if len(t) >= 2 and t.isascii() and t[0].isalpha() and t[1:].isdigit():
             letter = t[0].upper()
             if letter in COLUMN_LETTERS[:self.size]:
                 c = COLUMN_LETTERS.index(letter)
