@@ -97,7 +97,5 @@ def test_search_is_minimax_optimal_everywhere():
 def test_selfplay_between_solver_searches_always_draws():
     worker = SelfPlayWorker(GAME, UniformEvaluator(), SOLVER, games_in_parallel=6, worker_id="draws", seed=3)
     records = worker.play_games(6)
-    # Random tie-breaking between equally visited moves gives different games.
-    assert len({r.actions.tobytes() for r in records}) >= 1
     assert [r.result for r in records] == [0] * 6
     assert all(r.num_positions == 9 for r in records)
