@@ -128,3 +128,55 @@ def test_status_of_missing_and_empty_runs(tmp_path: Path, capsys: pytest.Capture
     assert "no data yet" in capsys.readouterr().out
     assert main(["watch", str(tmp_path / "fresh"), "--interval", "0"]) == 2
     assert "--interval" in capsys.readouterr().err
+
+
+def _free_port() -> int:
+    import socket
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    port = s.getsockname()[1]
+    s.close()
+    return port
+
+
+def test_watch_serves_prometheus_standalone_until_interrupted(run: Path) -> None:
+    import signal
+    import time
+    import urllib.error
+    import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
+
+    port = _free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "selfplay.cli", "watch", str(run), "--once",
+                             "--metrics-port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        body = None
+        for _ in range(100):
+            try:
+                body = urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=2).read().decode()
+                break
+            except (urllib.error.URLError, ConnectionError):
+                time.sleep(0.1)
+        assert body is not None, "endpoint never answered"
+        games = {s.name: s.value for f in text_string_to_metric_families(body) for s in f.samples}
+        assert games["selfplay_games_total"] == 10
+    finally:
+        proc.send_signal(signal.SIGINT)
+        out, err = proc.communicate(timeout=20)
+    assert proc.returncode == 0, err
+    assert f"127.0.0.1:{port}" in err
+
+
+def test_watch_with_a_port_in_use_is_one_clear_line(run: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import socket
+    blocker = socket.socket()
+    blocker.bind(("127.0.0.1", 0))
+    blocker.listen(1)
+    port = blocker.getsockname()[1]
+    try:
+        assert main(["watch", str(run), "--once", "--metrics-port", str(port)]) == 2
+    finally:
+        blocker.close()
+    err = capsys.readouterr().err
+    assert f"metrics port {port} on 127.0.0.1 is already in use" in err

@@ -43,8 +43,11 @@ def run(args: argparse.Namespace) -> int:
         watch_run(args.run, interval=args.interval, once=args.once, console=Console())
         if server is not None and args.once:
             import time
-            while True:  # --once with an endpoint: one frame, then keep serving until Ctrl-C
-                time.sleep(3600)
+            try:
+                while True:  # --once with an endpoint: one frame, then keep serving until Ctrl-C
+                    time.sleep(3600)
+            except KeyboardInterrupt:
+                pass
     finally:
         if server is not None:
             server.close()
