@@ -16,7 +16,7 @@ from selfplay.errors import ConfigError
 from selfplay.games.registry import make_game
 from selfplay.monitor.data import GameNotFoundError
 from selfplay.monitor.report import build_report, value_calibration, visit_entropies
-from selfplay.monitor.show import PositionView, action_cells, draw_position, show_position
+from selfplay.monitor.show import PositionView, action_cells, draw_position, position_view, show_position
 from selfplay.network import NetworkConfig, build_network
 from selfplay.records import GameRecordBuilder
 from selfplay.replay.store import RecordStore
@@ -148,3 +148,18 @@ def test_draw_position_on_synthetic_arrays(tmp_path: Path) -> None:
     view = PositionView(board=g.compact(s), to_play=1, prior=prior, visit_share=visits, q=q, legal=legal,
                         played=0, action_text=g.action_to_text)
     assert_not_blank(draw_position(view, tmp_path / "syn.png"))
+
+
+def test_show_without_the_snapshot_still_draws_the_visits(tmp_path: Path) -> None:
+    root = tmp_path / "nosnap"
+    game = make_game("mnk")
+    rec = random_record(game, np.random.default_rng(5), "lonely", game_name="mnk", game_options={},
+                        snapshot=7, finished_at=T0)
+    with RecordStore(root, writer="main") as store:
+        store.add_games([rec])
+        store.flush()
+    view = position_view(root, "lonely", 1)
+    assert view.prior is None and view.q is None
+    assert "snapshot 7" in view.note
+    assert np.isclose(view.visit_share.sum(), 1.0)
+    assert_not_blank(draw_position(view, tmp_path / "nosnap.png"))

@@ -57,6 +57,7 @@ class PositionView:
     value: float | None = None
     root_value: float | None = None
     note: str = ""
+    target_label: str = "search visit share"
 
 
 def action_cells(board: np.ndarray, num_actions: int) -> tuple[dict[int, tuple[int, int]], list[int]]:
@@ -173,7 +174,7 @@ def draw_position(view: PositionView, out: str | os.PathLike[str]) -> Path:
     ex = [
         _panel(axes[0], view, view.prior, "network prior (cells: %)", "Blues", 0.0,
                max(1e-6, float(np.nanmax(view.prior))) if view.prior is not None else 1.0, pct, fig),
-        _panel(axes[1], view, view.visit_share, "search visit share (cells: %)", "Greens", 0.0,
+        _panel(axes[1], view, view.visit_share, f"{view.target_label} (cells: %)", "Greens", 0.0,
                max(1e-6, float(np.nanmax(view.visit_share))), pct, fig),
         _panel(axes[2], view, view.q, "search Q per move (mover's view)", "RdBu", -1.0, 1.0, qfmt, fig),
     ]
@@ -257,9 +258,13 @@ def position_view(run: str | os.PathLike[str], game_id: str, move: int, *,
         prior, q, value = _search_position(rd, game, state, version, rec.search, rec.seed, simulations)
     except SnapshotError as exc:
         note = f"prior and Q not shown: {exc}"
+    gumbel = str((rec.search or {}).get("algorithm", "")) == "gumbel"
+    if not bool(rec.full_search[move]):
+        note = (note + " · " if note else "") + "a reduced search (playout cap): not a policy target"
     return PositionView(board=board, to_play=int(game.to_play(state)), prior=prior, visit_share=visit_share,
                         q=q, legal=legal, played=played, action_text=game.action_to_text, title=title,
-                        value=value, root_value=float(rec.root_values[move]), note=note)
+                        value=value, root_value=float(rec.root_values[move]), note=note,
+                        target_label="search's improved policy (Gumbel)" if gumbel else "search visit share")
 
 
 def _search_position(rd: Any, game: Any, state: Any, version: int, search: dict[str, Any], seed: int,
