@@ -190,3 +190,29 @@ def test_replay_benchmark_reports_its_figures(capsys):
         assert figs[key] > 0, key
     assert figs["fill_positions"] == 2000
     assert main(["bench", "replay", "--repeats", "0"]) == 2
+
+
+def test_adds_and_samples_from_several_threads():
+    import threading
+
+    rng = np.random.default_rng(3)
+    base = [synthetic.random_record(GO7, rng, f"b{i}", max_moves=30) for i in range(4)]
+    buf = ReplayBuffer(GO7, 500, seed=0)
+    buf.add(base[0])
+    errors: list[BaseException] = []
+
+    def adder():
+        try:
+            for i in range(200):
+                buf.add(synthetic.with_id(base[i % 4], f"t{i}"))
+        except BaseException as exc:  # pragma: no cover - reported below
+            errors.append(exc)
+
+    th = threading.Thread(target=adder)
+    th.start()
+    while th.is_alive():
+        b = buf.sample(64)
+        np.testing.assert_allclose(b["policy"].sum(axis=1), 1.0, rtol=1e-5)
+        assert not np.any(b["policy"][~b["mask"]])
+    th.join()
+    assert not errors and len(buf) == 500

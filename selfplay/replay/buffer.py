@@ -10,12 +10,13 @@ For 9x9 Go that is 111 bytes per position plus 4 bytes per policy entry.
 Sampling is uniform over the window, or linearly tilted toward recent positions
 (``recency_weight``: the newest position is ``1 + recency_weight`` times as likely as the oldest).
 A random board symmetry is applied per sampled position (``augment``), to the boards, the policy
-and the legal mask alike. The buffer is not thread-safe; one owner calls it.
+and the legal mask alike. Calls from several threads are serialised by a lock.
 """
 
 from __future__ import annotations
 
 import json
+import threading
 from typing import Any, Iterable
 
 import numpy as np
@@ -81,6 +82,7 @@ class ReplayBuffer:
         self.newest_snapshot: int | None = None
         self._game_key = (game.name, json.dumps(game.options(), sort_keys=True))
         self._checked: dict[tuple[str, str], bool] = {}
+        self._mutex = threading.RLock()
 
     @classmethod
     def from_config(cls, game: Game, config: Any, seed: int | None = None) -> "ReplayBuffer":
@@ -130,6 +132,10 @@ class ReplayBuffer:
     def add(self, rec: GameRecord) -> int:
         """Add one finished game's positions (the oldest positions leave the window); returns
         the number added. Raises FormatError for a record of another game or shape."""
+        with self._mutex:
+            return self._add(rec)
+
+    def _add(self, rec: GameRecord) -> int:
         self._check_record(rec)
         t = rec.num_positions
         self.games_added += 1
@@ -263,8 +269,9 @@ class ReplayBuffer:
             raise BufferEmptyError("the replay buffer holds no positions yet")
         if policy_targets_only and self._eligible == 0:
             raise BufferEmptyError("the replay buffer holds no full-search positions with a policy target")
-        seqs = self._draw(batch_size, policy_targets_only)
-        return self._gather(seqs)
+        with self._mutex:
+            seqs = self._draw(batch_size, policy_targets_only)
+            return self._gather(seqs)
 
     def _uniform_or_recent(self, n: int) -> np.ndarray:
         size = len(self)

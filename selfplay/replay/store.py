@@ -16,9 +16,11 @@ re-written into a new shard so that only the damaged ones are lost.
 from __future__ import annotations
 
 import fcntl
+import functools
 import json
 import os
 import re
+import threading
 import time
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Literal
@@ -66,6 +68,15 @@ class _Pending:
     row: tuple  # games row without (shard, frame_offset) filled in
 
 
+def _locked(method):  # type: ignore[no-untyped-def]
+    """Run a RecordStore method under the store's lock."""
+    @functools.wraps(method)
+    def wrapper(self, *args, **kwargs):  # type: ignore[no-untyped-def]
+        with self._mutex:
+            return method(self, *args, **kwargs)
+    return wrapper
+
+
 def shard_name(writer: str, index: int) -> str:
     return f"{writer}-{index:08d}{SHARD_SUFFIX}"
 
@@ -108,6 +119,7 @@ class RecordStore:
         self.max_games, self.max_bytes, self.max_age_seconds = max_games, max_bytes, max_age_seconds
         self.flags = codec.FLAG_DEFLATE if compress else 0
         self._lock_fd = self._take_lock(writer)
+        self._mutex = threading.RLock()  # callers on several threads (e.g. a threaded actor)
         self._pending: list[_Pending] = []
         self._pending_ids: set[str] = set()
         self._pending_bytes = 0
@@ -138,6 +150,7 @@ class RecordStore:
                               f"store named {writer!r} (another process writes it)") from None
         return fd
 
+    @_locked
     def close(self) -> None:
         """Write the waiting games and release the writer lock."""
         if self._lock_fd < 0:
@@ -156,6 +169,7 @@ class RecordStore:
         self.close()
 
     # ---- writing -----------------------------------------------------------------------------
+    @_locked
     def add_games(self, records: Iterable[GameRecord]) -> tuple[list[str], list[str]]:
         """Accept finished games; returns (added game ids, duplicate game ids) in input order.
         Added games are on disk after the next flush (automatic by count, size or age, or
@@ -172,6 +186,7 @@ class RecordStore:
                 dups.append(r.game_id)
         return added, dups
 
+    @_locked
     def ingest(self, records: Iterable[GameRecord]) -> IngestResult:
         """Like :meth:`add_games`, returning the accepted records themselves. Every record is
         validated and encoded before any is accepted: a bad record raises FormatError and the
@@ -202,12 +217,14 @@ class RecordStore:
         self.flush_if_due()
         return IngestResult([r for r, _ in fresh], duplicates)
 
+    @_locked
     def flush_if_due(self) -> str | None:
         """Write the waiting games if the oldest has waited ``max_age_seconds``."""
         if self._pending and time.monotonic() - self._pending_since >= self.max_age_seconds:
             return self.flush()
         return None
 
+    @_locked
     def flush(self) -> str | None:
         """Write the waiting games as one shard and commit it; returns the shard name (None if
         nothing was waiting)."""
@@ -255,6 +272,7 @@ class RecordStore:
         """Positions of the games accepted but not yet in a shard."""
         return sum(p.row[5] for p in self._pending)
 
+    @_locked
     def stats(self) -> dict[str, Any]:
         """Committed counts (``games``, ``positions``, ``shards``, ``duplicates``,
         ``newest_snapshot``) and the waiting ones (``pending_games``, ``pending_positions``)."""
@@ -268,10 +286,12 @@ class RecordStore:
             raise RunDirError(f"record store of {str(self.run.root)!r} is closed")
 
     # ---- counts and metrics ------------------------------------------------------------------
+    @_locked
     def totals(self) -> CatalogTotals:
         """Committed games, positions, shards, duplicates and newest snapshot (whole catalog)."""
         return self.catalog.totals()
 
+    @_locked
     def log_metrics(self, **extra: Any) -> dict[str, Any]:
         """Append a ``buffer`` line to RUN/metrics.jsonl with the committed counts (plus
         ``extra`` fields, e.g. ``window_positions`` and ``window_capacity`` from a buffer)."""
@@ -339,6 +359,7 @@ class RecordStore:
                 self._quarantine(p.name, scan, str(scan.error), rep)
         return rep
 
+    @_locked
     def verify(self, full: bool = True) -> RecoveryReport:
         """Check every catalogued shard now — its size, and with ``full`` every frame's CRC and
         decoding — and quarantine the damaged ones (salvaging the games before the damage)."""
