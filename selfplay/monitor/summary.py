@@ -93,7 +93,8 @@ class MetricsTail:
             except (json.JSONDecodeError, UnicodeDecodeError):
                 self.bad_lines += 1
                 continue
-            if isinstance(row, dict) and isinstance(row.get("t"), (int, float)) and "component" in row:
+            t = row.get("t") if isinstance(row, dict) else None
+            if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t) and "component" in row:
                 rows.append(row)
             else:
                 self.bad_lines += 1
