@@ -89,6 +89,16 @@ break]
     assert g.komi == 0.5 and g.size == 9
 
 
+def test_deeply_nested_variations_follow_the_main_line() -> None:
+    # Some editors write every move as a new variation: "(;B[..](;W[..](;B[..] ...)))".
+    game = GoGame(size=19)
+    moves, _, _ = _random_game(game, seed=9)
+    coords = ["" if a == 361 else point_to_sgf(a, 19) for a in moves]
+    text = "(;SZ[19]" + "".join(f"(;{'BW'[i % 2]}[{c}]" for i, c in enumerate(coords))
+    text += ")" * len(coords) + "(;B[aa])" + ")"  # the root's second variation is not main line
+    assert len(moves) > 300 and read_sgf(text).moves == moves
+
+
 def test_handicap_setup_stones_and_multiple_values() -> None:
     text = ("(;GM[1]FF[4]SZ[9]HA[3]KM[0.5]AB[cc][gc][cg]PB[Ada]RE[W+R];W[gg];B[ee];W[tt];B[])")
     g = read_sgf(text)
@@ -144,6 +154,9 @@ def test_replay_applies_captures_and_suicide_rules() -> None:
     ("(;SZ[9]PL[X])", "PL\\[X\\]"),
     ("(;FF[7])", "FF\\[7\\]"),
     ("(;SZ[9]1[x])", "expected '\\(', '\\)' or ';'"),
+    ("(;SZ[9](;B[aa]);W[bb])", "after a variation"),
+    ("(" * 100000, "expected ';'"),
+    ("(;" * 100000, "unbalanced"),
 ])
 def test_malformed_sgf_is_refused_with_a_clear_error(text: str, message: str) -> None:
     with pytest.raises(FormatError, match=message):
@@ -177,3 +190,42 @@ def test_write_refuses_illegal_moves_and_bad_extra_properties() -> None:
         write_sgf(game, [40], result=None, extra={"C": []})
     with pytest.raises(FormatError, match="expected text"):
         read_sgf(b"(;SZ[9])")  # type: ignore[arg-type]
+
+
+# ---- fuzzing: any text either parses or raises FormatError ------------------------------------
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+_SGF_CHARS = "();[]\\:ABWEHKMPLSZRGFCab cdefghijst0123456789.+-\n"
+_VALID = "(;GM[1]FF[4]SZ[5]KM[0.5]AB[aa:bb]PB[x\\]y];W[cc](;B[dd];W[])(;B[ee]))"
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.text(alphabet=_SGF_CHARS, max_size=80))
+def test_fuzz_random_text_parses_or_raises_format_error(text: str) -> None:
+    # Common practice (fuzzing readers): a reader never fails with anything but its own error.
+    try:
+        read_sgf(text)
+    except FormatError:
+        pass
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, len(_VALID)), st.integers(0, 3),
+                          st.sampled_from(_SGF_CHARS)), max_size=4))
+def test_fuzz_mutated_record_parses_or_raises_format_error(edits: list) -> None:
+    text = _VALID
+    for pos, kind, ch in edits:
+        pos = min(pos, len(text))
+        if kind == 0:
+            text = text[:pos] + text[pos + 1:]
+        elif kind == 1:
+            text = text[:pos] + ch + text[pos:]
+        else:
+            text = text[:pos] + ch + text[pos + 1:]
+    try:
+        g = read_sgf(text)
+    except FormatError:
+        return
+    assert 1 <= g.size <= 19 and all(0 <= m <= g.size * g.size for m in g.moves)

@@ -126,42 +126,44 @@ class _Parser:
         assert first is not None
         return first
 
-    def game_tree(self, keep: bool) -> list[_Node]:
-        start = self.i
-        self.i += 1  # "("
+    def _open_tree(self, frames: list[list], keep: bool) -> None:
+        """Enter a game tree at '(' : push its frame and check that a node follows."""
+        frames.append([self.i, keep, False])  # start, on the main line, has a child tree
+        self.i += 1
         self.skip_ws()
-        if self.i >= len(self.text) or self.text[self.i] != ";":
-            if self.i >= len(self.text):
-                raise self.error(f"unbalanced '(' opened at {_where(self.text, start)}: input ends")
+        if self.i >= len(self.text):
+            raise self.error(f"unbalanced '(' opened at {_where(self.text, frames[-1][0])}: input ends")
+        if self.text[self.i] != ";":
             raise self.error(f"expected ';' starting a node, found {self.text[self.i]!r}")
+
+    def game_tree(self, keep: bool) -> list[_Node]:
+        """One game tree (iteratively, so deep variation nesting cannot exhaust the stack);
+        returns its main line's nodes when ``keep``."""
         nodes: list[_Node] = []
-        while True:
+        frames: list[list] = []
+        self._open_tree(frames, keep)
+        while frames:
             self.skip_ws()
             if self.i >= len(self.text):
-                raise self.error(f"unbalanced '(' opened at {_where(self.text, start)}: input ends")
+                raise self.error(f"unbalanced '(' opened at {_where(self.text, frames[-1][0])}: input ends")
             ch = self.text[self.i]
-            if ch == ";":
+            top = frames[-1]
+            if ch == ";" and not top[2]:
                 node = self.node()
-                if keep:
+                if top[1]:
                     nodes.append(node)
-            else:
-                break
-        first_child = True
-        while True:
-            self.skip_ws()
-            if self.i >= len(self.text):
-                raise self.error(f"unbalanced '(' opened at {_where(self.text, start)}: input ends")
-            ch = self.text[self.i]
-            if ch == "(":
-                child = self.game_tree(keep=keep and first_child)
-                if keep and first_child:
-                    nodes.extend(child)
-                first_child = False
+            elif ch == "(":
+                child_keep = top[1] and not top[2]
+                top[2] = True
+                self._open_tree(frames, child_keep)
             elif ch == ")":
+                frames.pop()
                 self.i += 1
-                return nodes
+            elif ch == ";":
+                raise self.error("expected '(' or ')' after a variation, found ';'")
             else:
                 raise self.error(f"expected '(', ')' or ';', found {ch!r}")
+        return nodes
 
     def node(self) -> _Node:
         node = _Node(self.i)
