@@ -172,3 +172,14 @@ def test_worker_games_flow_through_store_buffer_and_export(tmp_path):
         if not rec.resigned:
             assert rec.result == game.outcome(state)
     assert row == z["planes"].shape[0]
+
+
+def test_dataset_splits_shards_among_loader_processes(run):
+    path, recs = run
+    n = sum(r.num_positions for r in recs)
+    ds = ReplayDataset(path, batch_size=8, augment=False)
+    loader = DataLoader(ds, batch_size=None, num_workers=2, multiprocessing_context="fork")
+    snaps = torch.cat([b["snapshot"] for b in loader])
+    assert snaps.shape[0] == n  # every position once, none twice across the two processes
+    want = np.concatenate([r.snapshot for r in recs])
+    assert sorted(snaps.tolist()) == sorted(want.tolist())
