@@ -52,7 +52,7 @@ SETTINGS: dict[str, dict[str, Any]] = {
     },
     "fourinrow": {
         "game": {"name": "fourinrow", "options": {"columns": 7, "rows": 6}},
-        "network": {"blocks": 3, "channels": 48, "value_hidden": 48},
+        "network": {"blocks": 2, "channels": 32, "value_hidden": 32},
         "search": {"simulations": 64, "reduced_simulations": 16, "full_search_share": 0.5,
                    "temperature_moves": 10},
         "worker": {"games_in_parallel": 64, "threads": 1},

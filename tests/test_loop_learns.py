@@ -1,0 +1,186 @@
+"""The one-process loop, the evaluation tools, and the proof that the loop learns.
+
+The slow test trains tic-tac-toe from scratch and checks, against a perfect minimax player,
+that the trained snapshot loses far fewer games than the untrained one. It can fail: a learner
+that does not learn, a sign error in the value target or a worker that never picks up a new
+snapshot each leave the newest snapshot as weak as the first."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import pytest
+import torch
+
+from selfplay.config import config_from_dict
+from selfplay.errors import ConfigError, RunDirError
+from selfplay.evaluation import (MinimaxPlayer, MinimaxSolver, PolicyPlayer, RandomPlayer, SearchPlayer,
+                                 elo_difference, elo_expected_score, play_match)
+from selfplay.evaluators import NetworkEvaluator
+from selfplay.games.registry import make_game
+from selfplay.learner_config import LoopConfig
+from selfplay.loop import LocalRun, run_local_loop
+from selfplay.metrics import read_metrics
+from selfplay.network import build_network
+from selfplay.replay.catalog import Catalog
+from selfplay.snapshots import SnapshotStore
+
+
+# ---- evaluation tools ----------------------------------------------------------------------
+
+def test_elo_expected_score_formula():
+    # Elo's rating system: E = 1 / (1 + 10^(-D/400)); 400 points -> 10:1 odds, E = 10/11
+    assert elo_expected_score(0) == 0.5
+    assert elo_expected_score(400) == pytest.approx(10 / 11)
+    assert elo_expected_score(-400) == pytest.approx(1 / 11)
+    for d in (-350.0, -12.5, 0.0, 99.0, 700.0):
+        assert elo_difference(elo_expected_score(d)) == pytest.approx(d)
+    assert elo_difference(1.0) == math.inf
+    assert elo_difference(1.0, games=100) == pytest.approx(-400 * math.log10(1 / 0.995 - 1))
+    with pytest.raises(ConfigError):
+        elo_difference(1.5)
+
+
+def test_minimax_solves_tictactoe():
+    # well-known results, from memory: 5,478 legal positions reachable from the empty board, and
+    # perfect play is a draw
+    ttt = make_game("tictactoe")
+    solver = MinimaxSolver(ttt, prune=False)
+    assert solver.value(ttt.initial_state()) == 0.0
+    assert len(solver.table) == 5478
+    # a position of our own, worked by hand: X (a3, b3) to move against O (a1, b1). c3 wins at
+    # once; c1 also wins (it blocks O and makes two threats, c3 and b2); every other move lets O
+    # complete the bottom row at c1
+    s = ttt.play_sequence(["a3", "a1", "b3", "b1"])
+    assert solver.value(s) == 1.0
+    assert sorted(solver.optimal_actions(s)) == sorted([ttt.text_to_action("c3"), ttt.text_to_action("c1")])
+
+
+def test_minimax_never_loses_and_punishes_random_play():
+    ttt = make_game("tictactoe")
+    perfect = MinimaxPlayer(ttt)
+    res = play_match(ttt, RandomPlayer(), perfect, 100, seed=3)
+    assert res.wins == 0 and res.losses > 50  # a random player loses most games to perfect play
+    assert res.losses_as_first + res.losses_as_second == res.losses
+    assert play_match(ttt, perfect, MinimaxPlayer(ttt), 40, seed=4).draws == 40
+    with pytest.raises(ConfigError, match="even"):
+        play_match(ttt, perfect, perfect, 5)
+
+
+# ---- the loop ------------------------------------------------------------------------------
+
+def tiny_config(**run):
+    return config_from_dict({
+        "game": {"name": "mnk", "options": {"m": 3, "n": 3, "k": 3}},
+        "network": {"blocks": 1, "channels": 16, "value_hidden": 16},
+        "search": {"simulations": 16, "reduced_simulations": 8, "temperature_moves": 3},
+        "worker": {"games_in_parallel": 16, "snapshot_poll_seconds": 0.01},
+        "replay": {"window_positions": 20_000},
+        "learner": {"batch_size": 32, "steps_per_snapshot": 10, "min_buffer_positions": 100,
+                    "target_reuse_ratio": 2.0, "optimizer": "adam", "learning_rate": 0.002},
+        "run": {"seed": 5, **run},
+    })
+
+
+def test_loop_runs_resumes_and_keeps_the_run_directory_consistent(tmp_path):
+    run_dir = tmp_path / "run"
+    first = run_local_loop(tiny_config(games=32), run_dir, loop=LoopConfig(games_per_phase=16))
+    assert first.games >= 32 and first.stopped_because == "run.games=32"
+    store = SnapshotStore(run_dir)
+    v_first = store.latest_version()
+    assert v_first >= 2  # the untrained version 1 and at least one trained snapshot
+    steps_first = store.latest().training_steps
+    assert (run_dir / "learner" / "checkpoint.json").exists()
+    second = run_local_loop(tiny_config(games=64), run_dir, loop=LoopConfig(games_per_phase=16))
+    assert second.games >= 64
+    infos = list(store.iter_infos())
+    assert [i.version for i in infos] == list(range(1, len(infos) + 1))  # versions only increase
+    assert infos[-1].training_steps > steps_first  # the learner continued from its checkpoint
+    cat = Catalog(run_dir / "catalog.sqlite", readonly=True)
+    try:
+        ids = cat.game_ids()
+        assert len(ids) == len(set(ids)) == second.games  # every game once, none repeated on resume
+    finally:
+        cat.close()
+    # trained positions never ran ahead of the target reuse ratio
+    rows = [r for r in read_metrics(run_dir / "metrics.jsonl") if r["component"] == "learner"]
+    assert rows and max(r["reuse_ratio"] for r in rows) <= 2.0 + 1e-9
+    assert {r["component"] for r in read_metrics(run_dir / "metrics.jsonl")} >= {"learner", "snapshots", "worker"}
+
+
+def test_loop_refuses_a_run_directory_of_another_config(tmp_path):
+    run_dir = tmp_path / "run"
+    run_local_loop(tiny_config(games=16), run_dir, loop=LoopConfig(games_per_phase=16))
+    other = tiny_config(games=16).model_copy(update={"game": make_game_config("mnk", m=4, n=4, k=3)})
+    with pytest.raises(RunDirError, match="another configuration.*game"):
+        LocalRun(other, run_dir)
+
+
+def make_game_config(name, **options):
+    from selfplay.config import GameConfig
+
+    return GameConfig(name=name, options=options)
+
+
+def test_worker_picks_up_a_users_snapshot_and_refuses_a_foreign_one(tmp_path):
+    run = LocalRun(tiny_config(), tmp_path / "run")
+    try:
+        assert run.worker_version == 1
+        game = run.game
+        mine = build_network(game, run.config.network, seed=99)  # a user's own trainer
+        v = run.store.publish(mine, parent_version=1)
+        assert run.pickup_snapshot() and run.worker_version == v
+        assert all(torch.equal(a, b) for a, b in zip(run.worker_net.state_dict().values(),
+                                                     mine.state_dict().values()))
+        run.generate(16)  # positions now record the new version
+        assert run.buffer.newest_snapshot == v
+        before = {k: t.clone() for k, t in run.worker_net.state_dict().items()}
+        foreign = build_network(make_game("mnk", m=4, n=4, k=3), run.config.network)
+        bad = run.store.publish(foreign)
+        assert not run.pickup_snapshot()
+        assert run.status.events[-1]["event"] == "snapshot_refused" and run.status.events[-1]["version"] == bad
+        assert all(torch.equal(before[k], t) for k, t in run.worker_net.state_dict().items())
+        run.generate(16)  # the worker plays on with its previous weights
+    finally:
+        run.close()
+
+
+def test_loop_refuses_a_ratio_its_stop_condition_can_never_meet(tmp_path):
+    cfg = tiny_config(positions=50)  # fewer positions than learner.min_buffer_positions=100
+    with pytest.raises(ConfigError, match="min_buffer_positions"):
+        run_local_loop(cfg, tmp_path / "run")
+
+
+# ---- the proof (short version of scripts/learning_proof.py) --------------------------------
+
+@pytest.mark.slow
+def test_tictactoe_from_scratch_stops_losing_to_perfect_play(tmp_path):
+    cfg = config_from_dict({
+        "game": {"name": "mnk", "options": {"m": 3, "n": 3, "k": 3}},
+        "network": {"blocks": 2, "channels": 32, "value_hidden": 32},
+        "search": {"simulations": 48, "reduced_simulations": 16, "temperature_moves": 3},
+        "worker": {"games_in_parallel": 64},
+        "replay": {"window_positions": 40_000},
+        "learner": {"batch_size": 128, "optimizer": "adam", "learning_rate": 0.002,
+                    "steps_per_snapshot": 100, "min_buffer_positions": 1000, "target_reuse_ratio": 6.0},
+        "run": {"seed": 11},
+    })
+    run_dir = tmp_path / "run"
+    status = run_local_loop(cfg, run_dir, stop=lambda st: st.learner_steps >= 500,
+                            loop=LoopConfig(games_per_phase=64, max_steps_per_phase=200))
+    assert status.learner_steps >= 500
+    game = make_game("tictactoe")
+    store = SnapshotStore(run_dir)
+    results = {}
+    for label, version in (("untrained", 1), ("trained", store.latest_version())):
+        net = build_network(game, cfg.network)
+        store.load_into(net, version)
+        search = play_match(game, SearchPlayer(NetworkEvaluator(net), 48, label), MinimaxPlayer(game), 100, seed=2)
+        raw = play_match(game, PolicyPlayer(net, label), MinimaxPlayer(game), 100, seed=2)
+        results[label] = (search.losses, raw.losses)
+    print(json.dumps(results))
+    (u_search, u_raw), (t_search, t_raw) = results["untrained"], results["trained"]
+    assert u_search >= 20 and u_raw >= 30  # the untrained snapshot loses many games to perfect play
+    assert t_search <= 5 and t_search * 4 <= u_search
+    assert t_raw <= 15 and t_raw * 3 <= u_raw
