@@ -104,3 +104,29 @@ def test_records_are_read_back_from_the_shards(tmp_path: Path) -> None:
     assert len(newest_records(root, max_games=10)) == 10
     with pytest.raises(GameNotFoundError, match="'nope' is not in the catalog"):
         find_record(root, "nope")
+
+
+def test_a_real_local_run_agrees_with_its_catalog(tmp_path: Path) -> None:
+    """Self-play through the one-process loop (real worker, search, record store), then the
+    status read back from the run directory against plain SQL over its catalog and the
+    worker's own metric lines."""
+    import json
+
+    from selfplay.config import load_preset, with_overrides
+    from selfplay.loop import run_local_loop
+
+    cfg = with_overrides(load_preset("tictactoe"), {"run.games": 24, "search.simulations": 16, "run.learner": False})
+    root = tmp_path / "local"
+    run_local_loop(cfg, root)
+    s = compute_summary(root)
+    games, positions = sql(root, "SELECT count(*), sum(positions) FROM games")
+    assert games >= 24
+    assert (s["games"], s["positions"]) == (games, positions)
+    lines = [json.loads(x) for x in (root / "metrics.jsonl").read_text().splitlines()]
+    last = [r for r in lines if r["component"] == "worker"][-1]
+    assert (last["games_total"], last["positions_total"]) == (games, positions)
+    assert s["counts"]["workers"] == {"games": games, "positions": positions}
+    # the whole run is shorter than the window: games per hour = games / run time * 3600
+    span = s["as_of"] - s["started_at"]
+    assert s["games_per_hour"] == pytest.approx(games / span * 3600, rel=1e-3)
+    assert s["workers"][0]["snapshot_version"] == s["latest_snapshot"]["version"]
