@@ -130,3 +130,27 @@ def test_run_toml_is_complete(tmp_path):
     assert load_config(out / "run.toml") == load_preset("tictactoe")
     assert "# torch threads per worker" in text
     assert isinstance(resolve_run(_args(out=str(out), resume=True)), RunPlan)
+
+
+def test_stop_conditions_and_status_line(tmp_path):
+    import time
+
+    from cluster.launcher import Launcher
+    from selfplay.config import with_overrides
+    from selfplay.rundir import RunDir
+
+    cfg = with_overrides(load_preset("tictactoe"), {"run.games": 100, "run.positions": 0, "run.minutes": 0})
+    la = Launcher(cfg, RunDir(tmp_path / "r"), say=lambda line: None, progress=False)
+    la.started_at = time.time()
+    la.buffer_stats = {"games_total": 99, "positions_total": 700, "window_positions": 700, "window_capacity": 1000}
+    assert la.stop_reached() is None
+    la.buffer_stats["games_total"] = 100
+    assert la.stop_reached() == "100 games"
+    la.config = with_overrides(cfg, {"run.games": 0, "run.positions": 700})
+    assert la.stop_reached() == "700 positions"
+    la.config = with_overrides(cfg, {"run.games": 0, "run.minutes": 0.5})
+    assert la.stop_reached() is None
+    la.started_at -= 31
+    assert la.stop_reached() == "0.5 minutes"
+    line = la.status_line()
+    assert "games 100 " in line and "positions 700 " in line and "window 700/1,000" in line
