@@ -211,3 +211,26 @@ def test_go_positions_carry_history_for_the_network():
         w.step()
     assert w.positions_total_moves() >= 9
     assert w.stats()["evals_total"] >= 3 * 3 * 8
+
+
+def test_gumbel_records_play_the_halving_winner_and_store_the_improved_policy():
+    cfg = SearchConfig(algorithm="gumbel", simulations=16, reduced_simulations=4, full_search_share=0.5)
+    records = _worker(cfg, games_in_parallel=3).play_games(3)
+    for r in records:
+        for t in range(r.num_positions):
+            lo, hi = r.policy_offsets[t], r.policy_offsets[t + 1]
+            assert r.policy_weights[lo:hi].sum() == pytest.approx(1.0, abs=1e-5)   # probabilities
+            assert int(r.actions[t]) in r.policy_actions[lo:hi].tolist()
+
+
+def test_fourinrow_games_run_to_a_finished_position():
+    from selfplay.games.registry import make_game
+    game = make_game("fourinrow")
+    net = build_network(game, NetworkConfig.tiny())
+    records = SelfPlayWorker(game, NetworkEvaluator(net, game=game), SearchConfig(simulations=8),
+                             games_in_parallel=2, worker_id="f", seed=1).play_games(2)
+    for r in records:
+        state = game.initial_state()
+        for a in r.actions:
+            state = game.play(state, int(a))
+        assert game.is_terminal(state) and r.result == int(game.outcome(state))
