@@ -49,6 +49,15 @@ COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
 }
 
 
+#: fields kept per line when every line is kept (``keep_rows``, for the report's plots)
+ROW_FIELDS_KEPT = frozenset({
+    "t", "component", "source", "snapshot_version", "games_total", "step", "loss", "loss_policy",
+    "loss_value", "loss_l2", "resign_disabled_games_total", "resign_probe_triggered_total",
+    "resign_false_positives_total", "opponent", "player", "games", "wins", "draws", "losses", "elo",
+    "version", "published_at",
+})
+
+
 # ---- reading metrics.jsonl incrementally --------------------------------------------------------
 
 class MetricsTail:
@@ -289,7 +298,8 @@ def read_snapshot_times(snap_dir: Path, cache: dict[str, tuple[int, float | None
 class RunMonitor:
     """Incremental reader of one run directory; :meth:`summary` gives the status dict.
 
-    ``keep_rows=True`` also keeps every metric line (for plots); otherwise counters are trimmed
+    ``keep_rows=True`` also keeps every metric line, reduced to ``ROW_FIELDS_KEPT`` (for plots),
+    and every counter sample; otherwise counters are trimmed
     to the recent window so memory stays bounded however long the run is watched."""
 
     def __init__(self, run: str | os.PathLike[str], window: float = WINDOW_SECONDS,
@@ -346,7 +356,7 @@ class RunMonitor:
         self.first_t = t if self.first_t is None else min(self.first_t, t)
         self.last_t = t if self.last_t is None else max(self.last_t, t)
         if self.keep_rows:
-            self.rows.append(row)
+            self.rows.append({k: v for k, v in row.items() if k in ROW_FIELDS_KEPT})
         st = self.sources.get((comp, src))
         if st is None:
             st = self.sources[(comp, src)] = SourceState(comp, src, t, t)
