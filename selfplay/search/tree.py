@@ -311,7 +311,6 @@ class BatchedSearch:
             if not batch_slots:
                 break
             k = len(batch_slots)
-            slot_arr = np.array(batch_slots, dtype=np.int64)
             cur = np.array([slots[s].root for s in batch_slots], dtype=np.int64)
             forced = None
             if self._is_gumbel:
