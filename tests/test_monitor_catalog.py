@@ -56,6 +56,7 @@ def sql(root: Path, q: str):
 
 
 def test_counts_agree_with_the_catalog(tmp_path: Path) -> None:
+    # reference: plain SQL over catalog.sqlite (SQLite's own count and sum)
     root = tmp_path / "run"
     recs = write_run(root)
     with RecordStore(root, writer="main") as store:  # reopened: the buffer line of its counts
@@ -87,6 +88,8 @@ def test_rates_from_catalog_finish_times(tmp_path: Path) -> None:
 
 
 def test_resignation_false_positives_from_the_catalog(tmp_path: Path) -> None:
+    # the false-positive measure of AlphaGo Zero (Silver et al., Nature 2017): among games played
+    # with resignation disabled, those the would-have-resigned player did not lose
     root = tmp_path / "run"
     write_run(root)
     r = compute_summary(root)["resignation"]

@@ -43,6 +43,8 @@ class FakeClock:
 
 
 def test_progress_eta_is_the_first_condition_met() -> None:
+    # ETA = what is left / the rate seen so far, the run stopping at the first condition met
+    # (common practice); figures computed by hand below
     clock, out = FakeClock(), io.StringIO()
     bar = StopProgress(games=100, minutes=1, console=Console(file=out, width=120), clock=clock,
                        plain_every=0)
@@ -109,6 +111,7 @@ def test_watch_prints_successive_frames_when_not_a_terminal(run: Path) -> None:
 
 
 def test_status_json_keys(run: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # keys promised by the issue and docs/metrics.md; rates computed by hand below
     assert main(["status", str(run), "--json"]) == 0
     s = json.loads(capsys.readouterr().out)
     for key in ("games", "positions", "games_per_hour", "positions_per_second", "latest_snapshot", "workers"):

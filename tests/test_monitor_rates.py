@@ -136,6 +136,8 @@ def test_snapshot_metadata_files_are_read(run: Path) -> None:
 
 
 def test_resignation_false_positive_rate_from_metrics(run: Path) -> None:
+    # AlphaGo Zero's measure (Silver et al., Nature 2017): false positives among resign-disabled
+    # games in which a player would have resigned
     write_lines(run, [worker(1000, "w1", 0, 0), worker(1100, "w1", 40, 400, resign_disabled_games_total=4,
                                                       resign_probe_triggered_total=3,
                                                       resign_false_positives_total=1)])
