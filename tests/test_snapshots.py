@@ -248,3 +248,23 @@ def test_safetensors_header_length_with_low_byte_0x80_is_not_taken_for_a_pickle(
     check_safetensors_bytes(data, "test")  # must not raise
     with pytest.raises(SnapshotError, match="pickle"):
         check_safetensors_bytes(b"\x80\x04\x95" + b"\x00" * 20, "test")
+
+
+def test_publish_command_checks_against_run_toml_when_no_snapshot_exists(tmp_path, ttt, capsys):
+    from selfplay.config import config_from_dict, dump_config
+
+    run = tmp_path / "run"
+    RunDir.create(run)
+    cfg = config_from_dict({"game": {"name": "mnk", "options": {"m": 3, "n": 3, "k": 3}},
+                            "network": {"blocks": 1, "channels": 16, "value_hidden": 16}})
+    (run / "run.toml").write_text(dump_config(cfg))
+    wrong = build_network(ttt, NetworkConfig(blocks=1, channels=8, value_hidden=16))
+    st = tmp_path / "w.safetensors"
+    save_file({k: v.contiguous() for k, v in wrong.state_dict().items()}, st)
+    assert cli_main(["publish", str(run), str(st)]) == 2
+    assert "does not fit" in capsys.readouterr().err
+    right = build_network(ttt, NetworkConfig.tiny(), seed=4)
+    save_file({k: v.contiguous() for k, v in right.state_dict().items()}, st)
+    assert cli_main(["publish", str(run), str(st)]) == 0
+    info = SnapshotStore(run).latest()
+    assert info.version == 1 and info.parent_version is None and info.architecture["channels"] == 16
