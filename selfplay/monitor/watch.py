@@ -125,9 +125,12 @@ def render_summary(s: Summary) -> RenderableType:
     r = s.get("resignation") or {}
     if r:
         rate = r.get("false_positive_rate")
-        learn_rows.append(("resign false positives",
-                           f"{r.get('false_positives')} / {r.get('would_resign_games') if r.get('denominator') == 'would_resign_games' else r.get('disabled_games')}"
-                           + ("" if rate is None else f" = {100 * rate:.1f}%")))
+        denom = r.get("would_resign_games") if r.get("denominator") == "would_resign_games" else r.get("disabled_games")
+        if not denom:
+            text = f"no probe games yet ({fmt_num(r.get('disabled_games'))} played without resignation)"
+        else:
+            text = f"{r.get('false_positives')} / {denom}" + ("" if rate is None else f" = {100 * rate:.1f}%")
+        learn_rows.append(("resign false positives", text))
     learn = _kv_table("learning", learn_rows)
     grid = Table.grid(padding=(0, 4))
     grid.add_row(main, fresh)
