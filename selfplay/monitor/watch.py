@@ -127,7 +127,7 @@ def render_summary(s: Summary) -> RenderableType:
         rate = r.get("false_positive_rate")
         denom = r.get("would_resign_games") if r.get("denominator") == "would_resign_games" else r.get("disabled_games")
         if not denom:
-            text = f"no probe games yet ({fmt_num(r.get('disabled_games'))} played without resignation)"
+            text = f"none yet ({fmt_num(r.get('disabled_games'))} probe games)"
         else:
             text = f"{r.get('false_positives')} / {denom}" + ("" if rate is None else f" = {100 * rate:.1f}%")
         learn_rows.append(("resign false positives", text))
