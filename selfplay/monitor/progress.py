@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TaskID, TextColumn, TimeElapsedColumn
+from rich.progress import BarColumn, Progress, TaskID, TextColumn, TimeElapsedColumn
 
 from selfplay.errors import ConfigError
 from selfplay.monitor.watch import fmt_duration
@@ -67,12 +67,12 @@ class StopProgress:
         self._t0 = self.clock()
         if self.goals and self.console.is_terminal:
             self._progress = Progress(
-                TextColumn("[bold]{task.description:>9}"), BarColumn(), MofNCompleteColumn(),
+                TextColumn("[bold]{task.description:>9}"), BarColumn(), TextColumn("{task.fields[done]}"),
                 TextColumn("{task.percentage:>5.1f}%"), TextColumn("ETA {task.fields[eta]}"),
                 TimeElapsedColumn(), console=self.console, transient=False)
             for g in self.goals:
-                g.task = self._progress.add_task(g.name, total=g.total if g.name != "minutes" else g.total / 60.0,
-                                                 completed=g.done, eta="-")
+                g.task = self._progress.add_task(g.name if g.name != "minutes" else "time", total=g.total,
+                                                 completed=g.done, eta="-", done=self._done_text(g))
             self._progress.start()
         return self
 
@@ -132,14 +132,19 @@ class StopProgress:
         """True when any stop condition is met."""
         return any(self.fraction(g) >= 1.0 for g in self.goals)
 
+    def _done_text(self, g: _Goal) -> str:
+        if g.name == "minutes":
+            return f"{fmt_duration(self.elapsed())}/{fmt_duration(g.total)}"
+        return f"{int(g.done):,}/{int(g.total):,}"
+
     def line(self) -> str:
         """One plain line: each condition's progress and the run's ETA."""
         parts = []
         for g in self.goals:
             if g.name == "minutes":
-                parts.append(f"time {fmt_duration(self.elapsed())}/{fmt_duration(g.total)}")
+                parts.append(f"time {self._done_text(g)}")
             else:
-                parts.append(f"{g.name} {int(g.done):,}/{int(g.total):,} ({100 * self.fraction(g):.1f}%)")
+                parts.append(f"{g.name} {self._done_text(g)} ({100 * self.fraction(g):.1f}%)")
         eta = self.eta_seconds()
         parts.append(f"ETA {fmt_duration(eta)}")
         return " · ".join(parts)
@@ -151,8 +156,9 @@ class StopProgress:
         if self._progress is not None:
             for g in self.goals:
                 assert g.task is not None
-                done = self.elapsed() / 60.0 if g.name == "minutes" else g.done
-                self._progress.update(g.task, completed=done, eta=fmt_duration(self.goal_eta(g)))
+                done = self.elapsed() if g.name == "minutes" else g.done
+                self._progress.update(g.task, completed=min(done, g.total), eta=fmt_duration(self.goal_eta(g)),
+                                      done=self._done_text(g))
             return
         now = self.clock()
         if final or self._last_plain is None or now - self._last_plain >= self.plain_every:
