@@ -150,9 +150,3 @@ def since_start_rate_per_second(series: Sequence[CounterSeries | LargestOf], end
 def per_hour(rate_per_second: float | None) -> float | None:
     """Units per second → units per hour (None stays None)."""
     return None if rate_per_second is None else rate_per_second * 3600.0
-
-
-def resample(series: Sequence[CounterSeries], grid: Sequence[float], run_start: float,
-             window: float = WINDOW_SECONDS) -> list[float | None]:
-    """Windowed per-second rate of the summed counters at each time of ``grid`` (for plots)."""
-    return [window_rate_per_second(series, t, run_start, window) for t in grid]
