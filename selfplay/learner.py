@@ -339,7 +339,16 @@ class Learner:
 
     # ---- snapshots and checkpoints -----------------------------------------------------------
     def publish(self, extra: Mapping[str, Any] | None = None) -> int:
-        """Publish the current weights as the next snapshot, then checkpoint. Returns the version."""
+        """Publish the current weights as the next snapshot, then checkpoint. Returns the version.
+
+        Weights that are not finite (a diverged update) raise TrainingDivergedError and publish
+        nothing: the last good snapshot and checkpoint stay the newest."""
+        for name, t in self.net.state_dict().items():
+            if t.is_floating_point() and not bool(torch.isfinite(t).all()):
+                raise TrainingDivergedError(
+                    f"the weights became NaN or infinite (tensor {name}) by learner step {self.step}; "
+                    f"nothing was published. The newest good snapshot is version "
+                    f"{self.store.latest_version() or 'none'}; lower learner.learning_rate or set learner.grad_clip_norm")
         parent = self.store.latest_version() or None
         version = self.store.publish(self.net, parent_version=parent, training_steps=self.step,
                                      samples_seen=self.samples_trained_total,

@@ -6,7 +6,10 @@ call per step over its G games in flight); every finished game goes to the recor
 catalog on disk) and, once accepted there (duplicates dropped), into the in-RAM replay window.
 A *training phase* then takes every step the target reuse ratio allows (at most
 ``loop.max_steps_per_phase``); the learner publishes a snapshot every K steps and the worker
-picks up the newest at the next chance (``worker.snapshot_pickup``).
+picks up the newest (``worker.snapshot_pickup``): "between_moves" at once and at every poll
+during generation; "between_games" only at a worker step that finished a game (as the Ray
+workers do). With G games in flight the other games go on with the new weights either way;
+each position records the version that searched it.
 
 The pieces (:class:`LocalRun`'s ``generate``, ``train``, ``pickup_snapshot``) are separately
 callable, so the Ray layer spreads the same pieces out over actors.
@@ -163,7 +166,8 @@ class LocalRun:
                     self.buffer.add(rec)
                     added_positions += rec.num_positions
                 finished_games += len(accepted)
-            if between_moves and time.monotonic() - self._last_poll >= self.config.worker.snapshot_poll_seconds:
+            due = time.monotonic() - self._last_poll >= self.config.worker.snapshot_poll_seconds
+            if due and (between_moves or records):
                 self.pickup_snapshot()
         self.records.flush_if_due()
         self.positions_generated += added_positions
@@ -207,10 +211,19 @@ class LocalRun:
         self.status.worker_snapshot_version = info.version
         return True
 
-    def close(self) -> None:
-        """Publish what the learner trained since its last snapshot, flush records."""
+    def after_training(self) -> None:
+        """Hand the worker the learner's newest snapshot: at once ("between_moves"), or at the
+        worker's next step that finishes a game ("between_games")."""
+        if self.config.worker.snapshot_pickup == "between_moves":
+            self.pickup_snapshot()
+        else:
+            self._last_poll = float("-inf")
+
+    def close(self, publish_final: bool = True) -> None:
+        """Publish what the learner trained since its last snapshot (unless ``publish_final`` is
+        false, as after an error), flush records."""
         try:
-            if self.config.run.learner and self.learner.step > 0 and \
+            if publish_final and self.config.run.learner and self.learner.step > 0 and \
                     self.learner.step != getattr(self.store.latest(), "training_steps", -1):
                 self.learner.publish(extra={"phase": "final"})
         finally:
@@ -251,13 +264,15 @@ def run_local_loop(config: Any, run_dir: str | os.PathLike[str], stop: Callable[
             if rs.games:
                 games = max(1, min(games, rs.games - status.games))
             run.generate(games)
-            run.train()
-            run.pickup_snapshot()
+            if run.train():
+                run.after_training()
             status.phases += 1
             if on_phase is not None:
                 on_phase(run)
-    finally:
-        run.close()
+    except BaseException:
+        run.close(publish_final=False)  # records are flushed; no snapshot from a failed learner
+        raise
+    run.close()
     return status
 
 

@@ -184,3 +184,45 @@ def test_tictactoe_from_scratch_stops_losing_to_perfect_play(tmp_path):
     assert u_search >= 20 and u_raw >= 30  # the untrained snapshot loses many games to perfect play
     assert t_search <= 5 and t_search * 4 <= u_search
     assert t_raw <= 15 and t_raw * 3 <= u_raw
+
+
+@pytest.mark.parametrize("mode", ["between_moves", "between_games"])
+def test_snapshot_pickup_modes(tmp_path, mode):
+    cfg = tiny_config()
+    cfg = cfg.model_copy(update={"worker": cfg.worker.model_copy(update={"snapshot_pickup": mode})})
+    run = LocalRun(cfg, tmp_path / "run")
+    try:
+        v = run.store.publish(build_network(run.game, cfg.network, seed=3), parent_version=1)
+        run.after_training()
+        assert run.worker_version == (v if mode == "between_moves" else 1)
+        run.generate(1)  # a step that finishes a game is a pickup point in both modes
+        assert run.worker_version == v
+    finally:
+        run.close()
+
+
+def test_a_diverged_learner_stops_the_loop_and_keeps_the_run_consistent(tmp_path):
+    from selfplay.learner import TrainingDivergedError
+
+    run_dir = tmp_path / "run"
+    seen = {}
+
+    def poison(run):
+        if run.learner.step > 0 and "version" not in seen:
+            seen["version"] = run.store.latest_version()
+            seen["games"] = run.status.games
+            with torch.no_grad():
+                run.learner_net.policy_fc.weight.fill_(float("inf"))  # a diverged update
+
+    with pytest.raises(TrainingDivergedError, match="newest good snapshot is version"):
+        run_local_loop(tiny_config(games=200), run_dir, loop=LoopConfig(games_per_phase=16), on_phase=poison)
+    store = SnapshotStore(run_dir)
+    assert store.latest_version() == seen["version"]  # nothing published after the divergence
+    net = build_network(make_game("tictactoe"), tiny_config().network)
+    store.load_into(net)  # the newest snapshot is a good one
+    assert all(torch.isfinite(t).all() for t in net.state_dict().values())
+    cat = Catalog(run_dir / "catalog.sqlite", readonly=True)
+    try:
+        assert len(cat.game_ids()) >= seen["games"]  # finished games were flushed, not lost
+    finally:
+        cat.close()
