@@ -11,7 +11,8 @@ Measured in one run, same network, same torch thread count:
   evaluation (target >= 3);
 - the share of self-play time in rules, tree and network (and input encoding within network).
 
-Figures are medians over repeats of ``--seconds`` each; the machine is shared, so read ratios.
+Figures are medians over repeats of ``--seconds`` each; within a repeat the three measurements
+run in interleaved one-second slices. The machine may be shared, so read the ratios.
 """
 
 from __future__ import annotations
@@ -65,31 +66,49 @@ def _check(args: argparse.Namespace) -> None:
             raise ConfigError(f"--{name.replace('_', '-')}={getattr(args, name)} must be at least 1")
 
 
-def _measure(worker: SelfPlayWorker, seconds: float) -> dict[str, Any]:
-    moves0 = worker.positions_total_moves()
-    stats = worker.stats()
-    stats["_moves"] = moves0
-    ev_times = worker.evaluator.times
-    enc0, fwd0 = ev_times.encode, ev_times.forward
-    t0 = time.perf_counter()
-    while time.perf_counter() - t0 < seconds:
-        worker.step()
-    elapsed = time.perf_counter() - t0
-    after = worker.stats()
-    d = {k: after[k] - stats[k] for k in ("evals_total", "batches_total", "seconds_rules", "seconds_tree",
-                                          "seconds_network")}
-    total = max(d["seconds_rules"] + d["seconds_tree"] + d["seconds_network"], 1e-9)
-    return {
-        "evals_per_second": d["evals_total"] / elapsed,
-        "positions_per_second": (worker.positions_total_moves() - moves0) / elapsed,
-        "mean_batch": d["evals_total"] / max(d["batches_total"], 1),
-        "share_rules": d["seconds_rules"] / total,
-        "share_tree": d["seconds_tree"] / total,
-        "share_network": d["seconds_network"] / total,
-        "share_encode": (ev_times.encode - enc0) / total,
-        "share_forward": (ev_times.forward - fwd0) / total,
-        "us_per_eval_outside_forward": 1e6 * (total - (ev_times.forward - fwd0)) / max(d["evals_total"], 1),
-    }
+class _Meter:
+    """Counters of one worker summed over the time slices it ran in."""
+
+    def __init__(self, worker: SelfPlayWorker) -> None:
+        self.worker = worker
+        self.elapsed = 0.0
+        self.sums = dict.fromkeys(("evals_total", "batches_total", "seconds_rules", "seconds_tree",
+                                   "seconds_network", "moves", "encode", "forward"), 0.0)
+
+    def _snapshot(self) -> dict[str, float]:
+        st = self.worker.stats()
+        ev = self.worker.evaluator.times
+        return {**{k: float(st[k]) for k in ("evals_total", "batches_total", "seconds_rules", "seconds_tree",
+                                             "seconds_network")},
+                "moves": float(self.worker.positions_total_moves()), "encode": ev.encode, "forward": ev.forward}
+
+    def run(self, seconds: float) -> None:
+        before = self._snapshot()
+        t0 = time.perf_counter()
+        while time.perf_counter() - t0 < seconds:
+            self.worker.step()
+        self.elapsed += time.perf_counter() - t0
+        after = self._snapshot()
+        for k in self.sums:
+            self.sums[k] += after[k] - before[k]
+
+    def mean_batch(self) -> float:
+        return self.sums["evals_total"] / max(self.sums["batches_total"], 1.0)
+
+    def figures(self) -> dict[str, float]:
+        d = self.sums
+        total = max(d["seconds_rules"] + d["seconds_tree"] + d["seconds_network"], 1e-9)
+        return {
+            "evals_per_second": d["evals_total"] / self.elapsed,
+            "positions_per_second": d["moves"] / self.elapsed,
+            "mean_batch": self.mean_batch(),
+            "share_rules": d["seconds_rules"] / total,
+            "share_tree": d["seconds_tree"] / total,
+            "share_network": d["seconds_network"] / total,
+            "share_encode": d["encode"] / total,
+            "share_forward": d["forward"] / total,
+            "us_per_eval_outside_forward": 1e6 * (total - d["forward"]) / max(d["evals_total"], 1.0),
+        }
 
 
 def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
@@ -125,12 +144,24 @@ def run(args: argparse.Namespace) -> int:
                          games_in_parallel=1, worker_id="bench1", seed=args.seed)
     many.step()  # warm-up (compilation, allocator)
     one.step()
+    # Each repeat interleaves one-second slices of the three measurements (G games, the net
+    # alone, one game), so that a drifting load on a shared machine touches all three alike.
     many_runs, one_runs, bounds = [], [], []
+    slices = max(1, round(args.seconds))
+    piece = args.seconds / slices
     for _ in range(args.repeats):
-        m = _measure(many, args.seconds)
-        many_runs.append(m)
-        bounds.append(inference_bound(evaluator, tuple(game.input_shape), max(1, round(m["mean_batch"])), args.seconds / 2))
-        one_runs.append(_measure(one, args.seconds))
+        m, o = _Meter(many), _Meter(one)
+        evals_alone, seconds_alone = 0.0, 0.0
+        for _ in range(slices):
+            m.run(piece)
+            batch = max(1, round(m.mean_batch()))
+            rate = inference_bound(evaluator, tuple(game.input_shape), batch, piece / 2)
+            evals_alone += rate * piece / 2
+            seconds_alone += piece / 2
+            o.run(piece)
+        many_runs.append(m.figures())
+        one_runs.append(o.figures())
+        bounds.append(evals_alone / seconds_alone)
 
     def med(runs: list[dict[str, Any]], key: str) -> float:
         return float(statistics.median(r[key] for r in runs))
