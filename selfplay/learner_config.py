@@ -56,7 +56,7 @@ class LearnerConfig(_Section):
     """Initial learning rate (before the schedule); must be > 0."""
 
     optimizer: Literal["sgd", "adam"] = "sgd"
-    """Optimiser: SGD with (Nesterov-free) momentum as in the AlphaZero papers, or Adam."""
+    """Optimiser: SGD with momentum (as in the AlphaZero papers) or Adam."""
 
     momentum: float = Field(0.9, ge=0.0, lt=1.0)
     """SGD momentum (ignored by Adam)."""
@@ -93,7 +93,7 @@ class LearnerConfig(_Section):
     """Cosine schedule: floor of the learning rate."""
 
     grad_clip_norm: float | None = Field(None, gt=0.0)
-    """Clip the global gradient norm to this value before each step (None: no clipping)."""
+    """Clip the global gradient norm to this value before each step (unset: no clipping)."""
 
     steps_per_snapshot: int = Field(200, ge=1)
     """K: publish a snapshot (and write a checkpoint) every K optimiser steps."""
@@ -112,10 +112,11 @@ class LearnerConfig(_Section):
     ratio can no longer be held)."""
 
     torch_threads: int = Field(1, ge=1, le=256)
-    """Torch intra-op threads the learner uses."""
+    """Torch intra-op threads for the learner (set by the process that hosts it, e.g. the
+    Ray learner actor; the one-process loop shares worker.threads)."""
 
     seed: int = Field(0, ge=0)
-    """Seed of the learner's sampling and of a freshly initialised network."""
+    """Seed of the learner's own sampling (the supervised pretraining window)."""
 
     @model_validator(mode="after")
     def _check(self) -> "LearnerConfig":
