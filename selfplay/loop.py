@@ -114,7 +114,8 @@ class LocalRun:
                 self.store.publish(self.learner_net, extra={"phase": "initial"})
         self.refill_buffer()
         self.worker_net = build_network(self.game, config.network, seed=config.run.seed)
-        info = self.store.load_into(self.worker_net)
+        self.status_events: list[dict[str, Any]] = []
+        info = self._load_newest_good(self.worker_net)
         self._make_evaluator = make_evaluator
         self.worker = SelfPlayWorker(
             self.game, self._evaluator(), config.search, games_in_parallel=config.worker.games_in_parallel,
@@ -126,7 +127,8 @@ class LocalRun:
         self.learner.note_generated(self.positions_generated)
         self.status = LoopStatus(started_at=time.time(), games=self.records.totals().games,
                                  positions=self.positions_generated, learner_steps=self.learner.step,
-                                 snapshot_version=self.store.latest_version(), worker_snapshot_version=info.version)
+                                 snapshot_version=self.store.latest_version(), worker_snapshot_version=info.version,
+                                 events=self.status_events)
         self.worker_metrics = MetricsLog(self.run.metrics, "worker", f"local{session}")
 
     # ---- set-up helpers ----------------------------------------------------------------------
@@ -142,6 +144,19 @@ class LocalRun:
                 raise RunDirError(f"{path} is corrupt; it only counts sessions and may be deleted") from None
         atomic_write_bytes(path, json.dumps({"sessions": n + 1}).encode())
         return n
+
+    def _load_newest_good(self, net: torch.nn.Module) -> Any:
+        """Load the newest snapshot that passes every check; a refused one is logged as an event
+        and the next older one is tried. SnapshotError if none loads."""
+        problems = []
+        for version in reversed(self.store.versions()):
+            try:
+                return self.store.load_into(net, version)
+            except SnapshotError as exc:
+                problems.append(str(exc))
+                self.status_events.append({"t": time.time(), "event": "snapshot_refused",
+                                           "version": version, "reason": str(exc)})
+        raise SnapshotError("no snapshot of this run loads: " + ("; ".join(problems[:3]) or "none published"))
 
     def _evaluator(self) -> Any:
         return self._make_evaluator(self.worker_net, self.game, self.config.search.rollout_mix_lambda,

@@ -226,3 +226,22 @@ def test_a_diverged_learner_stops_the_loop_and_keeps_the_run_consistent(tmp_path
         assert len(cat.game_ids()) >= seen["games"]  # finished games were flushed, not lost
     finally:
         cat.close()
+
+
+def test_reopening_a_run_whose_newest_snapshot_is_corrupt_falls_back_to_the_previous(tmp_path):
+    run_dir = tmp_path / "run"
+    run_local_loop(tiny_config(games=32), run_dir, loop=LoopConfig(games_per_phase=16))
+    store = SnapshotStore(run_dir)
+    newest = store.latest_version()
+    assert newest >= 2
+    weights = run_dir / "snapshots" / f"{newest:06d}.safetensors"
+    data = bytearray(weights.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    weights.write_bytes(bytes(data))
+    run = LocalRun(tiny_config(), run_dir)
+    try:
+        assert run.worker_version == newest - 1
+        assert run.status.events[0]["event"] == "snapshot_refused" and "checksum" in run.status.events[0]["reason"]
+        run.generate(4)  # and it plays
+    finally:
+        run.close(publish_final=False)
