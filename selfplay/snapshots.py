@@ -173,6 +173,25 @@ def read_weights_file(path: str | os.PathLike[str]) -> dict[str, torch.Tensor]:
     return tensors_from_safetensors_bytes(data, repr(str(p)))
 
 
+def safetensors_metadata(path: str | os.PathLike[str]) -> dict[str, str]:
+    """The ``__metadata__`` strings of a safetensors file's header ({} if none or not safetensors).
+
+    Snapshots written here carry ``game`` and ``game_options`` (JSON) in it."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(8)
+            if len(head) < 8:
+                return {}
+            (n,) = struct.unpack("<Q", head)
+            if n > _MAX_HEADER_BYTES:
+                return {}
+            header = json.loads(f.read(n))
+    except (OSError, ValueError):
+        return {}
+    meta = header.get("__metadata__") if isinstance(header, dict) else None
+    return {str(k): str(v) for k, v in meta.items()} if isinstance(meta, dict) else {}
+
+
 def shape_mismatches(tensors: Mapping[str, torch.Tensor], expected: Mapping[str, tuple[int, ...]]) -> list[str]:
     """Human-readable differences between a state_dict and the expected name -> shape map."""
     problems: list[str] = []

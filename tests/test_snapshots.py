@@ -268,3 +268,14 @@ def test_publish_command_checks_against_run_toml_when_no_snapshot_exists(tmp_pat
     assert cli_main(["publish", str(run), str(st)]) == 0
     info = SnapshotStore(run).latest()
     assert info.version == 1 and info.parent_version is None and info.architecture["channels"] == 16
+
+
+def test_publish_command_refuses_a_snapshot_file_of_another_game(tmp_path, ttt, net, capsys):
+    run = tmp_path / "run"
+    SnapshotStore(run).publish(net)
+    other = SnapshotStore(tmp_path / "other")
+    # same shapes, other game name: only the file's own metadata can tell
+    other.publish(net.state_dict(), game="gomoku", game_options={"m": 3, "n": 3, "k": 3})
+    path = tmp_path / "other" / "snapshots" / "000001.safetensors"
+    assert cli_main(["publish", str(run), str(path)]) == 2
+    assert "gomoku" in capsys.readouterr().err

@@ -16,7 +16,7 @@ from typing import Any
 
 from selfplay.errors import SnapshotError
 from selfplay.rundir import RunDir
-from selfplay.snapshots import SnapshotStore, read_weights_file, shape_mismatches
+from selfplay.snapshots import SnapshotStore, read_weights_file, safetensors_metadata, shape_mismatches
 
 
 def reference_for_run(run: RunDir, store: SnapshotStore) -> tuple[str, dict[str, Any], dict[str, Any], dict[str, tuple[int, ...]]]:
@@ -43,6 +43,9 @@ def run_publish(run_path: str, weights_path: str, parent: int | None) -> int:
     store = SnapshotStore(run, source="publish")
     tensors = read_weights_file(weights_path)
     game, options, arch, shapes = reference_for_run(run, store)
+    meta = safetensors_metadata(weights_path)
+    if "game" in meta and meta["game"] != game:
+        raise SnapshotError(f"{weights_path} says it is for the game {meta['game']!r}, but run {run.root} plays {game!r}")
     problems = shape_mismatches(tensors, shapes)
     if problems:
         raise SnapshotError(
