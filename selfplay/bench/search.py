@@ -108,6 +108,7 @@ class _Meter:
             "share_encode": d["encode"] / total,
             "share_forward": d["forward"] / total,
             "us_per_eval_outside_forward": 1e6 * (total - d["forward"]) / max(d["evals_total"], 1.0),
+            "forward_evals_per_second": d["evals_total"] / max(d["forward"], 1e-9),
         }
 
 
@@ -195,6 +196,10 @@ def run(args: argparse.Namespace) -> int:
         "time_share_encode": med(many_runs, "share_encode"),
         "time_share_forward": med(many_runs, "share_forward"),
         "microseconds_per_eval_outside_forward": med(many_runs, "us_per_eval_outside_forward"),
+        # the evaluator's forward calls inside self-play (with masking and softmax), evals per
+        # second of forward time: compare with the inference bound to see whether the network
+        # itself ran slower inside self-play than alone
+        "selfplay_forward_evals_per_second": med(many_runs, "forward_evals_per_second"),
         "repeats": args.repeats,
         "seconds_per_measurement": args.seconds,
     }
@@ -211,5 +216,6 @@ def run(args: argparse.Namespace) -> int:
     print(f"  time shares: rules {out['time_share_rules']:.1%}  tree {out['time_share_tree']:.1%}  "
           f"network {out['time_share_network']:.1%} (encode {out['time_share_encode']:.1%}, "
           f"forward {out['time_share_forward']:.1%})")
-    print(f"  outside the forward pass: {out['microseconds_per_eval_outside_forward']:.0f} us per evaluation")
+    print(f"  outside the forward pass: {out['microseconds_per_eval_outside_forward']:.0f} us per evaluation; "
+          f"forward calls inside self-play ran at {out['selfplay_forward_evals_per_second']:.0f} evals/s")
     return 0
