@@ -36,7 +36,6 @@ from selfplay.learner_config import LoopConfig
 from selfplay.loop import LocalRun, LoopStatus, run_local_loop
 from selfplay.metrics import MetricsLog
 from selfplay.network import build_network
-from selfplay.snapshots import SnapshotStore
 
 #: training settings of each proof (fields not given take the run config's defaults)
 SETTINGS: dict[str, dict[str, Any]] = {

@@ -21,12 +21,11 @@ import json
 import os
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Callable
 
 import torch
 
-from selfplay.errors import ConfigError, RunDirError, SelfplayError, SnapshotError
+from selfplay.errors import ConfigError, RunDirError, SnapshotError
 from selfplay.games.base import Game
 from selfplay.games.registry import make_game
 from selfplay.learner import Learner

@@ -20,6 +20,7 @@ from selfplay.learner_config import LearnerConfig
 from selfplay.metrics import read_metrics
 from selfplay.network import NetworkConfig, build_network
 from selfplay.records import GameRecordBuilder
+from selfplay.replay.buffer import ReplayBuffer
 from selfplay.snapshots import SnapshotStore
 
 
@@ -127,8 +128,6 @@ def test_bad_learner_config_is_refused_with_the_field(field, value, words):
 
 
 # ---- with the real replay buffer -----------------------------------------------------------
-
-from selfplay.replay.buffer import ReplayBuffer  # noqa: E402
 
 
 def random_records(game, n_games, seed, *, expert=None):
