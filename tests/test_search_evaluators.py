@@ -73,3 +73,26 @@ def test_pure_mcts_finds_the_win_and_the_block(leaves):
         r_win, r_block = search_states(GAME, [win, block], ev, cfg, seed=1)
         assert int(np.argmax(r_win.visits)) == 2 and r_win.root_value > 0.5
         assert int(np.argmax(r_block.visits)) == 2
+
+
+class _BrokenEvaluator:
+    def __init__(self, kind):
+        self.kind = kind
+
+    def check_game(self, game):
+        return None
+
+    def evaluate(self, batch):
+        n = len(batch)
+        if self.kind == "shape":
+            return np.ones((n, 3), dtype=np.float32), np.zeros(n, dtype=np.float32)
+        return np.full((n, 9), 1 / 9, dtype=np.float32), np.full(n, np.nan, dtype=np.float32)
+
+
+def test_a_broken_evaluation_is_refused_before_it_enters_the_tree():
+    from selfplay.errors import SnapshotError
+    cfg = SearchConfig(simulations=4)
+    with pytest.raises(ConfigError, match="expected \\(1, 9\\)"):
+        search_states(GAME, [GAME.initial_state()], _BrokenEvaluator("shape"), cfg)
+    with pytest.raises(SnapshotError, match="non-finite"):
+        search_states(GAME, [GAME.initial_state()], _BrokenEvaluator("nan"), cfg)

@@ -37,6 +37,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from selfplay.errors import ConfigError, SnapshotError
 from selfplay.evaluators import Evaluator, LeafBatch
 from selfplay.games.base import Game
 from selfplay.search import gumbel as gb
@@ -405,6 +406,7 @@ class BatchedSearch:
             t0 = time.perf_counter()
             priors, values = evaluator.evaluate(batch)
             t_net = time.perf_counter() - t0
+            _check_evaluation(evaluator, priors, values, len(eval_nodes), self.A)
             self.P[nodes] = priors
             self.value[nodes] = values
             self.pending[nodes] = False
@@ -529,6 +531,17 @@ class BatchedSearch:
         sl.searching = False
         self.times.tree += time.perf_counter() - t0
         return state
+
+
+def _check_evaluation(evaluator: Evaluator, priors: np.ndarray, values: np.ndarray, n: int, A: int) -> None:
+    """Refuse an evaluation of the wrong shape or with non-finite numbers before it enters a tree."""
+    name = type(evaluator).__name__
+    if getattr(priors, "shape", None) != (n, A) or getattr(values, "shape", None) != (n,):
+        raise ConfigError(f"evaluator {name} returned priors of shape {getattr(priors, 'shape', None)} and values "
+                          f"of shape {getattr(values, 'shape', None)} for {n} leaves; expected ({n}, {A}) and ({n},)")
+    if not (np.isfinite(values).all() and np.isfinite(priors).all()):
+        raise SnapshotError(f"evaluator {name} returned non-finite priors or values (a corrupt or diverged "
+                            "network?); the search stops rather than fill its trees with them")
 
 
 def search_states(game: Game, states: Sequence[Any], evaluator: Evaluator, config: SearchConfig, *,
