@@ -28,7 +28,7 @@ import torch
 
 from selfplay.errors import ConfigError
 from selfplay.games.base import Game
-from selfplay.network import PolicyValueNet
+from selfplay.network import PolicyValueNet, fold_for_inference
 
 
 @dataclass
@@ -107,10 +107,10 @@ class NetworkEvaluator:
     ``threads`` sets ``torch.set_num_threads`` (process-wide) so that workers sharing a machine do
     not fight over cores; one thread by default. Pass ``game`` to check the fit at once.
 
-    ``channels_last`` (default on) converts the net's weights in place to torch's channels-last
-    memory format and feeds it channels-last inputs: on these CPUs the convolutions run faster
-    that way. The conversion is in place so that weights loaded later into the same net object
-    (``load_state_dict`` keeps the layout) reach this evaluator."""
+    The forward pass runs on an inference copy of the net (:func:`selfplay.network.fold_for_inference`:
+    batch norms folded into the convolutions, channels-last layout), which computes the same
+    function faster on these CPUs. Weights loaded later into ``net`` in place (for instance by
+    ``load_state_dict``) are noticed at the next call and the copy is rebuilt."""
 
     def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None,
                  channels_last: bool = True) -> None:
@@ -119,14 +119,24 @@ class NetworkEvaluator:
         if not isinstance(threads, int) or threads < 1:
             raise ConfigError(f"evaluator threads={threads!r} must be a positive integer")
         self.channels_last = bool(channels_last)
-        if self.channels_last:
-            net.to(memory_format=torch.channels_last)
-        self.net = net.eval()
+        self.net = net
         self.threads = threads
         torch.set_num_threads(threads)
         self.times = EvaluatorTimes()
+        self._tensors = list(net.parameters()) + list(net.buffers())
+        self._fingerprint = -1
+        self._inference: torch.nn.Module | None = None
         if game is not None:
             self.check_game(game)
+
+    @property
+    def inference_net(self) -> torch.nn.Module:
+        """The module the forward pass runs on, rebuilt when the source net's weights changed."""
+        fingerprint = sum(t._version for t in self._tensors)
+        if self._inference is None or fingerprint != self._fingerprint:
+            self._inference = fold_for_inference(self.net, channels_last=self.channels_last)
+            self._fingerprint = fingerprint
+        return self._inference
 
     def check_game(self, game: Game) -> None:
         problem = self.net.fits(game)
@@ -141,14 +151,13 @@ class NetworkEvaluator:
     def forward_planes(self, planes: np.ndarray, legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Network on ready-made input planes: (priors over legal moves, values)."""
         t0 = time.perf_counter()
+        module = self.inference_net
         with torch.inference_mode():
             x = self.input_tensor(planes)
-            logits, values = self.net(x)
+            logits, values = module(x)
             mask = torch.from_numpy(np.ascontiguousarray(legal, dtype=bool))
             logits = logits.masked_fill(~mask, float("-inf"))
             priors = torch.softmax(logits, dim=1)
-            # A row with no legal move (never sent by the search) would be NaN; make it zero.
-            priors = torch.nan_to_num(priors, nan=0.0)
             out = priors.numpy().astype(np.float32, copy=False), values.numpy().astype(np.float32, copy=False)
         self.times.forward += time.perf_counter() - t0
         return out

@@ -118,6 +118,67 @@ class PolicyValueNet(nn.Module):
                 f"{game.name} {game.options()}: " + "; ".join(problems))
 
 
+# ---- inference form ----------------------------------------------------------------------------
+
+def _fold(conv: nn.Conv2d, bn: nn.BatchNorm2d) -> nn.Conv2d:
+    """A convolution with bias equal to ``bn(conv(x))`` in eval mode (batch-norm folding)."""
+    std = torch.sqrt(bn.running_var + bn.eps)
+    scale = bn.weight / std
+    out = nn.Conv2d(conv.in_channels, conv.out_channels, conv.kernel_size, stride=conv.stride,
+                    padding=conv.padding, bias=True)
+    out.weight.data = (conv.weight * scale[:, None, None, None]).detach().clone()
+    bias = conv.bias if conv.bias is not None else torch.zeros_like(bn.running_mean)
+    out.bias.data = ((bias - bn.running_mean) * scale + bn.bias).detach().clone()
+    return out
+
+
+class _FoldedBlock(nn.Module):
+    def __init__(self, block: ResidualBlock) -> None:
+        super().__init__()
+        self.conv1 = _fold(block.conv1, block.bn1)
+        self.conv2 = _fold(block.conv2, block.bn2)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return torch.relu(x + self.conv2(torch.relu(self.conv1(x))))
+
+
+class InferenceNet(nn.Module):
+    """The same function as a :class:`PolicyValueNet` in eval mode, with every batch
+    normalisation folded into the convolution before it (fewer passes over memory), stored in
+    torch's channels-last layout. Built by :func:`fold_for_inference`; never trained."""
+
+    def __init__(self, net: PolicyValueNet, channels_last: bool = True) -> None:
+        super().__init__()
+        with torch.no_grad():
+            self.stem = _fold(net.stem[0], net.stem[1])
+            self.tower = nn.Sequential(*[_FoldedBlock(b) for b in net.tower])
+            self.policy_conv = _fold(net.policy_conv[0], net.policy_conv[1])
+            self.value_conv = _fold(net.value_conv[0], net.value_conv[1])
+            self.policy_fc = nn.Linear(net.policy_fc.in_features, net.policy_fc.out_features)
+            self.policy_fc.load_state_dict(net.policy_fc.state_dict())
+            self.value_fc1 = nn.Linear(net.value_fc1.in_features, net.value_fc1.out_features)
+            self.value_fc1.load_state_dict(net.value_fc1.state_dict())
+            self.value_fc2 = nn.Linear(net.value_fc2.in_features, net.value_fc2.out_features)
+            self.value_fc2.load_state_dict(net.value_fc2.state_dict())
+        self.channels_last = channels_last
+        if channels_last:
+            self.to(memory_format=torch.channels_last)
+        self.eval()
+        for p in self.parameters():
+            p.requires_grad_(False)
+
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        t = self.tower(torch.relu(self.stem(x)))
+        p = self.policy_fc(torch.relu(self.policy_conv(t)).flatten(1))
+        v = torch.relu(self.value_fc1(torch.relu(self.value_conv(t)).flatten(1)))
+        return p, torch.tanh(self.value_fc2(v)).squeeze(1)
+
+
+def fold_for_inference(net: PolicyValueNet, channels_last: bool = True) -> InferenceNet:
+    """An inference-only copy of ``net`` (eval-mode semantics) with batch norms folded."""
+    return InferenceNet(net, channels_last=channels_last)
+
+
 def build_network(game: Game, config: NetworkConfig | None = None, *, seed: int = 0) -> PolicyValueNet:
     """A freshly initialised network for ``game`` (deterministic for ``seed``; the global torch
     random state is left untouched). The net is returned in eval mode."""

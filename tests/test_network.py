@@ -94,3 +94,45 @@ def test_evaluator_threads_set_and_priors_masked():
     assert priors.sum() == pytest.approx(1.0, abs=1e-5)
     with pytest.raises(ConfigError, match="threads"):
         NetworkEvaluator(net, threads=0)
+
+
+def _randomise_batch_norms(net):
+    gen = torch.Generator().manual_seed(0)
+    for m in net.modules():
+        if isinstance(m, torch.nn.BatchNorm2d):
+            m.running_mean.copy_(torch.rand(m.num_features, generator=gen) - 0.5)
+            m.running_var.copy_(torch.rand(m.num_features, generator=gen) + 0.5)
+            m.weight.data.copy_(torch.rand(m.num_features, generator=gen) + 0.5)
+            m.bias.data.copy_(torch.rand(m.num_features, generator=gen) - 0.5)
+
+
+def test_inference_form_computes_the_same_function():
+    from selfplay.network import fold_for_inference
+    game = MNKGame(5, 5, 4)
+    net = build_network(game, NetworkConfig(blocks=2, channels=8, value_hidden=8))
+    with torch.no_grad():
+        _randomise_batch_norms(net)
+    x = torch.from_numpy(np.random.default_rng(0).random((6, *game.input_shape), dtype=np.float32))
+    with torch.inference_mode():
+        p0, v0 = net(x)
+        for cl in (True, False):
+            p1, v1 = fold_for_inference(net, channels_last=cl)(x.contiguous(
+                memory_format=torch.channels_last) if cl else x)
+            torch.testing.assert_close(p1, p0, rtol=1e-5, atol=1e-5)
+            torch.testing.assert_close(v1, v0, rtol=1e-5, atol=1e-5)
+
+
+def test_evaluator_follows_weights_loaded_in_place():
+    game = tictactoe()
+    net = build_network(game, NetworkConfig.tiny(), seed=1)
+    ev = NetworkEvaluator(net, game=game)
+    s = game.initial_state()
+    planes, legal = game.encode(s)[None], game.legal_mask(s)[None]
+    before = ev.forward_planes(planes, legal)
+    other = build_network(game, NetworkConfig.tiny(), seed=2)
+    net.load_state_dict(other.state_dict())
+    after = ev.forward_planes(planes, legal)
+    expected = NetworkEvaluator(other, game=game).forward_planes(planes, legal)
+    assert not np.allclose(before[0], after[0])
+    np.testing.assert_allclose(after[0], expected[0], rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(after[1], expected[1], rtol=1e-5, atol=1e-6)

@@ -113,11 +113,11 @@ class _Meter:
 
 
 def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
-    """Evaluations/s of the evaluator's net alone (ready input tensor, same memory format and
-    threads, inference mode) on random 0/1 planes at ``batch``."""
+    """Evaluations/s of the evaluator's net alone (its inference form, a ready input tensor in
+    the same memory format, same threads, inference mode) on random 0/1 planes at ``batch``."""
     planes = np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round()
     x = evaluator.input_tensor(planes)
-    net = evaluator.net
+    net = evaluator.inference_net
     n = 0
     with torch.inference_mode():
         for _ in range(3):
