@@ -147,22 +147,23 @@ def run(args: argparse.Namespace) -> int:
     one.step()
     # Each repeat interleaves one-second slices of the three measurements (G games, the net
     # alone, one game), so that a drifting load on a shared machine touches all three alike.
-    many_runs, one_runs, bounds = [], [], []
+    many_runs, one_runs, bounds, bounds_1 = [], [], [], []
     slices = max(1, round(args.seconds))
     piece = args.seconds / slices
     for _ in range(args.repeats):
         m, o = _Meter(many), _Meter(one)
-        evals_alone, seconds_alone = 0.0, 0.0
+        evals_alone, evals_alone_1, seconds_alone = 0.0, 0.0, 0.0
         for _ in range(slices):
             m.run(piece)
             batch = max(1, round(m.mean_batch()))
-            rate = inference_bound(evaluator, tuple(game.input_shape), batch, piece / 2)
-            evals_alone += rate * piece / 2
+            evals_alone += inference_bound(evaluator, tuple(game.input_shape), batch, piece / 2) * piece / 2
+            evals_alone_1 += inference_bound(evaluator, tuple(game.input_shape), 1, piece / 2) * piece / 2
             seconds_alone += piece / 2
             o.run(piece)
         many_runs.append(m.figures())
         one_runs.append(o.figures())
         bounds.append(evals_alone / seconds_alone)
+        bounds_1.append(evals_alone_1 / seconds_alone)
 
     def med(runs: list[dict[str, Any]], key: str) -> float:
         return float(statistics.median(r[key] for r in runs))
@@ -188,6 +189,10 @@ def run(args: argparse.Namespace) -> int:
         "efficiency": float(statistics.median(m["evals_per_second"] / b for m, b in zip(many_runs, bounds))),
         "single_game_positions_per_second": pps_one,
         "single_game_evals_per_second": med(one_runs, "evals_per_second"),
+        # the network's own gain from batching: an upper bound on batching_speedup when the
+        # single game runs its network near speed
+        "inference_bound_batch1_evals_per_second": float(statistics.median(bounds_1)),
+        "network_batch_scaling": float(statistics.median(b / max(b1, 1e-9) for b, b1 in zip(bounds, bounds_1))),
         "batching_speedup": float(statistics.median(m["positions_per_second"] / max(o["positions_per_second"], 1e-9)
                                                     for m, o in zip(many_runs, one_runs))),
         "time_share_rules": med(many_runs, "share_rules"),
@@ -213,6 +218,8 @@ def run(args: argparse.Namespace) -> int:
     print(f"  efficiency:                        {out['efficiency']:10.2f}   (target >= 0.8)")
     print(f"  one game, batch 1:                 {out['single_game_evals_per_second']:10.0f} evals/s  {pps_one:8.1f} positions/s")
     print(f"  batching speedup:                  {out['batching_speedup']:10.2f}   (target >= 3)")
+    print(f"  the net alone at batch 1:          {out['inference_bound_batch1_evals_per_second']:10.0f} evals/s "
+          f"(its own batching gain: {out['network_batch_scaling']:.2f}x)")
     print(f"  time shares: rules {out['time_share_rules']:.1%}  tree {out['time_share_tree']:.1%}  "
           f"network {out['time_share_network']:.1%} (encode {out['time_share_encode']:.1%}, "
           f"forward {out['time_share_forward']:.1%})")
