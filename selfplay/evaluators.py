@@ -28,7 +28,11 @@ import torch
 
 from selfplay.errors import ConfigError
 from selfplay.games.base import Game
-from selfplay.network import PolicyValueNet, fold_for_inference
+from selfplay.network import PolicyValueNet, cpu_has_bf16_matrix_units, fold_for_inference
+
+#: forward-pass precisions of :class:`NetworkEvaluator`; "auto" = bfloat16 where the CPU has
+#: bfloat16 matrix units (AMX), float32 elsewhere
+PRECISIONS = ("auto", "float32", "bfloat16")
 
 
 @dataclass
@@ -110,14 +114,26 @@ class NetworkEvaluator:
     The forward pass runs on an inference copy of the net (:func:`selfplay.network.fold_for_inference`:
     batch norms folded into the convolutions, channels-last layout), which computes the same
     function faster on these CPUs. Weights loaded later into ``net`` in place (for instance by
-    ``load_state_dict``) are noticed at the next call and the copy is rebuilt."""
+    ``load_state_dict``) are noticed at the next call and the copy is rebuilt.
+
+    ``precision``: "float32", "bfloat16", or "auto" (default) = bfloat16 on CPUs with bfloat16
+    matrix units (AMX: several times the float32 speed at batch 16 and more), float32 elsewhere.
+    Priors and values come back as float32 either way; bfloat16 keeps about 3 significant
+    digits, which moves priors and values by well under a percent (reduced-precision inference
+    is common practice for search networks)."""
 
     def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None,
-                 channels_last: bool = True) -> None:
+                 channels_last: bool = True, precision: str = "auto") -> None:
         if not isinstance(net, PolicyValueNet):
             raise ConfigError(f"NetworkEvaluator needs a PolicyValueNet, got {type(net).__name__}")
         if not isinstance(threads, int) or threads < 1:
             raise ConfigError(f"evaluator threads={threads!r} must be a positive integer")
+        if precision not in PRECISIONS:
+            raise ConfigError(f"evaluator precision={precision!r} must be one of {', '.join(PRECISIONS)}")
+        if precision == "auto":
+            precision = "bfloat16" if cpu_has_bf16_matrix_units() else "float32"
+        self.precision = precision
+        self.dtype = torch.bfloat16 if precision == "bfloat16" else torch.float32
         self.channels_last = bool(channels_last)
         self.net = net
         self.threads = threads
@@ -134,7 +150,7 @@ class NetworkEvaluator:
         """The module the forward pass runs on, rebuilt when the source net's weights changed."""
         fingerprint = sum(t._version for t in self._tensors)
         if self._inference is None or fingerprint != self._fingerprint:
-            self._inference = fold_for_inference(self.net, channels_last=self.channels_last)
+            self._inference = fold_for_inference(self.net, channels_last=self.channels_last, dtype=self.dtype)
             self._fingerprint = fingerprint
         return self._inference
 
@@ -146,6 +162,8 @@ class NetworkEvaluator:
     def input_tensor(self, planes: np.ndarray) -> torch.Tensor:
         """The tensor the net is fed for float32 planes (N, C, H, W), in its memory format."""
         x = torch.from_numpy(np.ascontiguousarray(planes, dtype=np.float32))
+        if self.dtype != torch.float32:
+            x = x.to(self.dtype)
         return x.contiguous(memory_format=torch.channels_last) if self.channels_last else x
 
     def forward_planes(self, planes: np.ndarray, legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -155,6 +173,7 @@ class NetworkEvaluator:
         with torch.inference_mode():
             x = self.input_tensor(planes)
             logits, values = module(x)
+            logits, values = logits.float(), values.float()
             mask = torch.from_numpy(np.ascontiguousarray(legal, dtype=bool))
             logits = logits.masked_fill(~mask, float("-inf"))
             priors = torch.softmax(logits, dim=1)

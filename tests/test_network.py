@@ -136,3 +136,21 @@ def test_evaluator_follows_weights_loaded_in_place():
     assert not np.allclose(before[0], after[0])
     np.testing.assert_allclose(after[0], expected[0], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(after[1], expected[1], rtol=1e-5, atol=1e-6)
+
+
+def test_bfloat16_forward_is_close_to_float32_and_bad_precision_is_refused():
+    game = MNKGame(5, 5, 4)
+    net = build_network(game, NetworkConfig(blocks=2, channels=16, value_hidden=16), seed=3)
+    with torch.no_grad():
+        _randomise_batch_norms(net)
+    rng = np.random.default_rng(1)
+    planes = rng.random((8, *game.input_shape), dtype=np.float32).round()
+    legal = rng.random((8, game.num_actions)) < 0.7
+    p32, v32 = NetworkEvaluator(net, precision="float32").forward_planes(planes, legal)
+    p16, v16 = NetworkEvaluator(net, precision="bfloat16").forward_planes(planes, legal)
+    assert p16.dtype == np.float32 and v16.dtype == np.float32
+    np.testing.assert_allclose(p16, p32, atol=2e-2)   # bfloat16 keeps 8 bits of mantissa
+    np.testing.assert_allclose(v16, v32, atol=3e-2)
+    assert np.all(p16[~legal] == 0)
+    with pytest.raises(ConfigError, match="precision"):
+        NetworkEvaluator(net, precision="float8")
