@@ -111,6 +111,21 @@ class SnapshotActor:
                 "refused": dict(self.refused), "node_id": ray.get_runtime_context().get_node_id()}
 
 
+class SnapshotClient:
+    """The snapshot actor as the other actors use it. (A bare actor handle given to an actor's
+    constructor travels through the object store, which Ray warns may break restarts; this
+    wrapper travels inline.)"""
+
+    def __init__(self, handle: Any) -> None:
+        self.handle = handle
+
+    def current(self, known_version: int = -1) -> tuple[int, list[Any]]:
+        return ray.get(self.handle.current.remote(known_version))
+
+    def refresh(self) -> int:
+        return ray.get(self.handle.refresh.remote())
+
+
 # ---- the buffer -------------------------------------------------------------------------------------
 
 
@@ -301,7 +316,8 @@ class LearnerActor:
     """The learner on the head node. On (re)start it resumes from RUN/learner/checkpoint.* or the
     newest snapshot (version 1, the initial weights, is published by the SnapshotActor)."""
 
-    def __init__(self, run_root: str, config_data: dict[str, Any], buffer: BufferClient, snapshots: Any) -> None:
+    def __init__(self, run_root: str, config_data: dict[str, Any], buffer: BufferClient,
+                 snapshots: SnapshotClient) -> None:
         import torch
 
         from selfplay.learner import Learner
@@ -321,7 +337,7 @@ class LearnerActor:
         self.resumed_from = self.learner.resume()  # checkpoint, else the newest snapshot
         if store.latest_version() == 0:
             self.learner.publish()
-        ray.get(snapshots.refresh.remote())
+        snapshots.refresh()
 
     def train(self, seconds: float) -> dict[str, Any]:
         """Train for up to ``seconds`` as far as the reuse ratio allows; return counters."""
@@ -334,7 +350,7 @@ class LearnerActor:
             steps += took
             if self.learner.snapshot_version != version:
                 version = self.learner.snapshot_version
-                ray.get(self.snapshots.refresh.remote())
+                self.snapshots.refresh()
             if took == 0:
                 time.sleep(min(0.25, max(0.0, deadline - time.monotonic())))
         return self.status(steps)
@@ -365,7 +381,7 @@ class SelfPlayActor:
     seed derives from the run seed, the slot and the tag."""
 
     def __init__(self, config_data: dict[str, Any], slot: int, session: str, buffer: BufferClient,
-                 snapshots: Any) -> None:
+                 snapshots: SnapshotClient) -> None:
         import torch
 
         from selfplay.evaluators import make_evaluator
@@ -404,7 +420,7 @@ class SelfPlayActor:
         import torch
 
         try:
-            version, refs = ray.get(self.snapshots.current.remote(self.version))
+            version, refs = self.snapshots.current(self.version)
             if not refs or version <= self.version:
                 return False
             arrays = ray.get(refs[0])
@@ -475,5 +491,5 @@ def startup_error(what: str, exc: BaseException) -> SelfplayError:
     return SelfplayError(f"{what} could not start: {found or text.splitlines()[-1] if text else type(exc).__name__}")
 
 
-__all__ = ["BufferActor", "BufferClient", "LearnerActor", "SelfPlayActor", "SnapshotActor", "actor_failure",
+__all__ = ["BufferActor", "BufferClient", "SnapshotClient", "LearnerActor", "SelfPlayActor", "SnapshotActor", "actor_failure",
            "derive_seed", "merge_buffer_stats", "refill_window", "startup_error"]

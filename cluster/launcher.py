@@ -316,7 +316,7 @@ class Launcher:
 
     # -- actors -------------------------------------------------------------------------------
     def start(self) -> None:
-        from cluster.actors import BufferActor, LearnerActor, SnapshotActor
+        from cluster.actors import BufferActor, LearnerActor, SnapshotActor, SnapshotClient
         from cluster.placement import head_options
 
         from cluster.actors import BufferClient
@@ -333,8 +333,8 @@ class Launcher:
             "the snapshot store", lambda: self._get(self.snapshots.refresh.remote(), timeout=600))
         if self.config.run.learner:
             self.learner = LearnerActor.options(max_restarts=-1, max_task_retries=0,
-                                                **head_options()).remote(root, self.config_data,
-                                                                         self.buffer, self.snapshots)
+                                                **head_options()).remote(root, self.config_data, self.buffer,
+                                                                         SnapshotClient(self.snapshots))
             self.learner_status = self._started("the learner", lambda: self._get(self.learner.status.remote(), 600))
         self.started_at = time.time()
         self.initial_games = int(self.buffer_stats["games_total"])
@@ -380,7 +380,7 @@ class Launcher:
 
     def _top_up(self) -> int:
         """Start workers until the target count (one per CPU, or run.workers) is reached."""
-        from cluster.actors import SelfPlayActor
+        from cluster.actors import SelfPlayActor, SnapshotClient
         from cluster.placement import worker_options
 
         want = self.target_workers()
@@ -389,7 +389,7 @@ class Launcher:
             slot = len(self.slots)
             handle = SelfPlayActor.options(max_restarts=-1, max_task_retries=1,
                                            **worker_options(self.config.worker.threads)).remote(
-                self.config_data, slot, self.session_tag, self.buffer, self.snapshots)
+                self.config_data, slot, self.session_tag, self.buffer, SnapshotClient(self.snapshots))
             self.slots[slot] = WorkerSlot(slot, handle)
             self._submit_worker(slot)
             added += 1
