@@ -108,7 +108,7 @@ def _overrides(args: argparse.Namespace) -> dict[str, Any]:
         if name == "minutes":
             if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
                 raise ConfigError(f"--minutes {value!r} must be a positive number")
-        elif value < (1 if name == "workers" else 1):
+        elif value < 1:
             raise ConfigError(f"--{name} {value!r} must be a positive whole number")
         out[f"run.{name}"] = value
     if getattr(args, "no_learner", False):
@@ -310,6 +310,7 @@ class Launcher:
         self.events: list[str] = []
         self.started_at = 0.0
         self.worker_metrics: dict[int, MetricsLog] = {}
+        self.failing: dict[str, int] = {}
         self.initial_games = 0
         self.initial_positions = 0
         self._finished = False
@@ -438,32 +439,22 @@ class Launcher:
     def _poll(self, timeout: float) -> None:
         import ray
 
-        from cluster.actors import actor_failure
-
         if not self.inflight:
             time.sleep(timeout)
             return
         ready, _ = ray.wait(list(self.inflight), num_returns=len(self.inflight), timeout=timeout)
         for ref in ready:
             kind, slot = self.inflight.pop(ref)
+            who = f"worker {slot}" if kind == "worker" else "learner"
             try:
                 result = ray.get(ref)
-            except Exception as exc:  # noqa: BLE001 - an actor died; Ray restarts it
-                if getattr(exc, "actor_init_failed", False):
-                    from cluster.actors import startup_error
-
-                    raise startup_error(f"{kind}{' ' + str(slot) if kind == 'worker' else ''}", exc) from None
-                if not actor_failure(exc) and not isinstance(exc, ray.exceptions.RayTaskError):
-                    raise
-                if isinstance(exc, ray.exceptions.RayTaskError) and not actor_failure(exc):
-                    cause = getattr(exc, "cause", None)
-                    if isinstance(cause, SelfplayError):
-                        raise cause from None
-                    self.event(f"{kind} {slot} failed: {str(exc).splitlines()[0] if str(exc) else exc!r}")
-                else:
-                    self.event(f"{kind}{' ' + str(slot) if kind == 'worker' else ''} lost "
-                               f"({type(exc).__name__}); Ray restarts it, its call is resubmitted")
+            except Exception as exc:  # noqa: BLE001 - sorted out below
                 result = None
+                self._on_failure(who, exc)
+            else:
+                if who in self.failing:
+                    self.event(f"{who} is back")
+                self.failing.pop(who, None)
             if kind == "worker":
                 if result is not None:
                     self._on_worker(slot, result)
@@ -474,6 +465,35 @@ class Launcher:
                     self.learner_status = result
                 if not self.stopping:
                     self._submit_learner()
+
+    #: a component whose calls fail this many times in a row, for another reason than its
+    #: actor dying, stops the run (a bug or a bad input would otherwise repeat for ever)
+    MAX_CONSECUTIVE_ERRORS = 5
+
+    def _on_failure(self, who: str, exc: BaseException) -> None:
+        """An actor died (Ray restarts it: carry on, say so once) or its call raised."""
+        import ray
+
+        from cluster.actors import actor_failure, startup_error
+
+        if getattr(exc, "actor_init_failed", False):
+            raise startup_error(who, exc) from None
+        if actor_failure(exc):
+            if who not in self.failing:
+                self.event(f"{who} lost ({type(exc).__name__}); Ray restarts it and its call is resubmitted")
+            self.failing[who] = self.failing.get(who, 0)
+            return
+        if not isinstance(exc, ray.exceptions.RayTaskError):
+            raise exc
+        cause = getattr(exc, "cause", None)
+        if isinstance(cause, SelfplayError):
+            raise SelfplayError(f"{who}: {cause}") from None
+        first = str(cause if cause is not None else exc).strip().splitlines()
+        self.failing[who] = self.failing.get(who, 0) + 1
+        self.event(f"{who} failed: {first[-1] if first else type(exc).__name__}")
+        if self.failing[who] >= self.MAX_CONSECUTIVE_ERRORS:
+            raise SelfplayError(f"{who} failed {self.failing[who]} times in a row; last error: "
+                                f"{first[-1] if first else type(exc).__name__}") from None
 
     def _refresh_counts(self) -> None:
         import ray
