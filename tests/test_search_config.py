@@ -71,3 +71,25 @@ def test_default_alpha_is_inversely_proportional_to_legal_moves():
 def test_temperature_schedule():
     cfg = SearchConfig(temperature=1.0, temperature_moves=3, final_temperature=0.0)
     assert [cfg.temperature_at(i) for i in range(5)] == [1.0, 1.0, 1.0, 0.0, 0.0]
+
+
+def test_precomputed_q_selection_matches_the_formula():
+    # AlphaGo Zero's PUCT written out (selfplay.search.puct.puct_select) against the tree's fast form
+    import numpy as np
+
+    from selfplay.search.puct import puct_select, puct_select_q
+    rng = np.random.default_rng(0)
+    for _ in range(50):
+        k, A = 7, 10
+        legal = rng.random((k, A)) < 0.7
+        legal[:, 0] = True
+        P = np.where(legal, rng.random((k, A)), 0).astype(np.float32)
+        P /= P.sum(axis=1, keepdims=True)
+        N = np.where(legal, rng.integers(0, 4, (k, A)), 0).astype(np.float32)
+        W = (N * rng.uniform(-1, 1, (k, A))).astype(np.float32)
+        v = rng.uniform(-1, 1, k).astype(np.float32)
+        fpu = 0.2
+        Q = np.where(N > 0, W / np.maximum(N, 1), (v - fpu)[:, None])
+        Q = np.where(legal, Q, -np.inf).astype(np.float32)
+        np.testing.assert_array_equal(puct_select(P, N, W, legal, v, 1.3, fpu),
+                                      puct_select_q(P, N, Q, N.sum(axis=1), 1.3))

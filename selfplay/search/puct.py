@@ -33,6 +33,14 @@ def puct_select(P: np.ndarray, N: np.ndarray, W: np.ndarray, legal: np.ndarray, 
     return score.argmax(axis=1)
 
 
+def puct_select_q(P: np.ndarray, N: np.ndarray, Q: np.ndarray, visits: np.ndarray, c_puct: float) -> np.ndarray:
+    """The same choice as :func:`puct_select` from precomputed rows: ``Q`` (k, A) holding the
+    mean value where visited, the first-play-urgency value where not and -inf where illegal;
+    ``visits`` (k,) the nodes' total visit counts. Returns int64 (k,)."""
+    scale = c_puct * np.sqrt(np.maximum(visits, 1.0))
+    return (Q + P * (scale[:, None] / (1.0 + N))).argmax(axis=1)
+
+
 def add_dirichlet_noise(priors: np.ndarray, legal: np.ndarray, epsilon: float, alpha: float,
                         rng: np.random.Generator) -> np.ndarray:
     """Root priors ``(1 - eps) P + eps * eta`` with ``eta ~ Dir(alpha)`` over the legal moves

@@ -42,7 +42,7 @@ from selfplay.evaluators import Evaluator, LeafBatch
 from selfplay.games.base import Game
 from selfplay.search import gumbel as gb
 from selfplay.search.config import SearchConfig
-from selfplay.search.puct import add_dirichlet_noise, puct_select
+from selfplay.search.puct import add_dirichlet_noise, puct_select_q
 
 
 @dataclass
@@ -130,6 +130,10 @@ class BatchedSearch:
         self.P = np.zeros((total, A), dtype=np.float32)
         self.N = np.zeros((total, A), dtype=np.float32)
         self.W = np.zeros((total, A), dtype=np.float32)
+        # Q = W / N where visited; the first-play-urgency value where not; -inf where illegal
+        # (kept up to date at evaluation and backup so that PUCT selection needs no division)
+        self.Q = np.zeros((total, A), dtype=np.float32)
+        self.visits = np.zeros(total, dtype=np.float32)  # sum over the node's edges of N
         self.legal = np.zeros((total, A), dtype=bool)
         self.child = np.full((total, A), -1, dtype=np.int32)
         self.to_play = np.zeros(total, dtype=np.int8)
@@ -139,6 +143,7 @@ class BatchedSearch:
         self.states: list[Any] = [None] * total
         self._Nf = self.N.reshape(-1)
         self._Wf = self.W.reshape(-1)
+        self._Qf = self.Q.reshape(-1)
         self.slots = [_Slot(base=s * C) for s in range(slots)]
         self.times = SearchTimes()
         self._is_gumbel = config.algorithm == "gumbel"
@@ -167,6 +172,7 @@ class BatchedSearch:
     def _clear_rows(self, nodes: np.ndarray) -> None:
         self.N[nodes] = 0.0
         self.W[nodes] = 0.0
+        self.visits[nodes] = 0.0
         self.P[nodes] = 0.0
         self.child[nodes] = -1
         self.legal[nodes] = False
@@ -274,8 +280,7 @@ class BatchedSearch:
         if self._is_gumbel:
             return gb.gumbel_nonroot_select(self.P[ids], self.N[ids], self.W[ids], self.legal[ids],
                                             self.value[ids], cfg.gumbel_c_visit, cfg.gumbel_c_scale)
-        return puct_select(self.P[ids], self.N[ids], self.W[ids], self.legal[ids], self.value[ids],
-                           cfg.c_puct, cfg.fpu_reduction)
+        return puct_select_q(self.P[ids], self.N[ids], self.Q[ids], self.visits[ids], cfg.c_puct)
 
     def searching_slots(self) -> list[int]:
         return [s for s, sl in enumerate(self.slots) if sl.searching]
@@ -394,6 +399,8 @@ class BatchedSearch:
                 flat = nodes_cat * self.A + acts_cat
                 self._Nf[flat] += self._vl
                 self._Wf[flat] -= self._vl
+                self._Qf[flat] = self._Wf[flat] / self._Nf[flat]
+                self.visits[nodes_cat] += self._vl
             path_leaves.append(leaf)
             n_paths += k
 
@@ -409,6 +416,8 @@ class BatchedSearch:
             _check_evaluation(evaluator, priors, values, len(eval_nodes), self.A)
             self.P[nodes] = priors
             self.value[nodes] = values
+            self.Q[nodes] = np.where(self.legal[nodes], (values - self.config.fpu_reduction)[:, None],
+                                     -np.inf).astype(np.float32)
             self.pending[nodes] = False
             self.times.evals += len(eval_nodes)
             self.times.batches += 1
@@ -425,6 +434,8 @@ class BatchedSearch:
             flat = e_node * self.A + e_act
             np.add.at(self._Nf, flat, 1.0 - self._vl)
             np.add.at(self._Wf, flat, v + self._vl)
+            np.add.at(self.visits, e_node, 1.0 - self._vl)
+            self._Qf[flat] = self._Wf[flat] / self._Nf[flat]
 
         finished: list[int] = []
         for s in root_evals:
@@ -517,10 +528,10 @@ class BatchedSearch:
         remap[keep - base] = dst
         ch = self.child[keep]
         ch = np.where(ch >= 0, remap[np.maximum(ch, base) - base], -1).astype(np.int32)
-        for arr in (self.P, self.N, self.W, self.legal):
+        for arr in (self.P, self.N, self.W, self.Q, self.legal):
             arr[dst] = arr[keep]
         self.child[dst] = ch
-        for arr in (self.to_play, self.terminal, self.value, self.pending):
+        for arr in (self.to_play, self.terminal, self.value, self.pending, self.visits):
             arr[dst] = arr[keep]
         kept_states = [self.states[i] for i in keep.tolist()]
         old = sl.count
