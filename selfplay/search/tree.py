@@ -371,14 +371,14 @@ class BatchedSearch:
                 acts = np.concatenate(new_act)
                 created = np.empty(ps.size, dtype=np.int64)
                 masks: list[tuple[int, np.ndarray]] = []
-                for j in range(ps.size):
-                    s = batch_slots[ps[j]]
+                states = self.states
+                for j, (p_idx, par, act) in enumerate(zip(ps.tolist(), pars.tolist(), acts.tolist())):
+                    s = batch_slots[p_idx]
                     sl = slots[s]
                     node = sl.base + sl.count
                     sl.count += 1
                     created[j] = node
-                    par = int(pars[j])
-                    st = game.play(self.states[par], int(acts[j]))
+                    st = game.play(states[par], act)
                     mask = self._describe_state(node, st)
                     if mask is not None:
                         masks.append((node, mask))
