@@ -139,7 +139,11 @@ class NetworkEvaluator:
         self.threads = threads
         torch.set_num_threads(threads)
         self.times = EvaluatorTimes()
-        self._tensors = list(net.parameters()) + list(net.buffers())
+        # tensors whose version counters tell that weights were replaced in place: the first
+        # and last parameter and the first batch-norm statistic (load_state_dict and optimizer
+        # steps touch them all; checking three keeps the per-call cost to a few microseconds)
+        params, buffers = list(net.parameters()), list(net.buffers())
+        self._tensors = [params[0], params[-1]] + buffers[:1]
         self._fingerprint = -1
         self._inference: torch.nn.Module | None = None
         if game is not None:
