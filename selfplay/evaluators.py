@@ -33,6 +33,9 @@ from selfplay.network import PolicyValueNet, cpu_has_bf16_matrix_units, fold_for
 #: forward-pass precisions of :class:`NetworkEvaluator`; "auto" = bfloat16 where the CPU has
 #: bfloat16 matrix units (AMX), float32 elsewhere
 PRECISIONS = ("auto", "float32", "bfloat16")
+#: "auto" takes bfloat16 only for towers at least this wide: measured here, narrower nets run
+#: faster in float32 (the conversions cost more than the matrix units save)
+AUTO_BF16_MIN_CHANNELS = 32
 
 
 @dataclass
@@ -117,7 +120,8 @@ class NetworkEvaluator:
     ``load_state_dict``) are noticed at the next call and the copy is rebuilt.
 
     ``precision``: "float32", "bfloat16", or "auto" (default) = bfloat16 on CPUs with bfloat16
-    matrix units (AMX: several times the float32 speed at batch 16 and more), float32 elsewhere.
+    matrix units (AMX: several times the float32 speed at batch 16 and more) for towers of at
+    least 32 channels, float32 otherwise.
     Priors and values come back as float32 either way; bfloat16 keeps about 3 significant
     digits, which moves priors and values by well under a percent (reduced-precision inference
     is common practice for search networks)."""
@@ -131,7 +135,8 @@ class NetworkEvaluator:
         if precision not in PRECISIONS:
             raise ConfigError(f"evaluator precision={precision!r} must be one of {', '.join(PRECISIONS)}")
         if precision == "auto":
-            precision = "bfloat16" if cpu_has_bf16_matrix_units() else "float32"
+            wide = net.config.channels >= AUTO_BF16_MIN_CHANNELS
+            precision = "bfloat16" if wide and cpu_has_bf16_matrix_units() else "float32"
         self.precision = precision
         self.dtype = torch.bfloat16 if precision == "bfloat16" else torch.float32
         self.channels_last = bool(channels_last)
