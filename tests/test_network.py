@@ -154,3 +154,11 @@ def test_bfloat16_forward_is_close_to_float32_and_bad_precision_is_refused():
     assert np.all(p16[~legal] == 0)
     with pytest.raises(ConfigError, match="precision"):
         NetworkEvaluator(net, precision="float8")
+
+
+def test_auto_precision_rule():
+    from selfplay.network import cpu_has_bf16_matrix_units
+    game = tictactoe()
+    assert NetworkEvaluator(build_network(game, NetworkConfig.tiny())).precision == "float32"
+    wide = NetworkEvaluator(build_network(game, NetworkConfig(blocks=1, channels=32)))
+    assert wide.precision == ("bfloat16" if cpu_has_bf16_matrix_units() else "float32")
