@@ -55,6 +55,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--algorithm", default="puct", choices=["puct", "gumbel"], help="root search (default puct)")
     parser.add_argument("--threads", type=int, default=1, help="torch threads (default 1)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the worker (default 0)")
+    parser.add_argument("--precision", default="auto", choices=["auto", "float32", "bfloat16"],
+                        help="forward-pass precision (default auto: bfloat16 where the CPU has matrix units)")
 
 
 def _check(args: argparse.Namespace) -> None:
@@ -137,11 +139,12 @@ def run(args: argparse.Namespace) -> int:
     net = build_network(game, net_cfg, seed=args.seed)
     search = SearchConfig(algorithm=args.algorithm, simulations=args.simulations,
                           leaves_per_game=args.leaves_per_game, temperature_moves=10_000)
-    evaluator = NetworkEvaluator(net, threads=args.threads, game=game)
+    evaluator = NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision)
     many = SelfPlayWorker(game, evaluator, search, games_in_parallel=args.games_in_parallel,
                           worker_id="bench", seed=args.seed)
     single_search = search.model_copy(update={"leaves_per_game": 1})
-    one = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game), single_search,
+    one = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision),
+                         single_search,
                          games_in_parallel=1, worker_id="bench1", seed=args.seed)
     many.step()  # warm-up (compilation, allocator)
     one.step()
@@ -176,6 +179,7 @@ def run(args: argparse.Namespace) -> int:
         "game": args.game,
         "network": f"{net_cfg.blocks}x{net_cfg.channels}",
         "threads": args.threads,
+        "precision": evaluator.precision,
         "algorithm": args.algorithm,
         "simulations": args.simulations,
         "games_in_parallel": args.games_in_parallel,
@@ -211,7 +215,7 @@ def run(args: argparse.Namespace) -> int:
     if getattr(args, "json", False):
         print(json.dumps(out))
         return 0
-    print(f"search benchmark: {out['game']}, net {out['network']}, {args.threads} thread(s), {args.algorithm}, "
+    print(f"search benchmark: {out['game']}, net {out['network']} ({out['precision']}), {args.threads} thread(s), {args.algorithm}, "
           f"{args.simulations} simulations, G={args.games_in_parallel}, leaves/game={args.leaves_per_game}")
     print(f"  inference bound (batch {out['mean_batch_size']:.1f}):  {bound:10.0f} evals/s")
     print(f"  self-play:                         {evals:10.0f} evals/s  {pps:8.1f} positions/s")
