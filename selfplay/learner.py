@@ -389,9 +389,10 @@ class Learner:
         """Continue from RUN/learner/checkpoint.* if present (weights, optimiser state, counters);
         else from the newest snapshot's weights and counters; else start fresh.
 
-        Returns "checkpoint", "snapshot" or "fresh". A checkpoint older than the newest snapshot
-        is still used for the optimiser state, with the snapshot's weights (the snapshot is what
-        workers play, and it was written after the checkpoint only if the process died between)."""
+        Returns "checkpoint", "snapshot" or "fresh". The checkpoint is written right after each
+        of the learner's own snapshots, so it is the learner's exact state at its newest one;
+        snapshots published meanwhile by someone else (``selfplay publish``) are not adopted by
+        the learner: its next snapshot supersedes them."""
         meta_path = self.checkpoint_dir / "checkpoint.json"
         if meta_path.exists():
             self._load_checkpoint(meta_path)
