@@ -170,10 +170,13 @@ class NetworkEvaluator:
 
     def input_tensor(self, planes: np.ndarray) -> torch.Tensor:
         """The tensor the net is fed for float32 planes (N, C, H, W), in its memory format."""
-        x = torch.from_numpy(np.ascontiguousarray(planes, dtype=np.float32))
-        if self.dtype != torch.float32:
-            x = x.to(self.dtype)
-        return x.contiguous(memory_format=torch.channels_last) if self.channels_last else x
+        planes = np.asarray(planes, dtype=np.float32)
+        if self.channels_last:
+            # lay the planes out channels-last in numpy, then view them as NCHW: one copy
+            x = torch.from_numpy(np.ascontiguousarray(planes.transpose(0, 2, 3, 1))).permute(0, 3, 1, 2)
+        else:
+            x = torch.from_numpy(np.ascontiguousarray(planes))
+        return x.to(self.dtype) if self.dtype != torch.float32 else x
 
     def forward_planes(self, planes: np.ndarray, legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Network on ready-made input planes: (priors over legal moves, values)."""
