@@ -66,17 +66,15 @@ class SnapshotActor:
         self._ref: ray.ObjectRef | None = None
         self.refused: dict[int, str] = {}
         self.puts = 0
-        if self.store.latest_version() == 0:
-            self._publish_initial(config)
-        self.refresh()
-
-    def _publish_initial(self, config: RunConfig) -> None:
-        """Version 1: the initial weights every worker and the learner start from."""
         from selfplay.network import build_network
 
         game = make_game(config.game.name, **config.game.options)
         net = build_network(game, config.network, seed=derive_seed(config.run.seed, "network"))
-        self.store.publish(net, extra={"phase": "initial"})
+        # every worker's network has these tensors: a snapshot that does not fit is refused here, once
+        self.expected_shapes = {k: tuple(v.shape) for k, v in net.state_dict().items()}
+        if self.store.latest_version() == 0:
+            self.store.publish(net, extra={"phase": "initial"})  # version 1: the initial weights
+        self.refresh()
 
     def refresh(self) -> int:
         """Adopt the newest snapshot on disk if it is newer than ours; return the current version."""
@@ -86,7 +84,8 @@ class SnapshotActor:
             if version in self.refused:
                 continue
             try:
-                tensors, info = self.store.load(version, game=self.game_name, game_options=self.game_options)
+                tensors, info = self.store.load(version, game=self.game_name, game_options=self.game_options,
+                                                expected_shapes=self.expected_shapes)
             except SnapshotError as exc:
                 self.refused[version] = str(exc)
                 continue

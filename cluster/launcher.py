@@ -223,8 +223,9 @@ def execute(plan: RunPlan, *, out: Callable[[str], None] | None = None) -> int:
             with _StopSignals() as signals:
                 launcher.start()
                 launcher.loop(stop_requested=signals.requested)
+                launcher.finish()  # inside: a second signal cuts the wait short, the flush still runs
         finally:
-            launcher.finish()
+            launcher.finish()  # after an error: flush what there is (a no-op after a clean stop)
             if server is not None:
                 server.close()
     finally:
@@ -585,19 +586,27 @@ class Launcher:
         return reason
 
     def finish(self, wait_seconds: float | None = None) -> dict[str, Any]:
-        """Collect the calls in flight (their finished games reach the buffer), flush, checkpoint."""
-        import ray
-
+        """Collect the calls in flight (their finished games reach the buffer), then flush every
+        buffer shard and checkpoint the learner. Interrupted while waiting (a second Ctrl-C), it
+        still flushes what the buffer holds."""
         if self._finished:
             return self.buffer_stats
-        self._finished = True
         self.stopping = True
-        limit = wait_seconds if wait_seconds is not None else 3 * self.config.worker.report_seconds + 30
-        deadline = time.monotonic() + limit
-        while self.inflight and time.monotonic() < deadline:
-            self._poll(timeout=min(1.0, max(0.05, deadline - time.monotonic())))
-        if self.inflight:
-            self.event(f"{len(self.inflight)} call(s) still running after {limit:.0f} s; their games are lost")
+        try:
+            limit = wait_seconds if wait_seconds is not None else 3 * self.config.worker.report_seconds + 30
+            deadline = time.monotonic() + limit
+            while self.inflight and time.monotonic() < deadline:
+                self._poll(timeout=min(1.0, max(0.05, deadline - time.monotonic())))
+            if self.inflight:
+                self.event(f"{len(self.inflight)} call(s) still running after {limit:.0f} s; their games are lost")
+        finally:
+            self._finished = True
+            self._flush_and_checkpoint()
+        return self.buffer_stats
+
+    def _flush_and_checkpoint(self) -> None:
+        import ray
+
         if self.buffer is not None:
             try:
                 self.buffer_stats = self.buffer.flush(timeout=120)
@@ -610,7 +619,6 @@ class Launcher:
                 self.event(f"learner checkpoint failed: {type(exc).__name__}")
         if self.buffer is not None:
             self.say(self.status_line())
-        return self.buffer_stats
 
     def kill_actors(self) -> None:
         """End every actor of this run (after :meth:`finish`); a driver that exits does the same."""

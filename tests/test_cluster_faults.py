@@ -15,7 +15,7 @@ import time
 import pytest
 
 from cluster import session
-from cluster_support import check_run_consistent, tiny_config
+from cluster_support import check_run_consistent, metric_rows, tiny_config
 
 pytestmark = [pytest.mark.ray, pytest.mark.slow]
 
@@ -109,8 +109,35 @@ def test_worker_killed_mid_game(cluster, worker_nodes, tmp_path):
     finally:
         stats = _finish(launcher)
     assert launcher.slots[0].restarts_seen >= 1
+    assert any("was restarted by Ray" in line for line in launcher.lines)
     facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
     assert facts["games"] >= state["killed_at"] + 30
+
+
+def test_snapshot_that_does_not_fit_is_refused_and_the_run_goes_on(cluster, worker_nodes, tmp_path):
+    import ray
+
+    from selfplay.games.registry import make_game
+    from selfplay.network import NetworkConfig, build_network
+    from selfplay.snapshots import SnapshotStore
+
+    launcher = _launcher(tmp_path, run__learner=False)
+    launcher.start()
+    try:
+        launcher.loop(tick=lambda la: _games(la) >= 10)
+        # a snapshot of another architecture (16 channels, the run's net has 8), as a user's trainer might publish
+        wrong = build_network(make_game("mnk"), NetworkConfig(blocks=1, channels=16, value_hidden=8))
+        bad = SnapshotStore(tmp_path / "run").publish(wrong)
+        assert ray.get(launcher.snapshots.refresh.remote()) == 1
+        refused = ray.get(launcher.snapshots.info.remote())["refused"]
+        assert bad in refused and "does not fit this network" in refused[bad]
+        games = _games(launcher)
+        launcher.loop(tick=lambda la: _games(la) >= games + 10)
+    finally:
+        stats = _finish(launcher)
+    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    assert all(r["snapshot_version"] == 1 for r in metric_rows(tmp_path / "run", "worker"))
+    assert facts["games"] >= games + 10
 
 
 def test_worker_node_removed_and_another_added(cluster, worker_nodes, tmp_path):
