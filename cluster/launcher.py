@@ -187,7 +187,7 @@ def write_run_toml(plan: RunPlan) -> None:
     RunDir.create(plan.run.root)
     text = dump_config(plan.config, comments=True,
                        header="Resolved configuration of this run, written by `selfplay run` "
-                       "(every default written out). `selfplay run --resume --out RUN` continues it.")
+                       "(every default written out).\nContinue the run with:   selfplay run --resume --out RUN")
     # the file must read back as the same config
     if config_from_toml(text, origin="run.toml being written").model_dump() != plan.config.model_dump():
         raise ConfigError("internal: the resolved config does not read back identically from TOML")

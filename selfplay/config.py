@@ -385,6 +385,6 @@ def _dump_model(model: BaseModel, table: str, lines: list[str], comments: bool) 
 def dump_config(config: RunConfig, comments: bool = True, header: str | None = None) -> str:
     """TOML text of ``config`` with every field written out; with ``comments``, each field's
     description and default above it. ``load_config`` of the text gives ``config`` back."""
-    lines: list[str] = list(_comment_lines(header)) if header else []
+    lines: list[str] = [ln for part in (header or "").split("\n") if part for ln in _comment_lines(part)]
     _dump_model(config, "", lines, comments)
     return "\n".join(lines).lstrip("\n") + "\n"

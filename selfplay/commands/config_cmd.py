@@ -42,8 +42,8 @@ def _show(args: argparse.Namespace) -> int:
         config,
         comments=not args.bare,
         header=None if args.bare else (
-            f"selfplay run config from preset {args.preset!r}; every field is written out. "
-            "Edit and run with: selfplay run --config FILE --out RUN"
+            f"selfplay run config from preset {args.preset!r}; every field is written out.\n"
+            "Edit, then run it with:   selfplay run --config FILE --out RUN"
         ),
     )
     if args.out:
