@@ -49,7 +49,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="network size: reference = 6 blocks x 64 channels (default)")
     parser.add_argument("--seconds", type=float, default=8.0, help="seconds per measurement (default 8)")
     parser.add_argument("--repeats", type=int, default=3, help="repeats of each measurement; medians are shown (default 3)")
-    parser.add_argument("--games-in-parallel", type=int, default=32, help="games per worker, G (default 32)")
+    parser.add_argument("--games-in-parallel", type=int, default=64, help="games per worker, G (default 64)")
     parser.add_argument("--leaves-per-game", type=int, default=1, help="leaves per game per batch, virtual loss beyond 1 (default 1)")
     parser.add_argument("--simulations", type=int, default=64, help="simulations per move (default 64)")
     parser.add_argument("--algorithm", default="puct", choices=["puct", "gumbel"], help="root search (default puct)")
