@@ -201,3 +201,23 @@ def test_learner_killed_restarts_from_its_checkpoint(cluster, worker_nodes, tmp_
     facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
     assert facts["snapshots"] >= state["version"] + 2
     assert any("learner lost" in line for line in launcher.lines)
+
+
+def test_selfplay_run_joins_a_cluster_by_address(cluster, worker_nodes, tmp_path):
+    import subprocess
+    import sys
+
+    from cluster_support import catalog_count
+    from selfplay.config import dump_config
+
+    cfg = tmp_path / "tiny.toml"
+    cfg.write_text(dump_config(tiny_config()))
+    env = {k: v for k, v in os.environ.items() if k != "RAY_ADDRESS"}
+    proc = subprocess.run([sys.executable, "-m", "selfplay.cli", "run", "--config", str(cfg), "--out",
+                           str(tmp_path / "run"), "--games", "40", "--address", cluster.address],
+                          capture_output=True, text=True, timeout=300, env=env)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "2 worker(s)" in proc.stderr  # one per CPU of the cluster's two worker nodes
+    assert "stop condition met: 40 games" in proc.stderr
+    check_run_consistent(tmp_path / "run")
+    assert catalog_count(tmp_path / "run") >= 40
