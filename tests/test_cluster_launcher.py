@@ -154,3 +154,30 @@ def test_stop_conditions_and_status_line(tmp_path):
     assert la.stop_reached() == "0.5 minutes"
     line = la.status_line()
     assert "games 100 " in line and "positions 700 " in line and "window 700/1,000" in line
+
+
+def test_buffer_shard_counters_merge_into_one_buffer():
+    from cluster.actors import merge_buffer_stats
+
+    def shard(pending_games, pending_positions, window):
+        # every shard reads the same catalog: its durable counts are the whole run's
+        return {"games_durable": 100, "positions_durable": 900, "pending_games": pending_games,
+                "pending_positions": pending_positions, "duplicates_total": 3, "shards_total": 7,
+                "window_positions": window, "window_capacity": 1000, "window_policy_targets": window // 2,
+                "newest_snapshot_in_data": 4}
+
+    merged = merge_buffer_stats([shard(2, 20, 500), shard(5, 40, 300)])
+    assert merged["games_total"] == 100 + 2 + 5 and merged["positions_total"] == 900 + 60
+    assert merged["window_positions"] == 800 and merged["window_capacity"] == 2000
+    assert merged["duplicates_total"] == 3 and merged["buffer_shards"] == 2
+
+
+def test_actor_startup_errors_become_one_line():
+    from cluster.actors import startup_error
+
+    text = ("The actor died because of an error raised in its creation task, ray::BufferActor.__init__()\n"
+            "  File \"store.py\", line 120, in _take_lock\n"
+            "selfplay.errors.RunDirError: run directory '/r' already has an open record store named 'buffer0'")
+    err = startup_error("the replay buffer", RuntimeError(text))
+    assert str(err) == ("the replay buffer could not start: run directory '/r' already has an open record "
+                        "store named 'buffer0'")
