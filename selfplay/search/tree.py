@@ -294,13 +294,11 @@ class BatchedSearch:
         slots = self.slots
         eval_nodes: list[int] = []
         eval_slots: list[int] = []
-        eval_masks: list[np.ndarray] = []
         for s, sl in enumerate(slots):
             if sl.searching and sl.root_needs_eval:
                 self.pending[sl.root] = True
                 eval_nodes.append(sl.root)
                 eval_slots.append(s)
-                eval_masks.append(self.legal[sl.root])
         root_evals = list(eval_slots)
         walkers = [s for s, sl in enumerate(slots) if sl.searching and not sl.root_needs_eval]
 
@@ -370,7 +368,8 @@ class BatchedSearch:
                 pars = np.concatenate(new_par)
                 acts = np.concatenate(new_act)
                 created = np.empty(ps.size, dtype=np.int64)
-                masks: list[tuple[int, np.ndarray]] = []
+                mask_nodes: list[int] = []
+                masks: list[np.ndarray] = []
                 states = self.states
                 for j, (p_idx, par, act) in enumerate(zip(ps.tolist(), pars.tolist(), acts.tolist())):
                     s = batch_slots[p_idx]
@@ -381,15 +380,15 @@ class BatchedSearch:
                     st = game.play(states[par], act)
                     mask = self._describe_state(node, st)
                     if mask is not None:
-                        masks.append((node, mask))
+                        mask_nodes.append(node)
+                        masks.append(mask)
                         eval_nodes.append(node)
                         eval_slots.append(s)
-                        eval_masks.append(mask)
                 rules += time.perf_counter() - t0
                 self._clear_rows(created)
                 self.child[pars, acts] = created
-                for node, mask in masks:
-                    self.legal[node] = mask
+                if masks:
+                    self.legal[mask_nodes] = np.stack(masks)
                 leaf[ps] = created
             nodes_cat = np.concatenate(r_nodes)
             acts_cat = np.concatenate(r_acts)
@@ -408,8 +407,8 @@ class BatchedSearch:
         t_net = 0.0
         if eval_nodes:
             nodes = np.array(eval_nodes, dtype=np.int64)
-            batch = LeafBatch(game, [self.states[i] for i in eval_nodes], self.to_play[nodes].copy(),
-                              np.stack(eval_masks), [slots[s].rng for s in eval_slots])
+            batch = LeafBatch(game, [self.states[i] for i in eval_nodes], self.to_play[nodes],
+                              self.legal[nodes], [slots[s].rng for s in eval_slots])
             t0 = time.perf_counter()
             priors, values = evaluator.evaluate(batch)
             t_net = time.perf_counter() - t0
@@ -550,7 +549,7 @@ def _check_evaluation(evaluator: Evaluator, priors: np.ndarray, values: np.ndarr
     if getattr(priors, "shape", None) != (n, A) or getattr(values, "shape", None) != (n,):
         raise ConfigError(f"evaluator {name} returned priors of shape {getattr(priors, 'shape', None)} and values "
                           f"of shape {getattr(values, 'shape', None)} for {n} leaves; expected ({n}, {A}) and ({n},)")
-    if not (np.isfinite(values).all() and np.isfinite(priors).all()):
+    if not (np.isfinite(values.sum()) and np.isfinite(priors.sum())):
         raise SnapshotError(f"evaluator {name} returned non-finite priors or values (a corrupt or diverged "
                             "network?); the search stops rather than fill its trees with them")
 
