@@ -234,3 +234,33 @@ def test_fourinrow_games_run_to_a_finished_position():
         for a in r.actions:
             state = game.play(state, int(a))
         assert game.is_terminal(state) and r.result == int(game.outcome(state))
+
+
+@pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
+def test_tree_bookkeeping_stays_consistent_across_rounds_and_reuse(algorithm):
+    # Virtual loss 0.7 would leave non-integer visit counts behind if it were not fully removed.
+    from selfplay.games.registry import make_game
+    game = make_game("fourinrow")
+    cfg = SearchConfig(algorithm=algorithm, simulations=24, reduced_simulations=6, full_search_share=0.5,
+                       leaves_per_game=3, virtual_loss=0.7)
+    w = SelfPlayWorker(game, UniformEvaluator(), cfg, games_in_parallel=3, worker_id="inv", seed=4)
+    for _ in range(6):
+        w.step()
+        tree = w._tree
+        for sl in tree.slots:
+            nodes = np.arange(sl.base, sl.base + sl.count)
+            N, W, Q = tree.N[nodes], tree.W[nodes], tree.Q[nodes]
+            assert np.all(N == np.round(N)) and np.all(N >= 0)
+            np.testing.assert_allclose(tree.visits[nodes], N.sum(axis=1))
+            visited = N > 0
+            np.testing.assert_allclose(Q[visited], W[visited] / N[visited], rtol=1e-5, atol=1e-6)
+            assert np.all(np.abs(W) <= N + 1e-4)          # values in [-1, 1]
+            assert not tree.pending[nodes].any()
+            ch = tree.child[nodes]
+            for i, a in zip(*np.nonzero(ch >= 0)):
+                c = ch[i, a]
+                assert sl.base <= c < sl.base + sl.count
+                if tree.terminal[c]:
+                    assert tree.visits[c] == 0
+                else:   # every simulation through the edge either stopped at c or went on below it
+                    assert N[i, a] >= tree.visits[c] + 1

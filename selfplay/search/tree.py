@@ -185,10 +185,10 @@ class BatchedSearch:
             self.states[sl.base:sl.base + old] = [None] * old
         node = sl.base
         self._clear_rows(np.array([node]))
-        self.pending[node] = False
         t0 = time.perf_counter()
         mask = self._describe_state(node, state)
         self.times.rules += time.perf_counter() - t0
+        self.pending[node] = False  # the round that evaluates the root marks it
         if mask is not None:
             self.legal[node] = mask
         sl.count = 1
@@ -434,6 +434,11 @@ class BatchedSearch:
             np.add.at(self._Nf, flat, 1.0 - self._vl)
             np.add.at(self._Wf, flat, v + self._vl)
             np.add.at(self.visits, e_node, 1.0 - self._vl)
+            if self._vl:
+                # real visit counts are whole numbers: drop the rounding left by adding and
+                # removing a virtual loss that float32 cannot hold exactly (0.7, say)
+                self._Nf[flat] = np.rint(self._Nf[flat])
+                self.visits[e_node] = np.rint(self.visits[e_node])
             self._Qf[flat] = self._Wf[flat] / self._Nf[flat]
 
         finished: list[int] = []
