@@ -35,6 +35,28 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
+def run_cpu_seconds() -> float:
+    """CPU seconds used so far by this process and every process below it (the whole local Ray:
+    driver, GCS, raylet, actors); processes that already exited are not counted."""
+    total = cpu_seconds(os.getpid())
+    parent: dict[int, int] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            parent[int(stat.parent.name)] = int(stat.read_text().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError):
+            continue
+    seen, frontier = set(), {os.getpid()}
+    while frontier:
+        frontier = {p for p, pp in parent.items() if pp in frontier} - seen
+        seen |= frontier
+    for pid in seen:
+        try:
+            total += cpu_seconds(pid)
+        except (OSError, ValueError):
+            continue
+    return total
+
+
 def machine_busy_seconds() -> float:
     """CPU seconds the whole machine spent busy (every process), from /proc/stat."""
     vals = [int(v) for v in Path("/proc/stat").read_text().splitlines()[0].split()[1:]]
@@ -64,11 +86,13 @@ def trial(config: Any, workers: int, seconds: float, root: Path, index: int) -> 
                 marks.update(warm=now)
             if "warm" in marks and now - marks["warm"] >= 2 * cfg.worker.report_seconds:
                 marks.update(t0=now, g0=la.buffer_stats["games_total"], p0=la.buffer_stats["positions_total"],
-                             c0=sum(cpu_seconds(p) for p in pids), m0=machine_busy_seconds())
+                             c0=sum(cpu_seconds(p) for p in pids), m0=machine_busy_seconds(),
+                             r0=run_cpu_seconds())
             return False
         if now - marks["t0"] >= seconds:
             marks.update(t1=now, g1=la.buffer_stats["games_total"], p1=la.buffer_stats["positions_total"],
-                         c1=sum(cpu_seconds(p) for p in pids), m1=machine_busy_seconds())
+                         c1=sum(cpu_seconds(p) for p in pids), m1=machine_busy_seconds(),
+                         r1=run_cpu_seconds())
             return True
         return False
 
@@ -83,6 +107,7 @@ def trial(config: Any, workers: int, seconds: float, root: Path, index: int) -> 
     return {"workers": workers, "games_per_hour": games / dt * 3600,
             "positions_per_second": (marks["p1"] - marks["p0"]) / dt, "seconds": dt,
             "worker_cpus_used": worker_cpu / dt, "machine_cpus_busy": (marks["m1"] - marks["m0"]) / dt,
+            "run_cpus_used": (marks["r1"] - marks["r0"]) / dt,
             "games_per_worker_cpu_hour": games / max(worker_cpu, 1e-9) * 3600}
 
 
@@ -108,7 +133,8 @@ def main() -> int:
                     if not args.json:
                         print(f"trial {i + 1}: {workers} worker(s): {r['games_per_hour']:,.0f} games/h, "
                               f"{r['positions_per_second']:,.1f} positions/s, workers used "
-                              f"{r['worker_cpus_used']:.2f} CPUs (machine busy {r['machine_cpus_busy']:.2f} "
+                              f"{r['worker_cpus_used']:.2f} CPUs, the whole run {r['run_cpus_used']:.2f} "
+                              f"(machine busy {r['machine_cpus_busy']:.2f} "
                               f"of {os.cpu_count()}), {r['games_per_worker_cpu_hour']:,.0f} games per worker "
                               "CPU-hour", flush=True)
     finally:
@@ -132,6 +158,10 @@ def main() -> int:
         "games_per_worker_cpu_hour_2_workers_median": round(statistics.median(cpu_two)),
         "per_cpu_efficiency": round(statistics.median(cpu_two) / statistics.median(cpu_one), 3),
         "machine_cpus_busy_median": round(statistics.median(r["machine_cpus_busy"] for r in results), 2),
+        "run_cpus_used_2_workers_median": round(statistics.median(
+            r["run_cpus_used"] for r in results if r["workers"] == 2), 2),
+        "run_cpus_used_1_worker_median": round(statistics.median(
+            r["run_cpus_used"] for r in results if r["workers"] == 1), 2),
     }
     if args.json:
         print(json.dumps(out))
