@@ -109,7 +109,11 @@ def test_export_of_a_played_go_game_reads_back():
     assert "snapshot 7" in back.black_name and back.properties["GN"] == ["sp-1"]
     rec.resigned, rec.result = True, -1
     rec.outcomes = np.where(rec.to_play == 0, -1, 1).astype(np.int8)
-    assert read_sgf(record_to_sgf(rec)).result == "W+R"
+    resigned = read_sgf(record_to_sgf(rec))
+    assert resigned.result == "W+R"
+    # The worker keeps the resigning position with the move its search chose, never played:
+    # the SGF game ends before it.
+    assert resigned.moves == [int(a) for a in rec.actions[:-1]]
 
 
 def test_sgf_commands_round_trip(tmp_path, capsys):

@@ -66,6 +66,9 @@ def record_to_sgf(rec: GameRecord) -> str:
                           f"games from the empty board")
     moves = [int(a) for a in np.asarray(rec.actions)]
     if rec.resigned:
+        # The resigning position is kept as a training position, with the move its search
+        # chose; that move was never played, so the game record ends before it.
+        moves = moves[:-1]
         result = {1: "B+R", -1: "W+R", 0: "0"}[int(rec.result)]
     else:
         state = game.play_sequence(moves)
