@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
+import shutil
 import sys
 import tempfile
 import time
@@ -163,6 +163,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
 
     config = with_overrides(load_preset("go9"), {"run.buffer_shards": args.buffer_shards})
     run_dir = Path(args.run_dir or tempfile.mkdtemp(prefix="plyfoundry-load-"))
+    remove_after = args.run_dir is None
     data = config.model_dump(mode="json")
     session.start_local(num_cpus=args.generators + 1)
     try:
@@ -247,11 +248,14 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
             "snapshot_pickup_lag_max_s": round(float(max(lags)), 2) if lags else None,
             "snapshot_versions_reaching_every_worker": f"{len(lags)}/{len(publishes)}",
             "games_stored": after["games_durable"], "positions_stored": after["positions_durable"],
-            "run_dir": str(run_dir),
         }
+        if not remove_after:
+            out["run_dir"] = str(run_dir)
         return out
     finally:
         session.shutdown()
+        if remove_after:
+            shutil.rmtree(run_dir, ignore_errors=True)
 
 
 def main() -> int:
