@@ -81,11 +81,18 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
         f.flush()
         os.fsync(f.fileno())
     os.replace(tmp, path)
+    fsync_dir(path.parent)
+
+
+def fsync_dir(path: Path) -> None:
+    """fsync a directory so a rename inside it survives a crash (no-op where unsupported)."""
     try:
-        dfd = os.open(path.parent, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
     except OSError:
         pass
+    finally:
+        os.close(fd)

@@ -188,6 +188,21 @@ class Game(abc.ABC, Generic[State]):
         return s
 
 
+# ---- input planes shared by games without history ------------------------------------------
+
+def side_to_move_planes(boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
+    """Three planes from the current compact board (``boards[:, 0]``): the side to move's
+    stones, the opponent's stones, and a plane of ones (so the net sees the board's edge
+    through zero padding). float32 (N, 3, H, W), from the side to move's view."""
+    cur = boards[:, 0]
+    own = (np.asarray(to_play).astype(np.int8) + 1)[:, None, None]
+    planes = np.empty((cur.shape[0], 3, *cur.shape[1:]), dtype=np.float32)
+    planes[:, 0] = cur == own
+    planes[:, 1] = (cur != 0) & (cur != own)
+    planes[:, 2] = 1.0
+    return planes
+
+
 # ---- dihedral symmetry of a square board (shared by Go and m,n,k on square boards) -----------
 
 def dihedral(arr: np.ndarray, k: int) -> np.ndarray:

@@ -23,7 +23,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from selfplay.errors import ConfigError, IllegalMoveError
-from selfplay.games.base import Game
+from selfplay.games.base import Game, side_to_move_planes
 from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
 from selfplay.games.zobrist_keys import zobrist_keys
@@ -191,13 +191,7 @@ class FourInRowGame(Game[FourInRowState]):
 
     def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
         """Planes: the side to move's pieces, the opponent's pieces, ones. float32 (N, 3, rows, columns)."""
-        cur = boards[:, 0]
-        own = (np.asarray(to_play).astype(np.int8) + 1)[:, None, None]
-        planes = np.empty((cur.shape[0], 3, self.rows, self.columns), dtype=np.float32)
-        planes[:, 0] = cur == own
-        planes[:, 1] = (cur != 0) & (cur != own)
-        planes[:, 2] = 1.0
-        return planes
+        return side_to_move_planes(boards, to_play)
 
     # ---- symmetry: identity and the left-right mirror ----------------------------------------
     @property

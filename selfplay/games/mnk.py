@@ -12,7 +12,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from selfplay.errors import ConfigError, IllegalMoveError
-from selfplay.games.base import Game, dihedral, dihedral_point_permutation
+from selfplay.games.base import Game, dihedral, dihedral_point_permutation, side_to_move_planes
 from selfplay.games.bitlines import has_run
 from selfplay.games.registry import register_game
 from selfplay.games.zobrist_keys import zobrist_keys
@@ -149,13 +149,7 @@ class MNKGame(Game[MNKState]):
         return state.cells.reshape(self.n, self.m)
 
     def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
-        cur = boards[:, 0]
-        own = (to_play.astype(np.int8) + 1)[:, None, None]
-        planes = np.empty((cur.shape[0], 3, self.n, self.m), dtype=np.float32)
-        planes[:, 0] = cur == own
-        planes[:, 1] = (cur != 0) & (cur != own)
-        planes[:, 2] = 1.0
-        return planes
+        return side_to_move_planes(boards, to_play)
 
     # symmetry
     @property

@@ -15,6 +15,7 @@ from typing import BinaryIO, Iterator
 from selfplay.errors import FormatError
 from selfplay.records import GameRecord
 from selfplay.replay import codec
+from selfplay.rundir import fsync_dir
 
 #: file name suffix of a finished shard
 SHARD_SUFFIX = ".plyrec"
@@ -39,20 +40,6 @@ class ShardScan:
     @property
     def ok(self) -> bool:
         return self.error is None
-
-
-def fsync_dir(path: Path) -> None:
-    """fsync a directory so a rename inside it survives a crash (no-op where unsupported)."""
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def write_shard(final: Path, frames: list[bytes], flags: int, tmp: Path | None = None) -> tuple[int, int]:
