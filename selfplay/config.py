@@ -31,8 +31,8 @@ from typing import Any, Literal, Mapping
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from selfplay.errors import ConfigError, SelfplayError
-from selfplay.learner import LearnerConfig
-from selfplay.network import NetworkConfig
+from selfplay.learner_config import LearnerConfig
+from selfplay.network_config import NetworkConfig
 from selfplay.replay.config import ReplayConfig
 from selfplay.search.config import SearchConfig
 

@@ -21,17 +21,17 @@ import argparse
 import json
 import statistics
 import time
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import torch
 
 from selfplay.errors import ConfigError
-from selfplay.evaluators import NetworkEvaluator
 from selfplay.games.registry import make_game
-from selfplay.network import NetworkConfig, build_network
 from selfplay.search.config import SearchConfig
-from selfplay.worker import SelfPlayWorker
+
+if TYPE_CHECKING:  # torch comes with these; imported where used, not when the CLI builds its parser
+    from selfplay.evaluators import NetworkEvaluator
+    from selfplay.worker import SelfPlayWorker
 
 _GAMES = {
     "go9": ("go", {"size": 9}),
@@ -117,6 +117,8 @@ class _Meter:
 def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
     """Evaluations/s of the evaluator's net alone (its inference form, a ready input tensor in
     the same memory format, same threads, inference mode) on random 0/1 planes at ``batch``."""
+    import torch
+
     planes = np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round()
     x = evaluator.input_tensor(planes)
     net = evaluator.inference_net
@@ -132,6 +134,10 @@ def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], b
 
 
 def run(args: argparse.Namespace) -> int:
+    from selfplay.evaluators import NetworkEvaluator
+    from selfplay.network import NetworkConfig, build_network
+    from selfplay.worker import SelfPlayWorker
+
     _check(args)
     name, options = _GAMES[args.game]
     game = make_game(name, **options)

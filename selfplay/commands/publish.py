@@ -12,11 +12,13 @@ from __future__ import annotations
 import argparse
 import json
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from selfplay.errors import SnapshotError
 from selfplay.rundir import RunDir
-from selfplay.snapshots import SnapshotStore, read_weights_file, safetensors_metadata, shape_mismatches
+
+if TYPE_CHECKING:
+    from selfplay.snapshots import SnapshotStore
 
 
 def reference_for_run(run: RunDir, store: SnapshotStore) -> tuple[str, dict[str, Any], dict[str, Any], dict[str, tuple[int, ...]]]:
@@ -39,6 +41,9 @@ def reference_for_run(run: RunDir, store: SnapshotStore) -> tuple[str, dict[str,
 
 
 def run_publish(run_path: str, weights_path: str, parent: int | None) -> int:
+    # torch comes with the snapshot store: imported here, not when the CLI builds its parser
+    from selfplay.snapshots import SnapshotStore, read_weights_file, safetensors_metadata, shape_mismatches
+
     run = RunDir.open(run_path)
     store = SnapshotStore(run, source="publish")
     tensors = read_weights_file(weights_path)

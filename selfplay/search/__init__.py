@@ -7,7 +7,18 @@
 - :mod:`selfplay.search.gumbel` — Gumbel top-m, sequential halving, completed Q, improved policy.
 """
 
+from typing import Any
+
 from selfplay.search.config import SearchConfig
-from selfplay.search.tree import BatchedSearch, SearchResult, search_states
 
 __all__ = ["BatchedSearch", "SearchConfig", "SearchResult", "search_states"]
+
+
+def __getattr__(name: str) -> Any:
+    # The tree pulls in the evaluators and so torch; load it on first use, so that reading a
+    # configuration (SearchConfig) stays light.
+    if name in ("BatchedSearch", "SearchResult", "search_states"):
+        from selfplay.search import tree
+
+        return getattr(tree, name)
+    raise AttributeError(f"module 'selfplay.search' has no attribute {name!r}")
