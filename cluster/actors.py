@@ -189,6 +189,7 @@ class BufferActor:
         self.newest_snapshot = 0
         self._totals = self.store.totals()
         self._totals_at = time.monotonic()
+        self._totals_shards = self.store.shards_written
 
     def add_games(self, records: list[Any]) -> dict[str, Any]:
         """Store ``records`` (game ids already stored or waiting are ignored and counted) and add
@@ -227,14 +228,17 @@ class BufferActor:
 
     def stats(self, fresh: bool = False) -> dict[str, Any]:
         """Durable counts of the whole catalog (shared by all shards) and this shard's waiting games."""
-        if fresh or time.monotonic() - self._totals_at > 1.0:
+        # The catalog count is cached for a second, but never across a shard this store wrote:
+        # the waiting games it moved into the catalog would drop out of durable + waiting.
+        if (fresh or time.monotonic() - self._totals_at > 1.0
+                or self.store.shards_written != self._totals_shards):
             self._totals = self.store.totals()
             self._totals_at = time.monotonic()
+            self._totals_shards = self.store.shards_written
         t = self._totals
-        pending = self.store._pending  # noqa: SLF001 - counts of the games waiting for a shard
         return {
             "games_durable": t.games, "positions_durable": t.positions,
-            "pending_games": len(pending), "pending_positions": sum(int(p.row[5]) for p in pending),
+            "pending_games": self.store.pending_games, "pending_positions": self.store.pending_positions,
             "duplicates_total": t.duplicates, "shards_total": t.shards,
             "window_positions": len(self.buffer), "window_capacity": self.buffer.capacity,
             "window_policy_targets": self.buffer.policy_target_positions,

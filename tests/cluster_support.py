@@ -58,10 +58,13 @@ def metric_rows(run: Path, component: str) -> list[dict[str, Any]]:
 
 
 def check_run_consistent(run: Path, reported: list[str] | None = None,
-                         buffer_stats: dict[str, Any] | None = None) -> dict[str, Any]:
+                         buffer_stats: dict[str, Any] | None = None,
+                         buffer_restarted: bool = False) -> dict[str, Any]:
     """The checks after every fault: each game reported finished is in the catalog exactly once;
     the shard files hold exactly the catalog's games; the buffer's counts agree with the
-    catalog; snapshot versions only increase (on disk, in the metrics, and per worker)."""
+    catalog; the buffer's logged totals never go down while one buffer lives (a fall would read
+    as a restart to the monitor); snapshot versions only increase (on disk, in the metrics, and
+    per worker)."""
     from selfplay.replay.shards import read_shard
     from selfplay.snapshots import SnapshotStore
 
@@ -76,6 +79,12 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
     if buffer_stats is not None:
         assert buffer_stats["pending_games"] == 0
         assert buffer_stats["games_durable"] == len(ids) == buffer_stats["games_total"]
+    if not buffer_restarted:
+        by_buffer: dict[str, list[int]] = {}
+        for row in metric_rows(run, "buffer"):
+            by_buffer.setdefault(row["source"], []).append(int(row["games_total"]))
+        for source, seq in by_buffer.items():
+            assert seq == sorted(seq), f"buffer {source} logged a games_total that went down: {seq}"
     infos = list(SnapshotStore(run).iter_infos())
     versions = [i.version for i in infos]
     assert versions == list(range(1, len(versions) + 1)), versions

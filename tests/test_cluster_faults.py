@@ -221,3 +221,33 @@ def test_selfplay_run_joins_a_cluster_by_address(cluster, worker_nodes, tmp_path
     assert "stop condition met: 40 games" in proc.stderr
     check_run_consistent(tmp_path / "run")
     assert catalog_count(tmp_path / "run") >= 40
+
+
+def test_buffer_totals_do_not_fall_when_a_shard_is_written(cluster, tmp_path):
+    """The buffer's games_total (catalog + waiting) must not go down when waiting games move
+    into a shard: the monitor would read the fall as a restart and count games twice."""
+    import numpy as np
+    import ray
+
+    from cluster.actors import BufferActor
+    from selfplay.games.registry import make_game
+    from selfplay.replay import synthetic
+    from selfplay.rundir import RunDir
+
+    config = tiny_config(replay__shard_max_games=3, replay__shard_max_age_seconds=600.0)
+    run = RunDir.create(tmp_path / "run")
+    game = make_game(config.game.name, **config.game.options)
+    rng = np.random.default_rng(5)
+    records = [synthetic.random_record(game, rng, f"g{i}") for i in range(3)]
+    buffer = BufferActor.remote(str(run.root), config.model_dump(mode="json"))
+    try:
+        assert ray.get(buffer.stats.remote())["games_durable"] == 0  # counts cached now
+        ray.get(buffer.add_games.remote(records[:2]))
+        first = ray.get(buffer.stats.remote())
+        ray.get(buffer.add_games.remote(records[2:]))  # the third game fills a shard
+        second = ray.get(buffer.stats.remote())  # well within the cache's second
+    finally:
+        ray.kill(buffer)
+    assert first["games_durable"] + first["pending_games"] == 2
+    assert second["pending_games"] == 0
+    assert second["games_durable"] + second["pending_games"] == 3

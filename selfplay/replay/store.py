@@ -124,6 +124,9 @@ class RecordStore:
         self._pending_ids: set[str] = set()
         self._pending_bytes = 0
         self._pending_since = 0.0
+        #: shards this store has written since it opened (a cached catalog count older than a
+        #: change of this number no longer matches ``pending_games``)
+        self.shards_written = 0
         self._metrics: MetricsLog | None = None
         try:
             self.catalog = Catalog(self.run.catalog)
@@ -260,6 +263,7 @@ class RecordStore:
         self._pending.clear()
         self._pending_ids.clear()
         self._pending_bytes = 0
+        self.shards_written += 1
         return name
 
     @property
