@@ -28,6 +28,13 @@ COMMAND_MODULES = (
     "selfplay.commands.report",
     "selfplay.commands.show",
     "selfplay.commands.sgf",
+    "selfplay.commands.games",
+    "selfplay.commands.snapshot",
+    "selfplay.commands.match",
+    "selfplay.commands.ladder",
+    "selfplay.commands.gtp",
+    "selfplay.commands.verify",
+    "selfplay.commands.repair",
 )
 
 

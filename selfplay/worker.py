@@ -120,7 +120,7 @@ class SelfPlayWorker:
         gseed = game_seed(self.seed, index)
         rng = np.random.default_rng(gseed)
         probe_draw = rng.random()
-        resign_disabled = self.config.resign_threshold is not None and probe_draw < self.config.resign_disabled_share
+        resign_disabled = self.config.resign_threshold is not None and probe_draw < self.config.resign_probe_fraction
         game_id = f"{self.run_tag}{self.worker_id}-{index:08d}"
         builder = GameRecordBuilder(game_id, self.game.name, self.game.options(), self.worker_id, gseed,
                                     self._search_settings, self.clock())

@@ -19,11 +19,11 @@ from selfplay.search import SearchConfig
     ("rollout_mix_lambda", 1.5),
     ("dirichlet_epsilon", 1.2),
     ("full_search_share", -0.5),
-    ("resign_disabled_share", 2.0),
+    ("resign_probe_fraction", 2.0),
     ("resign_threshold", -1.0),
     ("leaves_per_game", 0),
     ("c_puct", 0.0),
-    ("gumbel_considered_actions", 0),
+    ("gumbel_sampled_moves", 0),
     ("algorithm", "minimax"),
 ])
 def test_bad_values_name_the_field(field, value):
@@ -49,9 +49,9 @@ def test_published_defaults():
     cfg = SearchConfig()
     # AlphaGo Zero / AlphaZero: epsilon 0.25; resignation disabled in 10% of games.
     assert cfg.dirichlet_epsilon == 0.25
-    assert cfg.resign_disabled_share == 0.1
+    assert cfg.resign_probe_fraction == 0.1
     # Danihelka et al. 2022: m = 16 considered actions, c_visit = 50, c_scale = 1.
-    assert (cfg.gumbel_considered_actions, cfg.gumbel_c_visit, cfg.gumbel_c_scale) == (16, 50.0, 1.0)
+    assert (cfg.gumbel_sampled_moves, cfg.gumbel_c_visit, cfg.gumbel_c_scale) == (16, 50.0, 1.0)
     # every field carries a description
     assert all(f.description for f in SearchConfig.model_fields.values())
 

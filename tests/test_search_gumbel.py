@@ -131,7 +131,7 @@ def paper_sequential_halving(g, logits, q, n, m, c_visit, c_scale):
 
 def _run_root(outcomes, priors, value, n, m, seed, c_scale=1.0, leaves=1):
     game = OneMoveGame(outcomes)
-    cfg = SearchConfig(algorithm="gumbel", simulations=n, gumbel_considered_actions=m,
+    cfg = SearchConfig(algorithm="gumbel", simulations=n, gumbel_sampled_moves=m,
                        gumbel_c_scale=c_scale, leaves_per_game=leaves, reduced_simulations=1)
     bs = BatchedSearch(game, cfg, 1)
     bs.set_root(0, game.initial_state())

@@ -139,20 +139,20 @@ def test_fixture_positions():
 def test_resignation_and_its_false_positive_probe():
     base = dict(simulations=200, reduced_simulations=8, **GREEDY)
     # resignation on: X resigns the lost position at once
-    w = _worker(SearchConfig(resign_threshold=-0.5, resign_disabled_share=0.0, **base), start_state=X_LOST,
+    w = _worker(SearchConfig(resign_threshold=-0.5, resign_probe_fraction=0.0, **base), start_state=X_LOST,
                 games_in_parallel=1)
     rec = w.play_games(1)[0]
     assert rec.resigned and rec.result == -1 and rec.num_positions == 1 and rec.root_values[0] < -0.5
     assert not rec.resign_disabled
     # resignation disabled: the game is played out; X would have resigned and indeed lost
-    w = _worker(SearchConfig(resign_threshold=-0.5, resign_disabled_share=1.0, **base), start_state=X_LOST,
+    w = _worker(SearchConfig(resign_threshold=-0.5, resign_probe_fraction=1.0, **base), start_state=X_LOST,
                 games_in_parallel=1)
     rec = w.play_games(1)[0]
     assert not rec.resigned and rec.resign_disabled and rec.resign_would_have == 0 and rec.result == -1
     assert w.stats()["resign_false_positives_total"] == 0
     assert w.stats()["resign_disabled_games_total"] == 1
     # a threshold above a drawn root value: X "would have resigned" a draw -> a false positive
-    w = _worker(SearchConfig(resign_threshold=0.5, resign_disabled_share=1.0, **base), start_state=DRAWN,
+    w = _worker(SearchConfig(resign_threshold=0.5, resign_probe_fraction=1.0, **base), start_state=DRAWN,
                 games_in_parallel=1)
     rec = w.play_games(1)[0]
     assert rec.resign_would_have == 0 and rec.result == 0

@@ -28,7 +28,7 @@ class SearchConfig(BaseModel):
         "targets) or 'gumbel' (Gumbel top-m sampling with sequential halving and improved-policy targets).")
     simulations: int = Field(200, ge=1, le=1_000_000, description="Simulations (leaf evaluations) per move of a full search.")
     c_puct: float = Field(1.5, gt=0, description="PUCT exploration constant c in Q + c P sqrt(N) / (1 + n).")
-    fpu_reduction: float = Field(
+    unvisited_value_penalty: float = Field(
         0.0, ge=0, le=2, description="First-play urgency: an unvisited move's Q is the node's own value "
         "estimate minus this amount (0 = the node's value).")
     dirichlet_epsilon: float = Field(0.25, ge=0, le=1, description="Weight of the root Dirichlet noise in full PUCT searches (0 = no noise).")
@@ -46,14 +46,14 @@ class SearchConfig(BaseModel):
         "(left unset, 32 or `simulations` if that is smaller).")
     resign_threshold: float | None = Field(
         None, gt=-1, lt=1, description="The mover resigns when its root value (mover's view) falls below this; None = never resign.")
-    resign_disabled_share: float = Field(
+    resign_probe_fraction: float = Field(
         0.1, ge=0, le=1, description="Share of games played with resignation switched off, to measure false positives.")
     rollout_mix_lambda: float = Field(
         0.0, ge=0, le=1, description="Leaf value = (1 - lambda) * network value + lambda * random-rollout outcome "
         "(AlphaGo, Silver et al. 2016); 0 = network only.")
     virtual_loss: float = Field(1.0, ge=0, description="Virtual loss added to each edge on a pending path when several leaves per game are gathered.")
     leaves_per_game: int = Field(1, ge=1, le=64, description="Leaves each game contributes to one batched evaluation (more than 1 uses virtual loss).")
-    gumbel_considered_actions: int = Field(16, ge=1, description="Gumbel: number m of root actions sampled without replacement (top-m of g + logits).")
+    gumbel_sampled_moves: int = Field(16, ge=1, description="Gumbel: number m of root actions sampled without replacement (top-m of g + logits).")
     gumbel_c_visit: float = Field(50.0, gt=0, description="Gumbel: c_visit in sigma(q) = (c_visit + max N) * c_scale * q.")
     gumbel_c_scale: float = Field(1.0, gt=0, description="Gumbel: c_scale in sigma(q) = (c_visit + max N) * c_scale * q.")
     reuse_tree: bool = Field(True, description="Keep the subtree below the chosen move for the next search.")

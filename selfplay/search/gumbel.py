@@ -4,7 +4,7 @@ Danihelka, Guez, Schrittwieser and Silver (2022), "Policy improvement by plannin
 (ICLR 2022):
 
 - Root: sample ``g(a) ~ Gumbel(0, 1)`` for each legal action and keep the top
-  ``m = min(gumbel_considered_actions, legal)`` actions by ``g + logits`` (sampling without
+  ``m = min(gumbel_sampled_moves, legal)`` actions by ``g + logits`` (sampling without
   replacement). Sequential halving spends the budget ``n`` over ``ceil(log2 m)`` phases; in each
   phase every remaining action is visited ``floor(n / (ceil(log2 m) * |remaining|))`` times (at
   least once), then the better half (rounded up) by ``g + logits + sigma(q)`` stays. Simulations

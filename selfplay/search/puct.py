@@ -7,7 +7,7 @@ Selection (Silver et al. 2017, "Mastering the game of Go without human knowledge
 
 where Q is the mean backed-up value from the view of the player to move at s. We take
 ``sqrt(max(1, sum_b N))`` so that the first visit of a fresh node follows the prior rather than
-the lowest index. Unvisited moves get the first-play-urgency value ``v(s) - fpu_reduction``.
+the lowest index. Unvisited moves get the first-play-urgency value ``v(s) - unvisited_value_penalty``.
 
 Every function works on a batch of k nodes at once (rows), so that one call serves the nodes
 that all games in a worker are visiting at the same depth.
@@ -19,12 +19,12 @@ import numpy as np
 
 
 def puct_select(P: np.ndarray, N: np.ndarray, W: np.ndarray, legal: np.ndarray, node_value: np.ndarray,
-                c_puct: float, fpu_reduction: float = 0.0) -> np.ndarray:
+                c_puct: float, unvisited_value_penalty: float = 0.0) -> np.ndarray:
     """Chosen action per row. P, N, W float32 (k, A); legal bool (k, A); node_value (k,) the
     node's own value estimate from its mover's view. Returns int64 (k,)."""
     total = N.sum(axis=1)
     q = np.empty_like(W)
-    q[:] = (node_value - fpu_reduction)[:, None]
+    q[:] = (node_value - unvisited_value_penalty)[:, None]
     visited = N > 0
     np.divide(W, N, out=q, where=visited)
     scale = c_puct * np.sqrt(np.maximum(total, 1.0))

@@ -237,7 +237,7 @@ class BatchedSearch:
             return
         sl.gumbel = sl.rng.gumbel(size=self.A)
         sl.logits = np.log(np.maximum(sl.root_prior.astype(np.float64), 1e-30))
-        m = min(cfg.gumbel_considered_actions, int(legal.sum()), sl.budget)
+        m = min(cfg.gumbel_sampled_moves, int(legal.sum()), sl.budget)
         considered = gb.top_m(sl.gumbel, sl.logits, legal, m)
         sl.plan = gb.halving_schedule(sl.budget, len(considered))
         used = sum(c * p for c, p in sl.plan)
@@ -415,7 +415,7 @@ class BatchedSearch:
             _check_evaluation(evaluator, priors, values, len(eval_nodes), self.A)
             self.P[nodes] = priors
             self.value[nodes] = values
-            self.Q[nodes] = np.where(self.legal[nodes], (values - self.config.fpu_reduction)[:, None],
+            self.Q[nodes] = np.where(self.legal[nodes], (values - self.config.unvisited_value_penalty)[:, None],
                                      -np.inf).astype(np.float32)
             self.pending[nodes] = False
             self.times.evals += len(eval_nodes)
