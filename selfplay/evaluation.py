@@ -199,6 +199,7 @@ class MatchResult:
     losses_as_second: int = 0
     seconds: float = 0.0
     lengths: list[int] = field(default_factory=list)
+    outcomes: list["GameOutcome"] = field(default_factory=list)
 
     @property
     def score(self) -> float:
@@ -217,6 +218,7 @@ class MatchResult:
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
         d.pop("lengths")
+        d.pop("outcomes")
         d.update(score=self.score, win_rate=self.win_rate, elo=self.elo)
         return d
 
@@ -248,22 +250,51 @@ def random_openings(game: Game, count: int, plies: int, seed: int) -> list[list[
     return out
 
 
+#: what a player's ``choose`` returns to resign the game (it loses at once)
+RESIGN = -1
+
+
+@dataclass
+class GameOutcome:
+    """One finished game of a match: ``index`` in the match, whether ``player`` moved first,
+    ``result`` from the first mover's view (+1, 0, -1), moves played (opening included),
+    ``ended_by`` ("rules", "resign" or "move_cap") and the move list."""
+
+    index: int
+    player_first: bool
+    result: int
+    moves: int
+    ended_by: str
+    opening: list[int]
+    actions: list[int]
+
+
 def play_match(game: Game, player: Player, opponent: Player, games: int, *, seed: int = 0,
                opening_plies: int = 0, metrics_log: Any = None) -> MatchResult:
     """Play ``games`` games (an even number: each opening once with ``player`` first and once
-    second) in lockstep; return the result from ``player``'s view.
+    second) in lockstep; return the result from ``player``'s view, with every game's
+    :class:`GameOutcome` in ``outcomes``.
 
-    ``opening_plies`` random legal moves start every pair of games (0: from the empty board)."""
-    if games < 2 or games % 2:
-        raise ConfigError(f"a match needs an even number of games (each side equally often), got {games}")
+    ``opening_plies`` random legal moves start every pair of games (0: from the empty board).
+    A player whose ``needs_moves`` attribute is true (an engine behind a protocol that has to be
+    told the game so far) gets ``moves=`` (each game's move list) in :meth:`Player.choose`.
+    A player may answer :data:`RESIGN` for a game: it loses that game at once. Any other move
+    that is not legal raises IllegalMoveError naming the player."""
+    from selfplay.errors import IllegalMoveError
+
+    if not isinstance(games, int) or games < 2 or games % 2:
+        raise ConfigError(f"a match needs an even number of games >= 2 (each side moves first equally "
+                          f"often), got {games}")
     t0 = time.perf_counter()
     openings = random_openings(game, games // 2, opening_plies, seed) if opening_plies else [[] for _ in range(games // 2)]
-    states, first, rngs = [], [], []
+    states, first, rngs, moves = [], [], [], []
     for i in range(games):
         states.append(game.play_sequence(openings[i // 2]))
         first.append(i % 2 == 0)  # player moves first (is player 0) in even-numbered games
         rngs.append(np.random.default_rng([seed, i]))
+        moves.append(list(openings[i // 2]))
     seat_of_player = [0 if f else 1 for f in first]
+    resigned: dict[int, int] = {}  # game -> seat that resigned
     active = [i for i in range(games) if not game.is_terminal(states[i])]
     while active:
         movers: dict[int, list[int]] = {0: [], 1: []}  # 0: player to move, 1: opponent to move
@@ -273,14 +304,35 @@ def play_match(game: Game, player: Player, opponent: Player, games: int, *, seed
             if not idx:
                 continue
             chooser = player if who == 0 else opponent
-            actions = chooser.choose(game, [states[i] for i in idx], [rngs[i] for i in idx])
+            picked = [states[i] for i in idx]
+            if getattr(chooser, "needs_moves", False):
+                actions = chooser.choose(game, picked, [rngs[i] for i in idx], moves=[moves[i] for i in idx])
+            else:
+                actions = chooser.choose(game, picked, [rngs[i] for i in idx])
             for i, a in zip(idx, actions):
-                states[i] = game.play(states[i], int(a))
-        active = [i for i in active if not game.is_terminal(states[i])]
+                a = int(a)
+                if a == RESIGN:
+                    resigned[i] = game.to_play(states[i])
+                    continue
+                if not (0 <= a < game.num_actions and game.legal_mask(states[i])[a]):
+                    shown = game.action_to_text(a) if 0 <= a < game.num_actions else str(a)
+                    raise IllegalMoveError(f"{chooser.name} chose the illegal move {shown} in game {i} "
+                                           f"after {len(moves[i])} moves")
+                states[i] = game.play(states[i], a)
+                moves[i].append(a)
+        active = [i for i in active if i not in resigned and not game.is_terminal(states[i])]
     res = MatchResult(player=player.name, opponent=opponent.name, games=games, wins=0, draws=0, losses=0)
     for i, s in enumerate(states):
-        z = game.value_for_mover(s, seat_of_player[i])
-        res.lengths.append(game.move_count(s))
+        if i in resigned:
+            z = -1.0 if resigned[i] == seat_of_player[i] else 1.0
+            ended_by = "resign"
+        else:
+            z = game.value_for_mover(s, seat_of_player[i])
+            ended_by = "rules" if not _at_move_cap(game, s) else "move_cap"
+        res.lengths.append(len(moves[i]))
+        first_view = int(z if first[i] else -z)
+        res.outcomes.append(GameOutcome(index=i, player_first=first[i], result=first_view, moves=len(moves[i]),
+                                        ended_by=ended_by, opening=list(openings[i // 2]), actions=moves[i]))
         if z > 0:
             res.wins += 1
             res.wins_as_first += first[i]
@@ -296,3 +348,9 @@ def play_match(game: Game, player: Player, opponent: Player, games: int, *, seed
         metrics_log.write(opponent=opponent.name, player=player.name, games=res.games, wins=res.wins,
                           draws=res.draws, losses=res.losses, elo=res.elo)
     return res
+
+
+def _at_move_cap(game: Game, state: Any) -> bool:
+    """True when a game ended only because it reached the move cap (Go: not by two passes)."""
+    passes = getattr(state, "passes", None)
+    return passes is not None and passes < 2 and game.move_count(state) >= game.max_moves
