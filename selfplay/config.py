@@ -8,6 +8,7 @@ A run is described by a :class:`RunConfig` with the sections
 - ``[worker]``   how each self-play worker plays (:class:`WorkerConfig`),
 - ``[replay]``   shards, catalog and the replay window (:class:`selfplay.replay.config.ReplayConfig`),
 - ``[learner]``  the trainer (:class:`selfplay.learner.LearnerConfig`),
+- ``[evaluation]`` rated games during the run, for the Elo ladder (:class:`EvaluationConfig`),
 - ``[run]``      how many workers, the seed and the stop conditions (:class:`RunSection`).
 
 Every field carries a description; :func:`dump_config` writes each one above its value, so a
@@ -90,6 +91,59 @@ class WorkerConfig(BaseModel):
     )
 
 
+class EvaluationConfig(BaseModel):
+    """Rated evaluation games during the run, feeding the Elo ladder (`selfplay ladder`).
+
+    Every few snapshots, a bounded match of the newest one against earlier rated snapshots (and
+    an optional fixed anchor); see docs/strength.md."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    enabled: bool = Field(False, description="play rated evaluation games while the run goes (off by default: "
+                          "they take CPU from self-play)")
+    every_versions: int = Field(
+        5, ge=1, le=100_000,
+        description="evaluate the newest snapshot once it is at least this many versions past the last one evaluated")
+    games: int = Field(20, ge=2, le=10_000, description="games against each opponent (even: each moves first in half)")
+    opponents: int = Field(
+        2, ge=1, le=16,
+        description="earlier rated snapshots each evaluation plays: the last one evaluated, snapshot 1, then "
+        "others spread over the rated ones")
+    simulations: int | None = Field(
+        None, ge=1, le=1_000_000, description="search simulations per move of evaluated snapshots (unset: the run's "
+        "[search] simulations)")
+    anchor: str = Field(
+        "", description="a fixed extra opponent: '' (none), 'mcts' (random-rollout search) or 'gtp:COMMAND' "
+        "(a GTP v2 engine, Go runs only, e.g. 'gtp:/usr/games/gnugo --mode gtp --level 0 --chinese-rules')")
+    anchor_simulations: int | None = Field(
+        None, ge=1, le=1_000_000, description="simulations of the 'mcts' anchor (unset: the same as the snapshots')")
+    opening_moves: int | None = Field(
+        None, ge=0, le=100, description="seeded random moves opening each pair of games (unset: 2, or 4 on "
+        "boards with more than 50 moves)")
+    threads: int = Field(1, ge=1, le=256, description="torch threads of the evaluation (its share of the CPUs)")
+    gtp_timeout: float = Field(60.0, gt=0, le=3600, description="seconds to wait for each reply of a GTP anchor")
+    gate_threshold: float | None = Field(
+        None, gt=0, lt=1,
+        description="gating (AlphaGo Zero): a new snapshot becomes the one workers use only if it scores at least "
+        "this against the current one (0.55 in the paper); unset = no gating, as in AlphaZero")
+    gate_games: int = Field(40, ge=2, le=10_000, description="games of a gating match (even; 400 in AlphaGo Zero)")
+
+    @field_validator("games", "gate_games")
+    @classmethod
+    def _even(cls, v: int) -> int:
+        if v % 2:
+            raise ValueError("must be even, so each player moves first in half the games")
+        return v
+
+    @field_validator("anchor")
+    @classmethod
+    def _anchor_form(cls, v: str) -> str:
+        v = v.strip()
+        if v not in ("", "mcts") and not (v.startswith("gtp:") and v[4:].strip()):
+            raise ValueError("must be '', 'mcts' or 'gtp:COMMAND'")
+        return v
+
+
 class RunSection(BaseModel):
     """Workers, seed and stop conditions of one run (the only section a resumed run may change)."""
 
@@ -138,6 +192,7 @@ class RunConfig(BaseModel):
     worker: WorkerConfig = Field(default_factory=WorkerConfig, description="self-play workers")
     replay: ReplayConfig = Field(default_factory=ReplayConfig, description="record storage and replay window")
     learner: LearnerConfig = Field(default_factory=LearnerConfig, description="the learner")
+    evaluation: EvaluationConfig = Field(default_factory=EvaluationConfig, description="rated evaluation games")
     run: RunSection = Field(default_factory=RunSection, description="workers, seed and stop conditions")
 
     def has_stop_condition(self) -> bool:

@@ -138,8 +138,11 @@ class RunPlayers:
 
     def gtp_player(self, command: str, timeout: float, name: str | None = None) -> tuple[RatedPlayer, Any]:
         """An outside GTP engine as a player; returns it and its client (close it after use)."""
-        from selfplay.gtp.client import GtpClient, GtpPlayer
+        from selfplay.games.go import GoGame
+        from selfplay.gtp.client import GtpClient, GtpError, GtpPlayer
 
+        if not isinstance(self.game, GoGame):
+            raise GtpError(f"a GTP engine plays Go; run {self.run.root} plays {self.game.name}")
         client = GtpClient(command, timeout=timeout)
         try:
             gp = GtpPlayer(client, self.game, name=name)
