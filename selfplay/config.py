@@ -145,7 +145,7 @@ class EvaluationConfig(BaseModel):
 
 
 class RunSection(BaseModel):
-    """Workers, seed and stop conditions of one run (the only section a resumed run may change)."""
+    """Workers, seed and stop conditions of one run (a resumed run may change it, as it may [evaluation])."""
 
     model_config = ConfigDict(extra="forbid")
 
@@ -199,16 +199,18 @@ class RunConfig(BaseModel):
         return bool(self.run.games or self.run.positions or self.run.minutes)
 
     def identity(self) -> dict[str, Any]:
-        """The sections that fix what a run directory holds (everything but ``[run]``).
+        """The sections that fix what a run directory holds (all but :data:`RESUMABLE_SECTIONS`).
 
         A run directory may only be resumed with a config whose identity is the same."""
         data = self.model_dump(mode="json")
-        data.pop("run")
+        for section in RESUMABLE_SECTIONS:
+            data.pop(section)
         return data
 
 
-#: sections a resumed run may change (the rest must match run.toml)
-RESUMABLE_SECTIONS = ("run",)
+#: sections a resumed run may change (the rest must match run.toml): the stop conditions and
+#: workers, and the evaluation (rated games change no record of the run)
+RESUMABLE_SECTIONS = ("run", "evaluation")
 
 
 # ---- loading -------------------------------------------------------------------------------------

@@ -212,3 +212,13 @@ def test_gating_accepts_only_a_candidate_that_scores_the_threshold(c4_run: Path)
     (c4_run / "accepted-snapshot.json").write_text("{broken")
     with pytest.raises(Exception, match="accepted-snapshot.json is corrupt"):
         role.accepted_version()
+
+
+def test_evaluation_settings_may_change_on_resume() -> None:
+    from selfplay.config import identity_differences
+
+    a = config_from_dict({})
+    b = config_from_dict({"evaluation": {"enabled": True, "games": 40}})
+    assert identity_differences(a, b) == []  # rated games change no record of the run
+    c = config_from_dict({"search": {"simulations": 64}})
+    assert identity_differences(a, c) == ["search.simulations"]
