@@ -217,3 +217,24 @@ def test_client_refuses_nonsense_and_reports_an_exit(tmp_path: Path) -> None:
     with pytest.raises(GtpError, match="exit status 3|stopped before") as err:
         c.send("name")
     assert "cannot load its book" in str(err.value)
+
+
+def test_client_reads_crlf_replies_with_ids_and_leading_blank_lines(tmp_path: Path) -> None:
+    # GTP v2 2.2/2.6: CR is ignored; the reply may carry an id; empty lines before a reply are skipped
+    argv = _peer(tmp_path, """
+        import sys
+        for line in sys.stdin:
+            word = line.split()[0]
+            if word == "name":
+                sys.stdout.write("\\r\\n=12 Dripper\\r\\n\\r\\n")
+            elif word == "list_commands":
+                sys.stdout.write("= name\\nlist_commands\\nquit\\n\\n")
+            else:
+                sys.stdout.write("=\\n\\n")
+                sys.stdout.flush()
+                break
+            sys.stdout.flush()
+    """)
+    with GtpClient(argv, timeout=10) as c:
+        assert c.send("name") == "Dripper"
+        assert c.send("list_commands").split("\n") == ["name", "list_commands", "quit"]

@@ -72,7 +72,7 @@ class GtpClient:
         os.set_blocking(self.proc.stdout.fileno(), False)
         self._selector = selectors.DefaultSelector()
         self._selector.register(self.proc.stdout, selectors.EVENT_READ)
-        self._buffer = b""
+        self._buffer = bytearray()  # bytes read but not yet part of a returned reply
         self.closed = False
 
     # ---- lifecycle ---------------------------------------------------------------------------
@@ -158,14 +158,18 @@ class GtpClient:
         deadline = time.monotonic() + timeout
         assert self.proc.stdout is not None
         fd = self.proc.stdout.fileno()
+        scanned = 0  # bytes of the buffer already searched for the end of the reply
         while True:
-            self._buffer = self._buffer.replace(b"\r", b"")
             # empty lines before a reply are allowed; a reply ends at the first "\n\n" after text
-            stripped = self._buffer.lstrip(b"\n")
-            end = stripped.find(b"\n\n")
+            if self._buffer.startswith(b"\n"):
+                self._buffer = bytearray(self._buffer.lstrip(b"\n"))
+                scanned = 0
+            end = self._buffer.find(b"\n\n", max(0, scanned - 1))
             if end >= 0:
-                reply, self._buffer = stripped[:end], stripped[end + 2:]
+                reply = bytes(self._buffer[:end])
+                del self._buffer[:end + 2]
                 return reply.decode("utf-8", "replace")
+            scanned = len(self._buffer)
             if len(self._buffer) > self.max_reply_bytes:
                 raise self._fail(f"sent more than {self.max_reply_bytes} bytes without ending its reply to {command!r}")
             left = deadline - time.monotonic()
@@ -180,7 +184,7 @@ class GtpClient:
             if not chunk:
                 code = self.proc.wait(timeout=5) if self.proc.poll() is None else self.proc.poll()
                 raise self._fail(f"closed its output while answering {command!r} (exit status {code})")
-            self._buffer += chunk
+            self._buffer += chunk.replace(b"\r", b"")  # CR is dropped (GTP v2, section 2.2)
 
     def _parse_reply(self, command: str, raw: str) -> str:
         if not raw or raw[0] not in "=?":
