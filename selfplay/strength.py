@@ -71,6 +71,8 @@ class RunPlayers:
     def resolve(self, spec: str) -> int | str:
         """A player spec as a snapshot version, or ``"mcts"``. ConfigError/SnapshotError naming
         the spec when it is none of: a version (``12`` or ``v12``), ``latest``, ``mcts``."""
+        from selfplay.snapshots import _same_options
+
         text = str(spec).strip().lower()
         if text == "mcts":
             return "mcts"
@@ -92,6 +94,8 @@ class RunPlayers:
 
     def check_same_game(self, versions: list[int]) -> None:
         """SnapshotError naming both when two snapshots are for different games or options."""
+        from selfplay.snapshots import _same_options
+
         infos = [self.store.info(v) for v in versions]
         for a in infos:
             for b in infos:
@@ -150,12 +154,6 @@ class RunPlayers:
             client.kill()
             raise
         return RatedPlayer(gp, gp.name, "gtp", None, gp.settings()), client
-
-
-def _same_options(a: Any, b: Any) -> bool:
-    import json
-
-    return json.dumps(dict(a), sort_keys=True) == json.dumps(dict(b), sort_keys=True)
 
 
 def default_opening_moves(game: Any) -> int:

@@ -40,13 +40,18 @@ def go_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return make_run(tmp_path_factory.mktemp("gnugo") / "run", "go", {"size": 5, "komi": 7.5}, snapshots=1).root
 
 
-def _referee(ours: GtpClient, gnugo: GtpClient, ours_colour: int, komi: float) -> dict:
-    game = GoGame(size=5, komi=komi)
-    state = game.initial_state()
-    for c in (ours, gnugo):
-        c.send("boardsize 5")
+def _new_game(clients: tuple[GtpClient, ...], size: int, komi: float) -> GoGame:
+    """Our referee's rules for a new game, and every engine told the board and komi."""
+    for c in clients:
+        c.send(f"boardsize {size}")
         c.send("clear_board")
         c.send(f"komi {komi:g}")
+    return GoGame(size=size, komi=komi)
+
+
+def _referee(ours: GtpClient, gnugo: GtpClient, ours_colour: int, komi: float) -> dict:
+    game = _new_game((ours, gnugo), 5, komi)
+    state = game.initial_state()
     engines = {ours_colour: ours, 1 - ours_colour: gnugo}
     resigned = None
     while not game.is_terminal(state):
@@ -98,12 +103,8 @@ def test_gnugo_self_play_followed_by_selfplay_gtp_scores_alike(tmp_path: Path) -
             # later komi command changed the komi (a cached status), so one process would compare
             # one game's score under another game's komi
             with GtpClient(f"{GNUGO} {GNUGO_RULES} --level 0", timeout=60) as gnugo:
-                game = GoGame(size=7, komi=komi)
+                game = _new_game((ours, gnugo), 7, komi)
                 state = game.initial_state()
-                for c in (ours, gnugo):
-                    c.send("boardsize 7")
-                    c.send("clear_board")
-                    c.send(f"komi {komi:g}")
                 gnugo.send(f"set_random_seed {seed}")
                 while not game.is_terminal(state):
                     colour = colour_text(game.to_play(state))
