@@ -238,3 +238,64 @@ def test_client_reads_crlf_replies_with_ids_and_leading_blank_lines(tmp_path: Pa
     with GtpClient(argv, timeout=10) as c:
         assert c.send("name") == "Dripper"
         assert c.send("list_commands").split("\n") == ["name", "list_commands", "quit"]
+
+
+_SCRIPTED_ENGINE = """
+    import sys
+    GENMOVE = {genmove!r}
+    for line in sys.stdin:
+        words = line.split()
+        if not words:
+            continue
+        if words[0] == "name":
+            reply = "scripted"
+        elif words[0] == "version":
+            reply = "1"
+        elif words[0] == "genmove":
+            reply = GENMOVE
+        else:
+            reply = ""
+        sys.stdout.write("= " + reply + "\\n\\n")
+        sys.stdout.flush()
+        if words[0] == "quit":
+            break
+"""
+
+
+def test_a_gtp_opponent_that_resigns_loses_every_game(tmp_path: Path, go_run: Path) -> None:
+    from selfplay.evaluation import play_match
+    from selfplay.gtp.client import GtpPlayer
+    from selfplay.strength import RunPlayers
+
+    players = RunPlayers(go_run)
+    snap = players.player(1, 4)
+    with GtpClient(_peer(tmp_path, _SCRIPTED_ENGINE.format(genmove="resign")), timeout=10) as c:
+        opp = GtpPlayer(c, players.game)
+        assert opp.name.startswith("gtp:scripted 1 [")
+        res = play_match(players.game, snap.player, opp, 4, seed=1, opening_plies=2)
+    assert (res.wins, res.losses) == (4, 0)
+    assert {o.ended_by for o in res.outcomes} == {"resign"}
+
+
+def test_an_illegal_move_from_a_gtp_opponent_is_named(tmp_path: Path, go_run: Path) -> None:
+    from selfplay.errors import IllegalMoveError
+    from selfplay.evaluation import play_match
+    from selfplay.gtp.client import GtpPlayer
+    from selfplay.strength import RunPlayers
+
+    players = RunPlayers(go_run)
+    snap = players.player(1, 4)
+    # C3 again and again: occupied from its second time on
+    with GtpClient(_peer(tmp_path, _SCRIPTED_ENGINE.format(genmove="C3")), timeout=10) as c:
+        with pytest.raises(IllegalMoveError, match="gtp:scripted .* chose the illegal move C3"):
+            play_match(players.game, snap.player, GtpPlayer(c, players.game), 2, seed=1)
+    with GtpClient(_peer(tmp_path, _SCRIPTED_ENGINE.format(genmove="banana")), timeout=10) as c:
+        with pytest.raises(GtpError, match="not a vertex"):
+            play_match(players.game, snap.player, GtpPlayer(c, players.game), 2, seed=1)
+
+
+def test_selfplay_gtp_names_a_missing_snapshot(go_run: Path, capsys: pytest.CaptureFixture) -> None:
+    from selfplay.cli import main
+
+    assert main(["gtp", str(go_run), "--snapshot", "99"]) == 2
+    assert "snapshot 99 does not exist" in capsys.readouterr().err

@@ -146,3 +146,20 @@ def test_opponent_gtp_that_does_not_start(go_run: Path, capsys: pytest.CaptureFi
     code = main(["match", str(go_run), "1", "--opponent-gtp", "/nonexistent/engine --mode gtp", "--games", "2"])
     assert code == 2
     assert "cannot be started" in capsys.readouterr().err
+
+
+def test_evaluation_role_with_gnugo_as_anchor(tmp_path: Path) -> None:
+    from selfplay.config import config_from_dict, load_config
+    from selfplay.roles.evaluation import EvaluationRole
+
+    run = make_run(tmp_path / "run", "go", {"size": 5, "komi": 7.5}, snapshots=3, simulations=4).root
+    data = load_config(run / "run.toml").model_dump(mode="json")
+    data["evaluation"].update(enabled=True, every_versions=2, games=2, opponents=1,
+                              anchor=f"gtp:{GNUGO} {GNUGO_RULES} --level 0")
+    role = EvaluationRole(run, config_from_dict(data))
+    line = role.step()
+    assert line is not None and line["snapshot_version"] == 3
+    assert line["opponents"][0] == "v1@4" and line["opponents"][1].startswith("gtp:GNU Go 3.8")
+    assert line["games"] == 4
+    rows = {r["player"]: r for r in ladder(run)["players"]}
+    assert line["opponents"][1] in rows and rows["v3@4"]["elo"] == line["elo"]
