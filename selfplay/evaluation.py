@@ -13,6 +13,12 @@ Players:
 - :class:`SearchPlayer` — guided search with an evaluator (a snapshot's network, or random
   rollouts for the pure-MCTS baseline), no root noise, temperature 0.
 - :class:`RandomPlayer` — a uniformly random legal move.
+- :class:`selfplay.gtp.client.GtpPlayer` — an outside engine over GTP v2 (it is told each
+  game's moves: ``needs_moves``).
+
+:func:`play_match` returns every game's :class:`GameOutcome` too; a player may resign a game by
+choosing :data:`RESIGN`. Rated matches stored in a run and the Elo ladder fitted over all of them
+are in :mod:`selfplay.strength` and :mod:`selfplay.ratings`.
 
 Elo (Elo's rating system): a rating difference D gives the expected score
 ``E = 1 / (1 + 10^(-D / 400))``; conversely a measured score s gives ``D = -400 log10(1/s - 1)``.
