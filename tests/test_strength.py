@@ -222,3 +222,26 @@ def test_evaluation_settings_may_change_on_resume() -> None:
     assert identity_differences(a, b) == []  # rated games change no record of the run
     c = config_from_dict({"search": {"simulations": 64}})
     assert identity_differences(a, c) == ["search.simulations"]
+
+
+def test_a_failing_anchor_or_snapshot_never_stops_the_run(c4_run: Path) -> None:
+    from selfplay.roles.evaluation import FAILED_OPPONENT, EvaluationRole
+
+    _enable_evaluation(c4_run, every_versions=2, games=2, opponents=1, simulations=4)
+    data = load_config(c4_run / "run.toml").model_dump(mode="json")
+    data["evaluation"]["anchor"] = "gtp:/nonexistent/engine --mode gtp"
+    cfg = config_from_dict(data)
+    role = EvaluationRole(c4_run, cfg)
+    line = role.step()  # the GTP anchor cannot play four-in-a-row: named, the round goes on
+    assert line["opponents"] == ["v1@4"] and line["games"] == 2
+    assert "plays Go" in line["errors"][0]["error"]
+    # a newest snapshot whose weights are damaged: one "failed" line, not retried
+    store = SnapshotStore(c4_run)
+    for seed in (20, 21):
+        store.publish(build_network(make_game("fourinrow"), cfg.network, seed=seed))
+    weights = c4_run / "snapshots" / "000006.safetensors"
+    weights.write_bytes(weights.read_bytes()[:-64] + b"\0" * 64)
+    failed = role.step()
+    assert failed["opponent"] == FAILED_OPPONENT and failed["snapshot_version"] == 6
+    assert "checksum" in failed["error"]
+    assert role.step() is None

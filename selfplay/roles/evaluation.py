@@ -34,14 +34,16 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
-from selfplay.errors import ConfigError
+from selfplay.errors import ConfigError, SelfplayError
 from selfplay.metrics import MetricsLog
 from selfplay.rundir import RunDir
 
 #: the ``opponent`` field of the role's metric lines (the round's games rated on the ladder)
 LADDER_OPPONENT = "ladder"
+#: the ``opponent`` field of the line of a round that failed as a whole
+FAILED_OPPONENT = "failed"
 
 
 class EvaluationRole:
@@ -60,6 +62,8 @@ class EvaluationRole:
         self.metrics = MetricsLog(self.run.metrics, "eval", source)
         self.seed = self.config.run.seed if seed is None else seed
         self.rounds = 0
+        #: versions whose round failed in this process -> the reason (not tried again)
+        self.failed: dict[int, str] = {}
 
     # ---- what is rated -----------------------------------------------------------------------
     def _stored(self) -> tuple[list[Any], dict[str, Any]]:
@@ -90,6 +94,8 @@ class EvaluationRole:
         if not self.settings.enabled:
             return None
         latest = self.players.store.latest_version()
+        if latest in self.failed:
+            return None
         done = self.evaluated_versions()
         last = done[-1] if done else 1
         if latest >= last + self.settings.every_versions:
@@ -116,11 +122,20 @@ class EvaluationRole:
 
     # ---- a round -----------------------------------------------------------------------------
     def step(self) -> dict[str, Any] | None:
-        """Evaluate the due snapshot, if any (a bounded number of games); return the metric line."""
+        """Evaluate the due snapshot, if any (a bounded number of games); return the metric line.
+
+        A round that fails as a whole (the snapshot does not load, no opponent could be played)
+        never stops the run: it writes a line with opponent ``"failed"`` and ``error``, and this
+        role does not try that version again (a newer one is evaluated when it is due)."""
         version = self.due()
         if version is None:
             return None
-        return self.evaluate(version)
+        try:
+            return self.evaluate(version)
+        except SelfplayError as exc:
+            self.failed[version] = str(exc)
+            return self.metrics.write(player=f"v{version}", opponent=FAILED_OPPONENT, snapshot_version=version,
+                                      games=0, wins=0, draws=0, losses=0, error=str(exc))
 
     def run_pending(self, max_rounds: int = 10) -> list[dict[str, Any]]:
         """Evaluate until nothing is due (at most ``max_rounds`` rounds); return the metric lines."""
@@ -134,43 +149,56 @@ class EvaluationRole:
 
     def evaluate(self, version: int) -> dict[str, Any]:
         """Play ``version`` against its opponents and the anchor, store the games, refit the ladder
-        and write the ``eval`` metric line (returned)."""
+        and write the ``eval`` metric line (returned).
+
+        An opponent that fails (a GTP anchor that does not start or stops answering, a snapshot
+        that does not load) is named in the line's ``errors`` and the round goes on without it;
+        SelfplayError if no opponent could be played."""
         from selfplay.strength import ladder, play_rated_match
 
         t0 = time.time()
         subject = self.players.player(version, self.simulations)
         totals = {"games": 0, "wins": 0, "draws": 0, "losses": 0}
-        names = []
-        opponents: list[tuple[Any, Any]] = []
-        for v in self.opponents_for(version):
-            opponents.append((self.players.player(v, self.simulations), None))
+        names: list[str] = []
+        errors: list[dict[str, str]] = []
+        makers: list[tuple[str, Callable[[], tuple[Any, Any]]]] = [
+            (f"v{v}", lambda v=v: (self.players.player(v, self.simulations), None)) for v in self.opponents_for(version)]
         anchor = self.settings.anchor
         if anchor == "mcts":
-            opponents.append((self.players.mcts_player(self.settings.anchor_simulations or self.simulations), None))
+            sims = self.settings.anchor_simulations or self.simulations
+            makers.append(("mcts", lambda: (self.players.mcts_player(sims), None)))
         elif anchor.startswith("gtp:"):
-            opponents.append(self.players.gtp_player(anchor[4:].strip(), timeout=self.settings.gtp_timeout))
-        if not opponents:
+            makers.append((anchor, lambda: self.players.gtp_player(anchor[4:].strip(), timeout=self.settings.gtp_timeout)))
+        if not makers:
             raise ConfigError(f"evaluation of snapshot {version}: no earlier snapshot and no anchor to play")
-        try:
-            for k, (opp, _client) in enumerate(opponents):
+        for k, (label, make) in enumerate(makers):
+            client = None
+            try:
+                opp, client = make()
                 res = play_rated_match(self.players, subject, opp, self.settings.games,
                                        seed=self.seed * 1_000_003 + version * 101 + k,
                                        opening_moves=self.settings.opening_moves, origin="eval",
                                        match_id=f"eval:{subject.name}:{opp.name}")
-                names.append(opp.name)
-                for key in totals:
-                    totals[key] += getattr(res, key)
-        finally:
-            for _, client in opponents:
+            except SelfplayError as exc:
+                errors.append({"opponent": label, "error": str(exc)})
+                continue
+            finally:
                 if client is not None:
                     client.close()
+            names.append(opp.name)
+            for key in totals:
+                totals[key] += getattr(res, key)
+        if not names:
+            raise SelfplayError(f"evaluation of snapshot {version}: no opponent could be played: "
+                                + "; ".join(f"{e['opponent']}: {e['error']}" for e in errors))
         table = ladder(self.run)
         row = next((r for r in table["players"] if r["player"] == subject.name), {})
         self.rounds += 1
+        extra = {"errors": errors} if errors else {}
         return self.metrics.write(player=subject.name, opponent=LADDER_OPPONENT, snapshot_version=version,
                                   **totals, elo=row.get("elo"), elo_low=row.get("elo_low"),
                                   elo_high=row.get("elo_high"), anchor=table["anchor"], opponents=names,
-                                  simulations=self.simulations, seconds=round(time.time() - t0, 3))
+                                  simulations=self.simulations, seconds=round(time.time() - t0, 3), **extra)
 
     # ---- gating ------------------------------------------------------------------------------
     def gate(self, candidate: int, current: int) -> bool:
@@ -236,4 +264,4 @@ class EvaluationRole:
         return current
 
 
-__all__ = ["EvaluationRole", "LADDER_OPPONENT"]
+__all__ = ["EvaluationRole", "FAILED_OPPONENT", "LADDER_OPPONENT"]
