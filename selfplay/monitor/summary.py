@@ -547,17 +547,20 @@ class RunMonitor:
         lag = None if version is None or latest_version is None else max(0, latest_version - version)
         pub = self.snapshot_times.get(version) if version is not None else None
         age = None if pub is None else max(0.0, ref - pub)
-        evals_ps = window_rate_per_second([e], ref, born, w) if len(e) >= 1 and e.last_value > 0 else None
+        # the recent window is the run's (same span for every worker, so the workers' rates add
+        # up to the run's); since-start is over the worker's own life
+        wstart = start if start is not None else born
+        evals_ps = window_rate_per_second([e], ref, wstart, w) if len(e) >= 1 and e.last_value > 0 else None
         if evals_ps is None:
             evals_ps = _num(last.get("evals_per_second"))
-        pps = window_rate_per_second([p], ref, born, w) if len(p) else _num(last.get("positions_per_second"))
+        pps = window_rate_per_second([p], ref, wstart, w) if len(p) else _num(last.get("positions_per_second"))
         # since its start: what it reported last over the time from its start to that report
         since = since_start_rate_per_second([g], st.last_t, born) if len(g) else None
         return {
             "id": st.source,
             "games": int(g.value_at(ref)),
             "positions": int(p.value_at(ref)),
-            "games_per_hour": _round(per_hour(window_rate_per_second([g], ref, born, w)) if len(g) else None, 2),
+            "games_per_hour": _round(per_hour(window_rate_per_second([g], ref, wstart, w)) if len(g) else None, 2),
             "games_per_hour_since_start": _round(per_hour(since), 2),
             "started_at": born,
             "positions_per_second": _round(pps, 3),
