@@ -164,17 +164,17 @@ def test_games_the_catalog_lacks_are_waiting_only_while_running(run: Path) -> No
                       buffer(now - 2, 13, pos + 27), run_line(now - 1, "heartbeat")])
     s = compute_summary(run)
     assert s["counts_source"] == "catalog" and s["games"] == 10
-    assert (s["games_pending"], s["games_not_stored"]) == (3, None)
+    assert (s["pending_games"], s["unstored_games"]) == (3, None)
     assert "not yet in the catalog" in frame_text(s)
     # the same run after a crash: the 3 are not waiting for anything any more
     mon = RunMonitor(run)
     mon.refresh()
     crashed = mon.summary(wall_now=now + 300)
     assert crashed["state"] == "crashed"
-    assert (crashed["games_pending"], crashed["games_not_stored"]) == (None, 3)
+    assert (crashed["pending_games"], crashed["unstored_games"]) == (None, 3)
     text = frame_text(crashed)
     assert "waiting" not in text and "never stored" in text
-    assert "selfplay_games_not_stored 3.0" in exposition_text(crashed)
+    assert "selfplay_unstored_games 3.0" in exposition_text(crashed)
 
 
 def test_a_stopped_runs_buffer_and_learner_figures_are_what_it_stored(run: Path) -> None:

@@ -123,10 +123,10 @@ def render_summary(s: Summary) -> RenderableType:
         head.append(f"\nwarning: {s['metrics_bad_lines']} malformed line(s) in metrics.jsonl skipped", style="yellow")
     snap = s.get("latest_snapshot") or {}
     games = fmt_num(s.get("games"))
-    if s.get("games_pending"):
-        games += f" (+{fmt_num(s['games_pending'])} accepted, not yet in the catalog)"
-    if s.get("games_not_stored"):
-        games += (f" ({fmt_num(s['games_not_stored'])} more reported but never stored: lost unless "
+    if s.get("pending_games"):
+        games += f" (+{fmt_num(s['pending_games'])} accepted, not yet in the catalog)"
+    if s.get("unstored_games"):
+        games += (f" ({fmt_num(s['unstored_games'])} more reported but never stored: lost unless "
                   f"a resume recovers them)")
     n_workers = len(s.get("workers") or [])
     if running:
@@ -139,7 +139,7 @@ def render_summary(s: Summary) -> RenderableType:
         (f"games/h, last {window}", fmt_num(s.get("games_per_hour"))),
         ("games/h, since start", fmt_num(s.get("games_per_hour_since_start"))),
         (f"positions/s, last {window}", fmt_num(s.get("positions_per_second"))),
-        ("evaluations/s", fmt_num(s.get("evals_per_second"))),
+        ("network evals/s", fmt_num(s.get("evals_per_second"))),
         workers_row,
     ])
     fresh = _kv_table("freshness", [
@@ -202,9 +202,9 @@ def render_summary(s: Summary) -> RenderableType:
         if len(shown) > limit:
             wt.caption = f"{len(shown) - limit} more workers not shown (selfplay status --json lists all)"
         parts += [Text(""), wt]
-    evals = s.get("evaluations") or []
+    evals = s.get("eval_matches") or []
     if evals:
-        et = Table(title="evaluations", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+        et = Table(title="evaluation matches", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
         for col in ("opponent", "games", "wins", "draws", "losses", "elo"):
             et.add_column(col, justify="left" if col == "opponent" else "right")
         for e in evals:

@@ -41,6 +41,7 @@ from selfplay.records import GameRecord
 from selfplay.replay import codec
 from selfplay.replay.batch import BatchBuilder
 from selfplay.replay.reader import game_key, make_record_game, newest_records, run_toml_game
+from selfplay.overwrite import check_output
 from selfplay.rundir import RunDir
 
 
@@ -89,8 +90,7 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
     out = Path(out)
     if last is not None and last < 1:
         raise RunDirError(f"--last {last}: the number of positions must be >= 1")
-    if out.exists() and not overwrite:
-        raise RunDirError(f"output {str(out)!r} exists; pass --overwrite to replace it")
+    check_output(out, overwrite)
     if out.suffix != ".npz":
         raise RunDirError(f"output {str(out)!r} must end in .npz")
     if not out.parent.exists():
