@@ -54,9 +54,10 @@ COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
 #: fields kept per line when every line is kept (``keep_rows``, for the report's plots)
 ROW_FIELDS_KEPT = frozenset({
     "t", "component", "source", "snapshot_version", "games_total", "step", "loss", "loss_policy",
-    "loss_value", "loss_l2", "resign_disabled_games_total", "resign_probe_triggered_total",
+    "loss_value", "loss_l2", "learning_rate", "reuse_ratio", "samples_trained_total",
+    "window_positions", "window_capacity", "resign_disabled_games_total", "resign_probe_triggered_total",
     "resign_false_positives_total", "opponent", "player", "games", "wins", "draws", "losses", "elo",
-    "version", "published_at",
+    "elo_low", "elo_high", "version", "published_at", "event", "stop_reason", "final",
 })
 
 
@@ -454,7 +455,9 @@ class RunMonitor:
                 source = "workers"
                 games = int(sum(s.value_at(as_of) for s in wrk_g))
                 positions = int(sum(s.value_at(as_of) for s in wrk_p))
-            buffer_fresh = bool(buffers) and max(b.last_t for b in buffers) >= as_of - w
+            # a stopped or crashed run's buffer lines end before its last games were stored:
+            # its rates come from what it stored (the catalog)
+            buffer_fresh = running and bool(buffers) and max(b.last_t for b in buffers) >= as_of - w
             span = window_span(as_of, start, w)
             if buffer_fresh or (cat is None and buffers):
                 rates_source = "buffer"
