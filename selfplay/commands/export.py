@@ -7,17 +7,8 @@ from __future__ import annotations
 
 import argparse
 
+from selfplay.commands.argtypes import positive_int
 from selfplay.errors import ConfigError
-
-
-def _positive(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"{v} must be >= 1")
-    return v
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -29,7 +20,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("run", metavar="RUN", help="run directory")
     p.add_argument("--format", choices=["npz"], default="npz", help="output format (npz)")
     p.add_argument("--out", required=True, metavar="FILE", help="output file, ending in .npz")
-    p.add_argument("--last", type=_positive, metavar="N", help="only the newest N positions")
+    p.add_argument("--last", type=positive_int, metavar="N", help="only the newest N positions")
     p.add_argument("--compress", action="store_true", help="deflate the arrays inside the .npz")
     p.add_argument("--overwrite", action="store_true", help="replace FILE if it exists")
     p.add_argument("--reduced-policies", action="store_true",

@@ -11,15 +11,7 @@ import dataclasses
 import json
 import sys
 
-
-def _positive(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"{v} must be >= 1")
-    return v
+from selfplay.commands.argtypes import positive_int
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -28,7 +20,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         description="List the committed games of RUN in commit order: id, worker, snapshot "
         "versions, length in moves, result (player 0's view), resignation and finish time.")
     p.add_argument("run", metavar="RUN", help="run directory")
-    p.add_argument("--last", type=_positive, metavar="N", help="only the newest N games")
+    p.add_argument("--last", type=positive_int, metavar="N", help="only the newest N games")
     p.add_argument("--json", action="store_true", help="print one JSON object per game, one per line")
     p.set_defaults(func=run)
 

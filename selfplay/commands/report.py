@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+from selfplay.commands.argtypes import positive_int
+
 
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
@@ -15,7 +17,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("run", metavar="RUN", help="run directory")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the PNGs and index.html")
     p.add_argument("--overwrite", action="store_true", help="write into DIR even if it is not empty")
-    p.add_argument("--last", type=int, default=2000, metavar="N",
+    p.add_argument("--last", type=positive_int, default=2000, metavar="N",
                    help="the newest N committed games feed the record-based plots (default 2000)")
     p.set_defaults(func=run)
 

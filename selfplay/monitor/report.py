@@ -33,6 +33,7 @@ import io
 import json
 import math
 import os
+import sqlite3
 import textwrap
 import time
 import tomllib
@@ -215,9 +216,8 @@ class ReportBuilder:
                 return cat.game_rows()
             finally:
                 cat.close()
-        except (SelfplayError, Exception) as exc:  # noqa: BLE001 - a damaged catalog: plots say so
-            self.catalog_problem = str(exc)
-            return []
+        except (SelfplayError, sqlite3.Error):
+            return []  # unreadable now: the status block names why (catalog_error)
 
     def _plot(self, file: str, title: str, draw: Callable[[Any], str | None], size=(8, 4.5), panels: int = 1) -> None:
         fig, axes = plt.subplots(1, panels, figsize=size)
@@ -410,29 +410,26 @@ class ReportBuilder:
         ax.grid(alpha=0.3)
         return f"{len(total)} learner report(s); last loss {total[-1][1]:.4g}"
 
-    def draw_learning_rate(self, ax: Any) -> str | None:
-        pts = self._learner_series("learning_rate")
+    def _learner_field(self, ax: Any, key: str, what: str, ylabel: str, **style: Any) -> str:
+        """One learner field against the step (whole-number step ticks, y from 0)."""
+        pts = self._learner_series(key)
         if not pts:
-            raise Empty("no learner lines with a learning rate")
-        _line(ax, [p[0] for p in pts], [p[1] for p in pts], drawstyle="steps-post", color="tab:green")
+            raise Empty(f"no learner lines with {what}")
+        _line(ax, [p[0] for p in pts], [p[1] for p in pts], **style)
         ax.set_xlabel("learner step")
-        ax.set_ylabel("learning rate")
+        ax.set_ylabel(ylabel)
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.set_ylim(bottom=0)
         ax.grid(alpha=0.3)
         return f"last {pts[-1][1]:.3g}"
 
+    def draw_learning_rate(self, ax: Any) -> str | None:
+        return self._learner_field(ax, "learning_rate", "a learning rate", "learning rate",
+                                   drawstyle="steps-post", color="tab:green")
+
     def draw_sample_reuse(self, ax: Any) -> str | None:
-        pts = self._learner_series("reuse_ratio")
-        if not pts:
-            raise Empty("no learner lines with a reuse ratio")
-        _line(ax, [p[0] for p in pts], [p[1] for p in pts], color="tab:red")
-        ax.set_xlabel("learner step")
-        ax.set_ylabel("samples trained per position generated")
-        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-        ax.set_ylim(bottom=0)
-        ax.grid(alpha=0.3)
-        return f"last {pts[-1][1]:.3g}"
+        return self._learner_field(ax, "reuse_ratio", "a reuse ratio", "samples trained per position generated",
+                                   color="tab:red")
 
     def draw_buffer_fill(self, ax: Any) -> str | None:
         by_src: dict[str, CounterSeries] = {}
