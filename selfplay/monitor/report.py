@@ -62,6 +62,10 @@ RESIGN_FALSE_POSITIVE_TARGET = 0.05
 
 NO_DATA = "no data yet"
 
+#: legend of an Elo series by its ``opponent`` field; the evaluation role's ladder lines carry
+#: each snapshot's Bradley–Terry rating (anchor at 0), with its 95 % interval
+ELO_LABELS = {"ladder": "ladder rating (Bradley–Terry, 95% interval)"}
+
 
 @dataclass
 class Plot:
@@ -561,7 +565,7 @@ class ReportBuilder:
             lo = np.array([r["elo_low"] if _finite(r.get("elo_low")) else r["elo"] for r in rs], dtype=float)
             hi = np.array([r["elo_high"] if _finite(r.get("elo_high")) else r["elo"] for r in rs], dtype=float)
             ax.errorbar(xs, ys, yerr=[np.maximum(0, ys - lo), np.maximum(0, hi - ys)], marker="o",
-                        capsize=3, label=f"vs {opp}" if opp != "None" else "rating")
+                        capsize=3, label=ELO_LABELS.get(opp, f"vs {opp}"))
         ax.axhline(0, color="0.6", linewidth=0.8)
         ax.set_xlabel("snapshot version" if use_version else "minutes since start")
         if use_version:
