@@ -19,8 +19,8 @@ from typing import Any
 #: a line stamped further than this ahead of the reader's clock is refused (clock skew between
 #: machines of one cluster stays far below a day)
 FUTURE_TOLERANCE_SECONDS = 86_400.0
-#: largest magnitude a number in a metric line may have (counters are 64-bit at most)
-MAX_ABS_NUMBER = float(2**63)
+#: largest magnitude a number in a metric line may have (counters and ids are 64-bit at most)
+MAX_ABS_NUMBER = float(2**64)
 #: longest ``component`` / ``source`` string accepted
 MAX_NAME_CHARS = 256
 
