@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
@@ -209,3 +211,14 @@ def test_export_skips_what_it_cannot_write_with_a_warning(tmp_path, capsys):
     assert "--overwrite" in capsys.readouterr().err
     assert main(["sgf", "export", str(run), "--out", str(tmp_path / "out"), "--overwrite"]) == 0
     assert (tmp_path / "out" / "go-1.sgf").read_bytes() == before
+
+
+def test_a_self_play_result_the_score_disagrees_with_is_written_as_recorded():
+    rec = synthetic.random_record(GO9, np.random.default_rng(4), "sp-2", snapshot=3)
+    scored = GO9.result_text(GO9.play_sequence([int(a) for a in rec.actions]))
+    # a record whose result is not the Tromp-Taylor winner (e.g. a game adjudicated at the move
+    # cap): the SGF keeps the record's winner and notes the score, instead of failing
+    rec.result = -1 if scored.startswith("B") else 1
+    back = read_sgf(record_to_sgf(rec))
+    assert back.result == ("W+" if rec.result == -1 else "B+")
+    assert json.loads(back.properties["GC"][0])["tromp_taylor_score"] == scored
