@@ -83,6 +83,8 @@ def state_line(s: Summary) -> tuple[str, str]:
     if state == "crashed":
         return (f"crashed: no heartbeat since {fmt_time(s.get('stopped_at'))} "
                 f"({fmt_duration(s.get('idle_seconds'))} ago) and no stop line", "bold red")
+    if state is None:  # only snapshots so far (e.g. a publish into a fresh run directory)
+        return ("not started: no metric lines or games yet", "bold")
     return (f"running · last write {fmt_duration(s.get('idle_seconds'))} ago", "bold green")
 
 
