@@ -14,7 +14,7 @@ from selfplay.games.registry import game_names
 def test_json_has_an_entry_per_game_with_positive_rates(capsys):
     keys = [k for k, (name, _, _) in rules.BENCH_GAMES.items() if name in game_names()]
     assert {"fourinrow", "gomoku15"} <= set(keys)
-    rc = main(["bench", "rules", "--json", "--seconds", "0.02", "--repeats", "2", "--games", ",".join(keys)])
+    rc = main(["bench", "rules", "--json", "--seconds", "0.02", "--repeats", "2", "--game-names", ",".join(keys)])
     assert rc == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["benchmark"] == "rules" and doc["repeats"] == 2
@@ -39,7 +39,7 @@ def test_json_has_an_entry_per_game_with_positive_rates(capsys):
 
 
 def test_table_names_each_game(capsys):
-    rc = main(["bench", "rules", "--seconds", "0.02", "--repeats", "1", "--games", "fourinrow,gomoku15"])
+    rc = main(["bench", "rules", "--seconds", "0.02", "--repeats", "1", "--game-names", "fourinrow,gomoku15"])
     assert rc == 0
     out = capsys.readouterr().out
     assert "four-in-a-row 7x6" in out and "gomoku 15x15" in out and "moves/s" in out
@@ -62,8 +62,8 @@ def test_random_playouts_play_whole_games():
         (["--seconds", "0"], "--seconds"),
         (["--seconds", "-1"], "--seconds"),
         (["--repeats", "0"], "--repeats"),
-        (["--games", "chess"], "chess"),
-        (["--games", ","], "--games"),
+        (["--game-names", "chess"], "chess"),
+        (["--game-names", ","], "--game-names"),
     ],
 )
 def test_bad_arguments_are_named(capsys, args, message):

@@ -181,7 +181,7 @@ def test_replay_benchmark_reports_its_figures(capsys):
 
     from selfplay.cli import main
 
-    assert main(["bench", "replay", "--json", "--games", "3", "--positions", "1500", "--batches", "2",
+    assert main(["bench", "replay", "--json", "--distinct-games", "3", "--positions", "1500", "--batches", "2",
                  "--repeats", "1", "--fill", "2000", "--game", "tictactoe"]) == 0
     figs = json.loads(capsys.readouterr().out)
     for key in ("ingest_ram_positions_per_second", "ingest_disk_positions_per_second",

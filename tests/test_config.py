@@ -149,9 +149,13 @@ def test_config_show_and_check_commands(tmp_path, capsys):
     capsys.readouterr()
     assert main(["config", "check", str(path)]) == 0
     assert "ok" in capsys.readouterr().out
-    # --out never overwrites
+    # --out replaces a file only with --overwrite (the one overwrite rule)
+    path.write_text("# mine\n")
     assert main(["config", "show", "fourinrow", "--out", str(path)]) == 2
-    assert "already exists" in capsys.readouterr().err
+    assert "exists; pass --overwrite" in capsys.readouterr().err
+    assert path.read_text() == "# mine\n"
+    assert main(["config", "show", "fourinrow", "--out", str(path), "--overwrite"]) == 0
+    assert "fourinrow" in path.read_text()
 
     bad = tmp_path / "bad.toml"
     bad.write_text("[run]\nminutes = -3\n")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import threading
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -52,7 +53,12 @@ def test_export_agrees_with_the_records(run, tmp_path):
             # the rules, replaying the move list, are the reference for input and legal moves
             np.testing.assert_array_equal(z["planes"][row], TTT.encode(state))
             np.testing.assert_array_equal(z["mask"][row], TTT.legal_mask(state))
-            np.testing.assert_allclose(z["policy"][row], rec.policy_target(t, 9), rtol=1e-6)
+            # a policy target only where the search had its full budget (playout cap
+            # randomisation, Wu 2019): reduced-search rows are zero and weigh 0
+            full = bool(rec.full_search[t])
+            np.testing.assert_allclose(z["policy"][row], rec.policy_target(t, 9) if full else np.zeros(9), rtol=1e-6)
+            assert z["policy_weight"][row] == (1.0 if full else 0.0)
+            assert z["action"][row] == rec.actions[t] and z["root_value"][row] == np.float32(rec.root_values[t])
             assert z["value"][row] == rec.outcomes[t]
             assert z["snapshot"][row] == rec.snapshot[t] and z["game_index"][row] == gi
             assert z["move_number"][row] == t and z["full_search"][row] == rec.full_search[t]
@@ -61,8 +67,27 @@ def test_export_agrees_with_the_records(run, tmp_path):
         assert z["game_ids"][gi] == rec.game_id
         # the value is the final result from the mover's view
         assert rec.result == (TTT.outcome(state) if TTT.is_terminal(state) else 0)
-    np.testing.assert_allclose(z["policy"].sum(axis=1), 1.0, rtol=1e-6)
+    full = z["full_search"]
+    assert 0 < full.sum() < n  # the synthetic games mix full and reduced searches
+    np.testing.assert_allclose(z["policy"][full].sum(axis=1), 1.0, rtol=1e-6)
+    assert not z["policy"][~full].any()
     assert set(np.unique(z["value"])) <= {-1.0, 0.0, 1.0}
+    # every array the docs list is in the file, and nothing undocumented
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "record-format.md").read_text()
+    export_doc = doc[doc.index("## Export"):]
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    for name in z.files:
+        assert f"`{name}`" in export_doc, f"{name} is not documented in docs/record-format.md"
+        assert f"`{name}`" in readme, f"{name} is not listed in README.md"
+
+
+def test_export_keeps_reduced_policies_when_asked(run, tmp_path):
+    path, recs = run
+    assert main(["export", str(path), "--out", str(tmp_path / "r.npz"), "--reduced-policies"]) == 0
+    z = np.load(tmp_path / "r.npz")
+    rows = [rec.policy_target(t, 9) for rec in recs for t in range(rec.num_positions)]
+    np.testing.assert_allclose(z["policy"], np.array(rows), rtol=1e-6)
+    np.testing.assert_array_equal(z["policy_weight"], z["full_search"].astype(np.float32))
 
 
 def test_export_last_n_is_the_tail(run, tmp_path):

@@ -68,7 +68,7 @@ def test_counts_agree_with_the_catalog(tmp_path: Path) -> None:
     assert s["positions"] == positions == sum(r.num_positions for r in recs)
     assert s["counts"]["catalog"]["shards"] == sql(root, "SELECT count(*) FROM shards")[0]
     # the buffer line the store wrote agrees with the catalog as well; nothing is waiting
-    assert s["counts"]["buffer"]["games"] == games and s["games_pending"] == 0
+    assert s["counts"]["buffer"]["games"] == games and s["pending_games"] == 0
     assert s["buffer"]["duplicates"] == 5
 
 

@@ -63,7 +63,7 @@ def test_text_parses_and_carries_the_status_figures(run: Path) -> None:
     # w1 plays version 0 published at 990; as of 1300 that is 310 s old
     assert got[("selfplay_data_age_seconds", ())] == pytest.approx(310.0)
     # w0: 60000 evaluations over the 300 s window → 200 per second
-    assert got[("selfplay_worker_evaluations_per_second", (("worker", "w0"),))] == pytest.approx(200.0)
+    assert got[("selfplay_worker_evals_per_second", (("worker", "w0"),))] == pytest.approx(200.0)
     assert got[("selfplay_worker_snapshot_version", (("worker", "w1"),))] == 0
     assert got[("selfplay_eval_elo", (("opponent", "mcts-200"),))] == pytest.approx(191.0)
     assert got[("selfplay_buffer_fill_ratio", ())] == pytest.approx(0.0158)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 
@@ -163,3 +165,60 @@ def test_import_into_a_configured_run_takes_its_go_options(tmp_path, capsys):
     (tmp_path / "c4" / "run.toml").write_text('[game]\nname = "fourinrow"\n')
     assert main(["sgf", "import", str(tmp_path / "a.sgf"), "--out", str(tmp_path / "c4")]) == 2
     assert "not go" in capsys.readouterr().err
+
+
+def test_export_keeps_an_imported_result_and_writes_handicap_games(tmp_path, capsys):
+    # an imported game whose recorded result (a win for Black, e.g. on time) is not what the
+    # Tromp-Taylor score of its final board says (White ahead by 5.5): RE stays as recorded
+    on_time = "(;GM[1]FF[4]SZ[9]KM[6.5]RE[B+T];B[ee];W[gc];B[cg];W[];B[])"
+    km65 = make_game("go", size=9, komi=6.5)  # the file's komi
+    # Tromp-Taylor: Black 2 stones, White 1 stone + 6.5 komi, no territory → W+5.5
+    assert km65.result_text(km65.play_sequence([pt(4, 4), pt(2, 6), pt(6, 2), PASS, PASS])) == "W+5.5"
+    (tmp_path / "t.sgf").write_text(on_time)
+    (tmp_path / "h.sgf").write_text(HANDICAP)
+    run = tmp_path / "run"
+    assert main(["sgf", "import", str(tmp_path / "t.sgf"), str(tmp_path / "h.sgf"), "--out", str(run)]) == 0
+    capsys.readouterr()
+    assert main(["sgf", "export", str(run), "--out", str(tmp_path / "out")]) == 0
+    back = {p.name: read_sgf(p.read_text()) for p in (tmp_path / "out").glob("*.sgf")}
+    assert len(back) == 2
+    by_re = {b.result: b for b in back.values()}
+    assert set(by_re) == {"B+T", "B+R"}
+    # the handicap game as SGF FF[4] writes it: AB setup stones, HA, PL (White first)
+    h = by_re["B+R"]
+    assert sorted(h.setup_black) == [pt(2, 2), pt(6, 6)] and h.setup_white == []
+    assert h.first_player == 1 and h.handicap == 2 and h.properties["PL"] == ["W"]
+    assert h.moves == [pt(4, 4), pt(4, 2), pt(2, 4)]
+    assert by_re["B+T"].moves == [pt(4, 4), pt(2, 6), pt(6, 2), PASS, PASS]
+
+
+def test_export_skips_what_it_cannot_write_with_a_warning(tmp_path, capsys):
+    run = tmp_path / "run"
+    go = synthetic.random_record(GO9, np.random.default_rng(2), "go-1", snapshot=1)
+    ttt = make_game("tictactoe")
+    other = synthetic.random_record(ttt, np.random.default_rng(3), "ttt-1", game_name="tictactoe",
+                                    game_options={})
+    with RecordStore(run) as store:
+        store.add_games([go, other])
+    assert main(["sgf", "export", str(run), "--out", str(tmp_path / "out")]) == 0
+    out = capsys.readouterr()
+    assert "wrote 1 SGF file(s)" in out.out and "skipped 1 game(s)" in out.out
+    assert "warning: skipped ttt-1" in out.err and "not Go" in out.err
+    assert [p.name for p in (tmp_path / "out").glob("*.sgf")] == ["go-1.sgf"]
+    # a second export does not replace files unasked, and writes nothing then
+    before = (tmp_path / "out" / "go-1.sgf").read_bytes()
+    assert main(["sgf", "export", str(run), "--out", str(tmp_path / "out")]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(["sgf", "export", str(run), "--out", str(tmp_path / "out"), "--overwrite"]) == 0
+    assert (tmp_path / "out" / "go-1.sgf").read_bytes() == before
+
+
+def test_a_self_play_result_the_score_disagrees_with_is_written_as_recorded():
+    rec = synthetic.random_record(GO9, np.random.default_rng(4), "sp-2", snapshot=3)
+    scored = GO9.result_text(GO9.play_sequence([int(a) for a in rec.actions]))
+    # a record whose result is not the Tromp-Taylor winner (e.g. a game adjudicated at the move
+    # cap): the SGF keeps the record's winner and notes the score, instead of failing
+    rec.result = -1 if scored.startswith("B") else 1
+    back = read_sgf(record_to_sgf(rec))
+    assert back.result == ("W+" if rec.result == -1 else "B+")
+    assert json.loads(back.properties["GC"][0])["tromp_taylor_score"] == scored

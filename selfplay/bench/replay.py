@@ -49,7 +49,8 @@ TARGET_RAM_BYTES_1M = 2**30
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--game", choices=sorted(BENCH_GAMES), default="go9", help="game of the synthetic records (go9)")
-    p.add_argument("--games", type=int, default=150, help="distinct random games generated (150)")
+    p.add_argument("--distinct-games", dest="games", type=int, default=150, metavar="N",
+                   help="distinct random games generated, then repeated to fill --positions (150)")
     p.add_argument("--positions", type=int, default=200_000, help="positions ingested per timed run (200,000)")
     p.add_argument("--batch", type=int, default=256, help="sampling batch size (256)")
     p.add_argument("--batches", type=int, default=200, help="batches per timed sampling run (200)")

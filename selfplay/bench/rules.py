@@ -85,7 +85,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="duration of one timed run in seconds (default 1.0)")
     parser.add_argument("--repeats", type=int, default=3,
                         help="timed runs per figure; the median is reported (default 3)")
-    parser.add_argument("--games", default=",".join(BENCH_GAMES),
+    parser.add_argument("--game-names", dest="games", metavar="NAMES", default=",".join(BENCH_GAMES),
                         help=f"comma-separated subset of {', '.join(BENCH_GAMES)} (default: all)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the random playouts (default 0)")
 
@@ -93,10 +93,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def _parse_games(text: str) -> list[str]:
     names = [t.strip() for t in text.split(",") if t.strip()]
     if not names:
-        raise ConfigError("--games is empty; give one or more of " + ", ".join(BENCH_GAMES))
+        raise ConfigError("--game-names is empty; give one or more of " + ", ".join(BENCH_GAMES))
     unknown = [n for n in names if n not in BENCH_GAMES]
     if unknown:
-        raise ConfigError(f"--games: unknown benchmark game(s) {', '.join(unknown)}; "
+        raise ConfigError(f"--game-names: unknown benchmark game(s) {', '.join(unknown)}; "
                           f"known: {', '.join(BENCH_GAMES)}")
     return names
 

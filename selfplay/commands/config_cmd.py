@@ -22,7 +22,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                            description="Print PRESET as a complete TOML config with every default written out.")
     show.add_argument("preset", nargs="?", help="preset name (omit to list the presets)")
     show.add_argument("--bare", action="store_true", help="leave out the comments")
-    show.add_argument("--out", help="write to this file instead of the terminal")
+    show.add_argument("--out", metavar="FILE", help="write to this file instead of the terminal")
+    show.add_argument("--overwrite", action="store_true", help="replace FILE if it exists")
     show.set_defaults(func=_show)
 
     check = csub.add_parser("check", help="validate a TOML config file",
@@ -37,6 +38,10 @@ def _show(args: argparse.Namespace) -> int:
     if not args.preset:
         print("presets: " + ", ".join(preset_names()))
         return 0
+    if args.out:
+        from selfplay.overwrite import check_output
+
+        check_output(args.out, args.overwrite)
     config = load_preset(args.preset)
     text = dump_config(
         config,
@@ -47,11 +52,12 @@ def _show(args: argparse.Namespace) -> int:
         ),
     )
     if args.out:
+        from pathlib import Path
+
+        from selfplay.rundir import atomic_write_bytes
+
         try:
-            with open(args.out, "x", encoding="utf-8") as f:
-                f.write(text)
-        except FileExistsError:
-            raise ConfigError(f"--out {args.out!r} already exists; not overwriting it") from None
+            atomic_write_bytes(Path(args.out), text.encode("utf-8"))
         except OSError as exc:
             raise ConfigError(f"--out {args.out!r} cannot be written: {exc.strerror or exc}") from None
         print(f"wrote {args.out}", file=sys.stderr)

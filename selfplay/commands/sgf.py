@@ -18,10 +18,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     ssub = p.add_subparsers(dest="sgf_command", metavar="ACTION", required=True)
 
     e = ssub.add_parser("export", help="write a run's Go games as SGF files",
-                        description="Write each Go game of RUN as DIR/GAME_ID.sgf.")
+                        description="Write each Go game of RUN as DIR/GAME_ID.sgf (ids: "
+                        "selfplay games RUN). A game that cannot be written is skipped with a "
+                        "warning; imported games keep their recorded result.")
     e.add_argument("run", metavar="RUN", help="run directory")
     e.add_argument("--out", required=True, metavar="DIR", help="output directory (created)")
-    e.add_argument("--game", action="append", metavar="ID", dest="games",
+    e.add_argument("--game", action="append", metavar="ID", dest="game_ids",
                    help="only this game id (repeatable)")
     e.add_argument("--overwrite", action="store_true", help="replace existing .sgf files")
     e.set_defaults(func=run_export)
@@ -66,8 +68,11 @@ def _run_go_options(run_path: str) -> dict | None:
 def run_export(args: argparse.Namespace) -> int:
     from selfplay.replay.sgf_records import export_sgf
 
-    paths = export_sgf(args.run, args.out, game_ids=args.games, overwrite=args.overwrite)
-    print(f"wrote {len(paths)} SGF file(s) to {args.out}")
+    rep = export_sgf(args.run, args.out, game_ids=args.game_ids, overwrite=args.overwrite)
+    for gid, reason in rep.skipped:
+        print(f"selfplay sgf export: warning: skipped {gid}: {reason}", file=sys.stderr)
+    print(f"wrote {len(rep.written)} SGF file(s) to {args.out}"
+          + (f"; skipped {len(rep.skipped)} game(s) that could not be written" if rep.skipped else ""))
     return 0
 
 

@@ -13,9 +13,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         "move), the search's visit share (from the record) and Q per move (a fresh search with the "
         "record's settings), with the move played marked.")
     p.add_argument("run", metavar="RUN", help="run directory")
-    p.add_argument("--game", required=True, metavar="ID", help="game id (see the catalog or `selfplay export`)")
+    p.add_argument("--game", required=True, metavar="ID", help="game id (`selfplay games RUN` lists them)")
     p.add_argument("--move", required=True, type=int, metavar="K", help="position index, 0 = before the first move")
     p.add_argument("--out", required=True, metavar="FILE.png", help="PNG file to write")
+    p.add_argument("--overwrite", action="store_true", help="replace FILE.png if it exists")
     p.add_argument("--simulations", type=int, default=None, metavar="N",
                    help="simulations of the recomputing search (default: the record's own setting)")
     p.set_defaults(func=run)
@@ -25,8 +26,11 @@ def run(args: argparse.Namespace) -> int:
     from selfplay.errors import ConfigError
     from selfplay.monitor.show import show_position
 
+    from selfplay.overwrite import check_output
+
     if args.simulations is not None and args.simulations < 1:
         raise ConfigError(f"--simulations {args.simulations} must be at least 1")
+    check_output(args.out, args.overwrite)
     path = show_position(args.run, args.game, args.move, args.out, simulations=args.simulations)
     print(f"wrote {path}")
     return 0

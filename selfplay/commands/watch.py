@@ -11,7 +11,8 @@ from selfplay.errors import ConfigError
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "watch", help="live terminal view of a run (works from any machine that can read RUN)",
-        description="Redraw the run's status every --interval seconds until Ctrl-C. In a "
+        description="Redraw the run's status every --interval seconds until q (typed in the "
+        "terminal) or Ctrl-C. In a "
         "non-interactive terminal (a pipe or a file) frames are printed one after another. "
         "With --metrics-port the same figures are also served in Prometheus' text format.")
     p.add_argument("run", metavar="RUN", help="run directory")

@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Sequence
 
 from selfplay.errors import FormatError, IllegalMoveError
 
@@ -372,12 +372,16 @@ def escape_value(value: str) -> str:
 
 
 _IDENT = re.compile(r"[A-Z]+")
-_ROOT_WRITTEN = ("FF", "GM", "SZ", "KM", "CA", "AP", "RU", "PB", "PW", "RE")
+_ROOT_WRITTEN = ("FF", "GM", "SZ", "KM", "CA", "AP", "RU", "PB", "PW", "RE", "AB", "AW", "PL")
 
 
 def write_sgf(game: Any, moves: list[int], *, result: str | None, black: str = "",
-              white: str = "", extra: dict[str, Any] | None = None) -> str:
-    """SGF FF[4] text of a Go game played from the empty board, Black first.
+              white: str = "", extra: dict[str, Any] | None = None,
+              setup_black: Sequence[int] = (), setup_white: Sequence[int] = (),
+              first_player: int = 0) -> str:
+    """SGF FF[4] text of a Go game played from the empty board, Black first — or from setup
+    stones (``setup_black`` / ``setup_white`` points, written AB / AW, e.g. a handicap) with
+    ``first_player`` (0 Black, 1 White; PL) to move.
 
     ``moves``: actions (points ``row * size + col``, pass ``size * size``, written ``B[]``);
     every move is checked under ``game``'s rules (IllegalMoveError otherwise). ``result``: the
@@ -388,7 +392,8 @@ def write_sgf(game: Any, moves: list[int], *, result: str | None, black: str = "
     if not isinstance(game, GoGame):
         raise TypeError(f"write_sgf needs a GoGame, got {type(game).__name__}")
     size = game.size
-    state = game.initial_state()
+    setup = bool(len(setup_black) or len(setup_white) or first_player)
+    state = game.state_from_setup(setup_black, setup_white, first_player) if setup else game.initial_state()
     body = []
     for i, a in enumerate(moves):
         a = int(a)
@@ -406,6 +411,11 @@ def write_sgf(game: Any, moves: list[int], *, result: str | None, black: str = "
         root.append(f"PW[{escape_value(white)}]")
     if result is not None:
         root.append(f"RE[{escape_value(result)}]")
+    for ident, points in (("AB", setup_black), ("AW", setup_white)):
+        if len(points):
+            root.append(ident + "".join(f"[{point_to_sgf(int(p), size)}]" for p in sorted(points)))
+    if setup:
+        root.append(f"PL[{'BW'[first_player]}]")
     for ident, value in (extra or {}).items():
         if not isinstance(ident, str) or not _IDENT.fullmatch(ident):
             raise FormatError(f"SGF: extra property name {ident!r} must be upper-case letters A-Z")

@@ -67,18 +67,29 @@ def families_from_summary(s: Summary) -> list[Metric]:
     """Metric families for one status summary (what a scrape returns)."""
     m = _Families()
     m.gauge("selfplay_monitor_up", "1 if the run directory could be read at this scrape", 1)
+    state = s.get("state")
+    running = state == "running"
+    if state is not None:
+        m.gauge("selfplay_run_up", "1 while the run is running; 0 once it stopped or crashed", running)
+        for name in ("running", "stopped", "crashed"):
+            m.gauge("selfplay_run_state", "1 for the run's state (running, stopped or crashed), 0 for the others",
+                    name == state, {"state": name})
+    m.gauge("selfplay_run_stopped_timestamp_seconds", "Unix time the run stopped (stop line) or was last heard of (crashed)",
+            s.get("stopped_at"))
     m.gauge("selfplay_status_timestamp_seconds", "Unix time the figures refer to (newest write of the run)", s.get("as_of"))
     m.gauge("selfplay_run_elapsed_seconds", "seconds from the run's first record to as_of", s.get("elapsed_seconds"))
     m.gauge("selfplay_idle_seconds", "seconds since the run last wrote anything (reader's clock)", s.get("idle_seconds"))
     m.counter("selfplay_games", "finished games committed (catalog, else buffer, else workers)", s.get("games"))
     m.counter("selfplay_positions", "positions in finished games", s.get("positions"))
-    m.gauge("selfplay_games_pending", "games the buffer accepted that wait for their shard to be written", s.get("games_pending"))
+    m.gauge("selfplay_pending_games", "games the buffer accepted that the catalog does not hold yet (running run)", s.get("pending_games"))
+    m.gauge("selfplay_unstored_games", "games reported accepted that a stopped or crashed run never stored", s.get("unstored_games"))
     m.gauge("selfplay_games_per_hour", "games per hour over the last window (window_seconds, 5 minutes by default)", s.get("games_per_hour"))
     m.gauge("selfplay_games_per_hour_since_start", "games per hour since the run started", s.get("games_per_hour_since_start"))
     m.gauge("selfplay_positions_per_second", "positions per second over the last window", s.get("positions_per_second"))
     m.gauge("selfplay_positions_per_second_since_start", "positions per second since the run started", s.get("positions_per_second_since_start"))
-    m.gauge("selfplay_evaluations_per_second", "network evaluations per second summed over active workers", s.get("evals_per_second"))
-    m.gauge("selfplay_active_workers", "workers that reported within the last window", s.get("active_workers"))
+    m.gauge("selfplay_evals_per_second", "network evaluations per second summed over active workers", s.get("evals_per_second"))
+    m.gauge("selfplay_active_workers", "workers that reported within the last window (0 once the run stopped or crashed)",
+            s.get("active_workers"))
     snap = s.get("latest_snapshot") or {}
     m.gauge("selfplay_latest_snapshot_version", "newest published snapshot version", snap.get("version"))
     m.gauge("selfplay_latest_snapshot_age_seconds", "seconds since the newest snapshot was published", snap.get("age_seconds"))
@@ -87,12 +98,13 @@ def families_from_summary(s: Summary) -> list[Metric]:
 
     for w in s.get("workers") or []:
         lab = {"worker": str(w.get("id"))}
-        m.gauge("selfplay_worker_up", "1 if the worker reported within the last window", w.get("active"), lab)
+        m.gauge("selfplay_worker_up", "1 if the worker reported within the last window of a running run",
+                w.get("active"), lab)
         m.counter("selfplay_worker_games", "games finished by the worker", w.get("games"), lab)
         m.counter("selfplay_worker_positions", "positions played by the worker", w.get("positions"), lab)
         m.gauge("selfplay_worker_games_per_hour", "worker's games per hour over the last window", w.get("games_per_hour"), lab)
         m.gauge("selfplay_worker_positions_per_second", "worker's positions per second over the last window", w.get("positions_per_second"), lab)
-        m.gauge("selfplay_worker_evaluations_per_second", "worker's network evaluations per second", w.get("evals_per_second"), lab)
+        m.gauge("selfplay_worker_evals_per_second", "worker's network evaluations per second", w.get("evals_per_second"), lab)
         m.gauge("selfplay_worker_snapshot_version", "snapshot version the worker plays with", w.get("snapshot_version"), lab)
         m.gauge("selfplay_worker_snapshot_lag_versions", "versions the worker is behind the newest snapshot", w.get("snapshot_lag_versions"), lab)
         m.gauge("selfplay_worker_data_age_seconds", "seconds since the worker's snapshot was published", w.get("data_age_seconds"), lab)
@@ -124,7 +136,7 @@ def families_from_summary(s: Summary) -> list[Metric]:
     m.counter("selfplay_resign_false_positives", "resign-disabled games the would-have-resigned player did not lose", r.get("false_positives"))
     m.gauge("selfplay_resign_false_positive_ratio", "false positives / would-resign games (or / disabled games, see docs)", r.get("false_positive_rate"))
 
-    for e in s.get("evaluations") or []:
+    for e in s.get("eval_matches") or []:
         lab = {"opponent": str(e.get("opponent"))}
         m.gauge("selfplay_eval_elo", "Elo difference against the opponent at the latest evaluation", e.get("elo"), lab)
         m.gauge("selfplay_eval_games", "games in the latest evaluation against the opponent", e.get("games"), lab)

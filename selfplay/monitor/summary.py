@@ -29,6 +29,8 @@ from pathlib import Path
 from typing import Any
 
 from selfplay.errors import FormatError, RunDirError
+from selfplay.monitor.lifecycle import RUNNING, RunEvents, run_state
+from selfplay.monitor.lines import FUTURE_TOLERANCE_SECONDS, MetricsTail
 from selfplay.monitor.rates import (
     WINDOW_SECONDS,
     CounterSeries,
@@ -52,62 +54,11 @@ COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
 #: fields kept per line when every line is kept (``keep_rows``, for the report's plots)
 ROW_FIELDS_KEPT = frozenset({
     "t", "component", "source", "snapshot_version", "games_total", "step", "loss", "loss_policy",
-    "loss_value", "loss_l2", "resign_disabled_games_total", "resign_probe_triggered_total",
+    "loss_value", "loss_l2", "learning_rate", "reuse_ratio", "samples_trained_total",
+    "window_positions", "window_capacity", "resign_disabled_games_total", "resign_probe_triggered_total",
     "resign_false_positives_total", "opponent", "player", "games", "wins", "draws", "losses", "elo",
-    "version", "published_at",
+    "elo_low", "elo_high", "version", "published_at", "event", "stop_reason", "final",
 })
-
-
-# ---- reading metrics.jsonl incrementally --------------------------------------------------------
-
-class MetricsTail:
-    """Reads the complete lines appended to a metrics.jsonl file since the last call.
-
-    A torn last line (a writer mid-line) is left for the next call; a malformed complete line
-    is skipped and counted in ``bad_lines``."""
-
-    def __init__(self, path: Path) -> None:
-        self.path = path
-        self.offset = 0
-        self.bad_lines = 0
-
-    def read_new(self, max_bytes: int = 8 << 20) -> list[dict[str, Any]]:
-        """Parse complete lines from the last offset, reading at most ``max_bytes`` (call again
-        until it returns [] to reach the end; memory stays bounded however big the file)."""
-        try:
-            size = self.path.stat().st_size
-        except FileNotFoundError:
-            return []
-        if size < self.offset:  # file replaced or truncated: start again
-            self.offset = 0
-        if size == self.offset:
-            return []
-        with open(self.path, "rb") as f:
-            f.seek(self.offset)
-            data = f.read(min(size - self.offset, max_bytes))
-        end = data.rfind(b"\n")
-        if end < 0:
-            if len(data) >= max_bytes:  # one line longer than max_bytes: skip past it
-                self.offset += len(data)
-                self.bad_lines += 1
-                return self.read_new(max_bytes)
-            return []  # a line still being written
-        self.offset += end + 1
-        rows = []
-        for raw in data[: end + 1].splitlines():
-            if not raw.strip():
-                continue
-            try:
-                row = json.loads(raw)
-            except (json.JSONDecodeError, UnicodeDecodeError):
-                self.bad_lines += 1
-                continue
-            t = row.get("t") if isinstance(row, dict) else None
-            if isinstance(t, (int, float)) and not isinstance(t, bool) and math.isfinite(t) and "component" in row:
-                rows.append(row)
-            else:
-                self.bad_lines += 1
-        return rows
 
 
 # ---- state kept per (component, source) ----------------------------------------------------------
@@ -122,11 +73,15 @@ class SourceState:
     last_t: float
     last: dict[str, Any] = field(default_factory=dict)
     counters: dict[str, CounterSeries] = field(default_factory=dict)
+    #: time of the source's last line marked ``"final": true`` (written when its role stops)
+    final_t: float | None = None
 
     def ingest(self, row: dict[str, Any]) -> None:
         t = float(row["t"])
         if t < self.first_t:
             self.first_t = t
+        if row.get("final") is True:
+            self.final_t = t if self.final_t is None else max(self.final_t, t)
         if t >= self.last_t:
             self.last_t = t
             self.last.update(row)
@@ -150,6 +105,12 @@ def _num(v: Any) -> float | None:
     if isinstance(v, bool) or not isinstance(v, (int, float)):
         return None
     return float(v) if math.isfinite(v) else None
+
+
+def _sane_time(v: Any) -> float | None:
+    """``v`` as a Unix time when it is one a run can have written (see monitor.lines), else None."""
+    t = _num(v)
+    return t if t is not None and 0 <= t <= time.time() + FUTURE_TOLERANCE_SECONDS else None
 
 
 def _round(v: float | None, nd: int = 3) -> float | None:
@@ -178,6 +139,8 @@ class CatalogFacts:
     pos_col: str | None = None
     finished_times: list[float] | None = None
     positions_cumsum: list[float] | None = None
+    #: worker id → (first game's start, games): when each worker began, for its own rates
+    workers: dict[str, tuple[float | None, int]] = field(default_factory=dict)
 
     def counts_between(self, start: float, end: float) -> tuple[int, int]:
         """(games, positions) finished in ``(start, end]``."""
@@ -254,6 +217,10 @@ def read_catalog(path: Path, keep_times: bool = False) -> CatalogFacts | None:
         facts = CatalogFacts(path, int(r[0]), None if r[1] is None else int(r[1]),
                              None if r[2] is None else float(r[2]), None if r[3] is None else float(r[3]),
                              None if r[4] is None else float(r[4]), resign, shards, fin_col, pos_col)
+        if "worker" in cols and start_col:
+            for w, first, n in con.execute(f"SELECT worker, min(CASE WHEN {start_col} > 0 THEN {start_col} END), "
+                                           f"count(*) FROM games GROUP BY worker"):
+                facts.workers[str(w)] = (None if first is None else float(first), int(n))
         if keep_times and fin_col:
             rows = con.execute(f"SELECT {fin_col}, {pos_col or 0} FROM games WHERE {fin_col} IS NOT NULL "
                                f"ORDER BY {fin_col}").fetchall()
@@ -268,9 +235,16 @@ def read_catalog(path: Path, keep_times: bool = False) -> CatalogFacts | None:
 
 # ---- snapshots -----------------------------------------------------------------------------------
 
-def read_snapshot_times(snap_dir: Path, cache: dict[str, tuple[int, float | None]] | None = None
+SnapshotMeta = tuple[int, float | None, float | None, float | None]  # version, published_at, steps, samples
+
+
+def read_snapshot_times(snap_dir: Path, cache: dict[str, SnapshotMeta] | None = None,
+                        learner_out: dict[int, tuple[float | None, float | None]] | None = None
                         ) -> dict[int, float | None]:
-    """Map snapshot version → published_at (Unix s) from ``snap_dir/NNNNNN.json`` files."""
+    """Map snapshot version → published_at (Unix s) from ``snap_dir/NNNNNN.json`` files.
+
+    ``learner_out`` (if given) receives version → (training_steps, samples_seen) as the
+    learner stored them with each snapshot."""
     out: dict[int, float | None] = {}
     if not snap_dir.is_dir():
         return out
@@ -278,18 +252,22 @@ def read_snapshot_times(snap_dir: Path, cache: dict[str, tuple[int, float | None
         if p.name.startswith("."):
             continue
         if cache is not None and p.name in cache:
-            v, ts = cache[p.name]
-            out[v] = ts
-            continue
-        try:
-            meta = json.loads(p.read_text())
-            v = int(meta.get("version", int(p.stem)))
-        except (ValueError, OSError, TypeError, AttributeError):
-            continue  # a snapshot being written or foreign; the store validates its own files
-        ts = _num(meta.get("published_at", meta.get("created_at")))
+            v, ts, steps, samples = cache[p.name]
+        else:
+            try:
+                if p.stat().st_size > 1 << 20:
+                    continue  # not a snapshot's metadata
+                meta = json.loads(p.read_text())
+                v = int(meta.get("version", int(p.stem)))
+            except (ValueError, OSError, TypeError, AttributeError, RecursionError):
+                continue  # a snapshot being written or foreign; the store validates its own files
+            ts = _sane_time(meta.get("published_at", meta.get("created_at")))
+            steps, samples = _num(meta.get("training_steps")), _num(meta.get("samples_seen"))
+            if cache is not None:
+                cache[p.name] = (v, ts, steps, samples)
         out[v] = ts
-        if cache is not None:
-            cache[p.name] = (v, ts)
+        if learner_out is not None:
+            learner_out[v] = (steps, samples)
     return out
 
 
@@ -315,8 +293,11 @@ class RunMonitor:
         self.last_t: float | None = None
         self.catalog: CatalogFacts | None = None
         self.catalog_error: str | None = None
+        self.events = RunEvents()
+        #: snapshot version → (training_steps, samples_seen) stored with it by the learner
+        self.snapshot_learner: dict[int, tuple[float | None, float | None]] = {}
         self._tail = MetricsTail(self.run.metrics)
-        self._snap_cache: dict[str, tuple[int, float | None]] = {}
+        self._snap_cache: dict[str, Any] = {}
 
     # -- reading ----------------------------------------------------------------------------------
     def refresh(self) -> None:
@@ -330,7 +311,8 @@ class RunMonitor:
             for row in rows:
                 self._ingest(row)
             self._trim()
-        self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache))
+        self.snapshot_times.update(read_snapshot_times(self.run.snapshots, self._snap_cache,
+                                                       self.snapshot_learner))
         try:
             self.catalog = read_catalog(self.run.catalog, keep_times=self.keep_rows)
             self.catalog_error = None
@@ -361,10 +343,12 @@ class RunMonitor:
         if st is None:
             st = self.sources[(comp, src)] = SourceState(comp, src, t, t)
         st.ingest(row)
-        if comp == "snapshots":
+        if comp == "run":
+            self.events.ingest(row)
+        elif comp == "snapshots":
             v = row.get("version")
-            if isinstance(v, int):
-                ts = _num(row.get("published_at"))
+            if isinstance(v, int) and not isinstance(v, bool):
+                ts = _sane_time(row.get("published_at"))
                 if self.snapshot_times.get(v) is None:
                     self.snapshot_times[v] = ts if ts is not None else t
         elif comp == "eval":
@@ -407,6 +391,10 @@ class RunMonitor:
         workers = self.of("worker")
         buffers = self.of("buffer")
         learners = self.of("learner")
+        last_write = max((x for x in (self.last_t, self.catalog.last_finished if self.catalog else None)
+                          if x is not None), default=None)
+        state = run_state(self.events, last_write, wall)
+        running = state["state"] == RUNNING
 
         latest_version = max(self.snapshot_times) if self.snapshot_times else None
         latest_snapshot = None
@@ -444,7 +432,7 @@ class RunMonitor:
         wrk_g = [s.counter("games_total") for s in workers]
         wrk_p = [s.counter("positions_total") for s in workers]
         games = positions = 0
-        pending = None
+        pending = not_stored = None
         gph = gph_start = pps = pps_start = None
         source = rates_source = "none"
         if as_of is not None:
@@ -452,7 +440,14 @@ class RunMonitor:
                 source = "catalog"
                 games, positions = cat.games, cat.positions or 0
                 if buffers:
-                    pending = max(0, int(buf_g.value_at(as_of)) - games)
+                    # games the buffer reported accepting that the catalog does not hold: waiting
+                    # for it while the run runs; in a stopped or crashed run nobody will write
+                    # them any more (lost, unless the next start recovers them from its journal)
+                    unstored = max(0, int(buf_g.value_at(as_of)) - games)
+                    if running:
+                        pending = unstored
+                    else:
+                        not_stored = unstored
             elif buffers:
                 source = "buffer"
                 games, positions = int(buf_g.value_at(as_of)), int(buf_p.value_at(as_of))
@@ -460,7 +455,9 @@ class RunMonitor:
                 source = "workers"
                 games = int(sum(s.value_at(as_of) for s in wrk_g))
                 positions = int(sum(s.value_at(as_of) for s in wrk_p))
-            buffer_fresh = bool(buffers) and max(b.last_t for b in buffers) >= as_of - w
+            # a stopped or crashed run's buffer lines end before its last games were stored:
+            # its rates come from what it stored (the catalog)
+            buffer_fresh = running and bool(buffers) and max(b.last_t for b in buffers) >= as_of - w
             span = window_span(as_of, start, w)
             if buffer_fresh or (cat is None and buffers):
                 rates_source = "buffer"
@@ -490,25 +487,36 @@ class RunMonitor:
         worker_rows = []
         for st in workers:
             worker_rows.append(self._worker_row(st, as_of, start, latest_version))
-        active = [r for r in worker_rows if r["active"]]
-        known = [r["evals_per_second"] for r in active if r["evals_per_second"] is not None]
+        # "recent": reported within the window ending at as_of (for a stopped run: at its stop);
+        # "active": recent and the run is still running
+        recent = [r for r in worker_rows if r["recent"]]
+        for r in worker_rows:
+            r["active"] = r["recent"] and (running or state["state"] is None)
+        known = [r["evals_per_second"] for r in recent if r["evals_per_second"] is not None]
         evals_ps = sum(known) if known else None
-        lags = [r["snapshot_lag_versions"] for r in active if r["snapshot_lag_versions"] is not None]
-        ages = [r["data_age_seconds"] for r in active if r["data_age_seconds"] is not None]
+        lags = [r["snapshot_lag_versions"] for r in recent if r["snapshot_lag_versions"] is not None]
+        ages = [r["data_age_seconds"] for r in recent if r["data_age_seconds"] is not None]
 
         summary: dict[str, Any] = {
             "run": str(self.run.root),
+            "state": state["state"],
+            "stop_reason": state["stop_reason"],
+            "stopped_at": state["stopped_at"],
+            "state_basis": state["basis"],
+            "mode": state["mode"],
             "as_of": as_of,
             "started_at": start,
             "elapsed_seconds": _round(None if as_of is None or start is None else as_of - start, 1),
             "idle_seconds": _round(None if as_of is None else max(0.0, wall - as_of), 1),
             "window_seconds": w,
+            "window_span_seconds": None if as_of is None else _round(window_span(as_of, start, w), 1),
             "empty": as_of is None,
             "counts_source": source,
             "rates_source": rates_source,
             "games": int(games),
             "positions": int(positions),
-            "games_pending": pending,
+            "pending_games": pending,
+            "unstored_games": not_stored,
             "games_per_hour": _round(gph, 2),
             "games_per_hour_since_start": _round(gph_start, 2),
             "positions_per_second": _round(pps, 3),
@@ -518,11 +526,12 @@ class RunMonitor:
             "snapshot_lag_versions": max(lags) if lags else None,
             "data_age_seconds": _round(max(ages), 1) if ages else None,
             "workers": worker_rows,
-            "active_workers": len(active),
-            "buffer": self._buffer_block(buffers, latest_version, as_of),
+            "active_workers": sum(1 for r in worker_rows if r["active"]),
+            "workers_at_stop": None if running or state["state"] is None else len(recent),
+            "buffer": self._buffer_block(buffers, latest_version, as_of, None if running else cat),
             "learner": self._learner_block(learners, as_of, start),
             "resignation": self._resign_block(workers),
-            "evaluations": [self._eval_row(r) for _, r in sorted(self.evals.items())],
+            "eval_matches": [self._eval_row(r) for _, r in sorted(self.evals.items())],
             "counts": counts,
             "catalog_error": self.catalog_error,
             "metrics_bad_lines": self._tail.bad_lines,
@@ -535,22 +544,28 @@ class RunMonitor:
         last = st.last
         g, p, e = st.counter("games_total"), st.counter("positions_total"), st.counter("evals_total")
         ref = as_of if as_of is not None else st.last_t
-        wstart = start if start is not None else st.first_t
+        born = self.worker_start(st, start)
         version = last.get("snapshot_version")
         version = int(version) if isinstance(version, (int, float)) and not isinstance(version, bool) else None
         lag = None if version is None or latest_version is None else max(0, latest_version - version)
         pub = self.snapshot_times.get(version) if version is not None else None
         age = None if pub is None else max(0.0, ref - pub)
+        # the recent window is the run's (same span for every worker, so the workers' rates add
+        # up to the run's); since-start is over the worker's own life
+        wstart = start if start is not None else born
         evals_ps = window_rate_per_second([e], ref, wstart, w) if len(e) >= 1 and e.last_value > 0 else None
         if evals_ps is None:
             evals_ps = _num(last.get("evals_per_second"))
         pps = window_rate_per_second([p], ref, wstart, w) if len(p) else _num(last.get("positions_per_second"))
+        # since its start: what it reported last over the time from its start to that report
+        since = since_start_rate_per_second([g], st.last_t, born) if len(g) else None
         return {
             "id": st.source,
             "games": int(g.value_at(ref)),
             "positions": int(p.value_at(ref)),
             "games_per_hour": _round(per_hour(window_rate_per_second([g], ref, wstart, w)) if len(g) else None, 2),
-            "games_per_hour_since_start": _round(per_hour(since_start_rate_per_second([g], ref, st.first_t)) if len(g) else None, 2),
+            "games_per_hour_since_start": _round(per_hour(since), 2),
+            "started_at": born,
             "positions_per_second": _round(pps, 3),
             "evals_per_second": _round(evals_ps, 2),
             "snapshot_version": version,
@@ -561,11 +576,29 @@ class RunMonitor:
             "first_seen": st.first_t,
             "last_seen": st.last_t,
             "seconds_since_seen": _round(ref - st.last_t, 1),
-            "active": ref - st.last_t <= w,
+            "recent": ref - st.last_t <= w,
+            "final": st.final_t is not None and st.final_t >= st.last_t,
         }
 
+    def worker_start(self, st: SourceState, run_start: float | None) -> float:
+        """When worker ``st`` began playing, for rates over its own lifetime (Unix s).
+
+        A worker's first line comes only after its first games finished, so that line is too
+        late a start (it inflates the worker's rate). The start of its first committed game
+        (catalog) is used when known; else its first line if that reported no game yet; else
+        the run's start."""
+        first = st.first_t
+        cat = self.catalog.workers.get(st.source) if self.catalog is not None else None
+        if cat is not None and cat[0] is not None:
+            return min(first, cat[0])
+        g = st.counters.get("games_total")
+        if g is not None and len(g) and g.values[0] > 0 and run_start is not None:
+            return min(first, run_start)
+        return first
+
     def _buffer_block(self, buffers: list[SourceState], latest_version: int | None,
-                      as_of: float | None) -> dict[str, Any] | None:
+                      as_of: float | None, stored: CatalogFacts | None = None) -> dict[str, Any] | None:
+        """The buffer's figures; ``stored`` (a stopped run's catalog) replaces its counts."""
         if not buffers:
             return None
         wp = [_num(b.last.get("window_positions")) for b in buffers]
@@ -576,11 +609,15 @@ class RunMonitor:
         newest = [int(v) for v in newest if isinstance(v, (int, float)) and not isinstance(v, bool)]
         newest_v = max(newest) if newest else None
         pub = self.snapshot_times.get(newest_v) if newest_v is not None else None
+        games = int(LargestOf([b.counter("games_total") for b in buffers]).last_value)
+        positions = int(LargestOf([b.counter("positions_total") for b in buffers]).last_value)
+        if stored is not None:
+            games, positions = stored.games, stored.positions or 0
         return {
             # each buffer shard reports whole-catalog counts (+ its own waiting games): the
             # largest across shards, not the sum
-            "games": int(LargestOf([b.counter("games_total") for b in buffers]).last_value),
-            "positions": int(LargestOf([b.counter("positions_total") for b in buffers]).last_value),
+            "games": games,
+            "positions": positions,
             "duplicates": int(LargestOf([b.counter("duplicates_total") for b in buffers]).last_value),
             "shards": int(LargestOf([b.counter("shards_total") for b in buffers]).last_value),
             "sources": len(buffers),
@@ -603,15 +640,23 @@ class RunMonitor:
         sps = _num(last.get("steps_per_second"))
         if sps is None and len(steps) >= 2 and as_of is not None:
             sps = window_rate_per_second([steps], as_of, st.first_t, self.window)
-        step = last.get("step")
+        step = _num(last.get("step"))
+        samples = _num(last.get("samples_trained_total"))
+        # the snapshots carry the learner's step and samples at each publish (the final one
+        # too): a figure newer than the last periodic line
+        for v_steps, v_samples in self.snapshot_learner.values():
+            if v_steps is not None and (step is None or v_steps > step):
+                step = v_steps
+            if v_samples is not None and (samples is None or v_samples > samples):
+                samples = v_samples
         return {
-            "step": int(step) if isinstance(step, (int, float)) else None,
+            "step": None if step is None else int(step),
             "steps_per_second": _round(sps, 3),
             "loss": _num(last.get("loss")),
             "loss_policy": _num(last.get("loss_policy")),
             "loss_value": _num(last.get("loss_value")),
             "loss_l2": _num(last.get("loss_l2")),
-            "samples_trained": _num(last.get("samples_trained_total")),
+            "samples_trained": samples,
             "reuse_ratio": _num(last.get("reuse_ratio")),
             "learning_rate": _num(last.get("learning_rate")),
             "snapshot_version": last.get("snapshot_version"),

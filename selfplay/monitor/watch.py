@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
+import sys
 import time
 from typing import Any, Callable
 
@@ -60,9 +61,36 @@ def fmt_duration(seconds: Any) -> str:
 
 
 def fmt_time(ts: Any) -> str:
+    """Unix seconds as 'YYYY-MM-DD HH:MM:SS UTC'; None or a time no calendar holds → '-'."""
     if ts is None:
         return "-"
-    return _dt.datetime.fromtimestamp(float(ts), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+    try:
+        return _dt.datetime.fromtimestamp(float(ts), tz=_dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+    except (OverflowError, OSError, ValueError):
+        return "-"
+
+
+def state_line(s: Summary) -> tuple[str, str]:
+    """The run's state in words, and a rich style for it."""
+    state = s.get("state")
+    if state == "stopped":
+        why = s.get("stop_reason")
+        if why is None and s.get("state_basis") == "freshness":
+            why = f"no run lines; silent for {fmt_duration(s.get('idle_seconds'))}"
+        style = "bold red" if str(why or "").startswith("error") else "bold"
+        return (f"stopped ({why or 'reason unknown'}) at {fmt_time(s.get('stopped_at'))}, "
+                f"{fmt_duration(s.get('idle_seconds'))} ago", style)
+    if state == "crashed":
+        return (f"crashed: no heartbeat since {fmt_time(s.get('stopped_at'))} "
+                f"({fmt_duration(s.get('idle_seconds'))} ago) and no stop line", "bold red")
+    if state is None:  # only snapshots so far (e.g. a publish into a fresh run directory)
+        return ("not started: no metric lines or games yet", "bold")
+    return (f"running · last write {fmt_duration(s.get('idle_seconds'))} ago", "bold green")
+
+
+def when_label(s: Summary) -> str:
+    """How a figure's time is named: 'ago' for a running run, 'before stop' otherwise."""
+    return {"stopped": "before stop", "crashed": "before the last write"}.get(str(s.get("state")), "ago")
 
 
 def _kv_table(title: str, rows: list[tuple[str, str]]) -> Table:
@@ -76,14 +104,19 @@ def _kv_table(title: str, rows: list[tuple[str, str]]) -> Table:
 
 def render_summary(s: Summary) -> RenderableType:
     """One frame of the status view."""
-    window = fmt_duration(s.get("window_seconds"))
+    span, full = s.get("window_span_seconds"), s.get("window_seconds")
+    window = fmt_duration(full if span is None or full is None or span >= full else span)
     head = Text()
     head.append(f"run {s.get('run')}", style="bold")
     if s.get("empty"):
         head.append("\nno data yet: no metric lines, committed games or snapshots so far")
         return Panel(head, title="selfplay status")
-    head.append(f"\nas of {fmt_time(s.get('as_of'))} · running {fmt_duration(s.get('elapsed_seconds'))}"
-                f" · last write {fmt_duration(s.get('idle_seconds'))} ago"
+    words, style = state_line(s)
+    running = s.get("state") in (None, "running")
+    head.append("\nstate ")
+    head.append(words, style=style)
+    at = "" if running else (" (at stop)" if s.get("state") == "stopped" else " (at the last write)")
+    head.append(f"\nfigures as of {fmt_time(s.get('as_of'))}{at} · {fmt_duration(s.get('elapsed_seconds'))} since start"
                 f" · counts from {s.get('counts_source')}, rates from {s.get('rates_source')}")
 
     if s.get("catalog_error"):
@@ -91,19 +124,30 @@ def render_summary(s: Summary) -> RenderableType:
     if s.get("metrics_bad_lines"):
         head.append(f"\nwarning: {s['metrics_bad_lines']} malformed line(s) in metrics.jsonl skipped", style="yellow")
     snap = s.get("latest_snapshot") or {}
-    main = _kv_table("production", [
-        ("games", fmt_num(s.get("games")) + (f" (+{fmt_num(s['games_pending'])} waiting)"
-                                             if s.get("games_pending") else "")),
+    games = fmt_num(s.get("games"))
+    if s.get("pending_games"):
+        games += f" (+{fmt_num(s['pending_games'])} accepted, not yet in the catalog)"
+    if s.get("unstored_games"):
+        games += (f" ({fmt_num(s['unstored_games'])} more reported but never stored: lost unless "
+                  f"a resume recovers them)")
+    n_workers = len(s.get("workers") or [])
+    if running:
+        workers_row = ("active workers", f"{s.get('active_workers', 0)} of {n_workers}")
+    else:
+        workers_row = ("workers reporting", f"{s.get('workers_at_stop') or 0} of {n_workers}")
+    main = _kv_table("production" + at, [
+        ("games", games),
         ("positions", fmt_num(s.get("positions"))),
         (f"games/h, last {window}", fmt_num(s.get("games_per_hour"))),
         ("games/h, since start", fmt_num(s.get("games_per_hour_since_start"))),
         (f"positions/s, last {window}", fmt_num(s.get("positions_per_second"))),
-        ("evaluations/s", fmt_num(s.get("evals_per_second"))),
-        ("active workers", f"{s.get('active_workers', 0)} of {len(s.get('workers') or [])}"),
+        ("network evals/s", fmt_num(s.get("evals_per_second"))),
+        workers_row,
     ])
     fresh = _kv_table("freshness", [
         ("latest snapshot", fmt_num(snap.get("version"))),
-        ("published", f"{fmt_duration(snap.get('age_seconds'))} ago" if snap.get("age_seconds") is not None else "-"),
+        ("published", f"{fmt_duration(snap.get('age_seconds'))} {when_label(s)}"
+         if snap.get("age_seconds") is not None else "-"),
         ("worst lag, versions", fmt_num(s.get("snapshot_lag_versions"))),
         ("worst data age", fmt_duration(s.get("data_age_seconds"))),
     ])
@@ -138,7 +182,9 @@ def render_summary(s: Summary) -> RenderableType:
     parts: list[RenderableType] = [head, Text(""), grid, Text(""), learn]
     workers = s.get("workers") or []
     if workers:
-        wt = Table(title="workers (dim: silent for longer than the window)", title_justify="left",
+        title = ("workers (dim: silent for longer than the window)" if running else
+                 f"workers{at}: 'seen' is {when_label(s)}")
+        wt = Table(title=title, title_justify="left",
                    box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True, padding=(0, 1))
         for col, just in (("worker", "left"), ("games", "right"), ("games/h", "right"),
                           ("pos/s", "right"), ("evals/s", "right"), ("snap", "right"),
@@ -148,18 +194,19 @@ def render_summary(s: Summary) -> RenderableType:
         shown = sorted(workers, key=lambda w: str(w.get("id")))
         limit = 40
         for w in shown[:limit]:
-            style = None if w.get("active") else "dim"
+            style = None if w.get("recent", w.get("active")) else "dim"
             wt.add_row(str(w.get("id")), fmt_num(w.get("games")), fmt_num(w.get("games_per_hour")),
                        fmt_num(w.get("positions_per_second")), fmt_num(w.get("evals_per_second")),
                        fmt_num(w.get("snapshot_version")), fmt_num(w.get("snapshot_lag_versions")),
-                       fmt_duration(w.get("data_age_seconds")), fmt_num(w.get("games_in_flight")),
+                       fmt_duration(w.get("data_age_seconds")),
+                       fmt_num(w.get("games_in_flight")) if running else "-",
                        fmt_duration(w.get("seconds_since_seen")), style=style)
         if len(shown) > limit:
             wt.caption = f"{len(shown) - limit} more workers not shown (selfplay status --json lists all)"
         parts += [Text(""), wt]
-    evals = s.get("evaluations") or []
+    evals = s.get("eval_matches") or []
     if evals:
-        et = Table(title="evaluations", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+        et = Table(title="evaluation matches", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
         for col in ("opponent", "games", "wins", "draws", "losses", "elo"):
             et.add_column(col, justify="left" if col == "opponent" else "right")
         for e in evals:
@@ -168,11 +215,63 @@ def render_summary(s: Summary) -> RenderableType:
     return Panel(Group(*parts), title="selfplay status")
 
 
+class QuitKey:
+    """Waits between frames and notices ``q`` typed at the terminal (context manager).
+
+    When standard input is a terminal it is put in cbreak mode (keys arrive one by one, without
+    Enter; Ctrl-C still interrupts) and restored on exit; otherwise waiting is a plain sleep."""
+
+    def __init__(self, stream: Any = None) -> None:
+        self.stream = sys.stdin if stream is None else stream
+        self._saved: Any = None
+        self._fd: int | None = None
+
+    def __enter__(self) -> "QuitKey":
+        try:
+            import termios
+            import tty
+
+            if self.stream is not None and self.stream.isatty():
+                self._fd = self.stream.fileno()
+                self._saved = termios.tcgetattr(self._fd)
+                tty.setcbreak(self._fd)
+        except (ImportError, OSError, ValueError, AttributeError):
+            self._fd = None  # no terminal control here (Windows, a closed stdin): sleep only
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self._fd is not None and self._saved is not None:
+            import termios
+
+            termios.tcsetattr(self._fd, termios.TCSADRAIN, self._saved)
+
+    def wait(self, seconds: float) -> bool:
+        """Wait up to ``seconds``; True as soon as ``q`` (or ``Q``) is typed."""
+        if self._fd is None:
+            time.sleep(seconds)
+            return False
+        import select
+
+        deadline = time.monotonic() + seconds
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return False
+            ready, _, _ = select.select([self._fd], [], [], left)
+            if ready:
+                key = os.read(self._fd, 64)
+                if not key:  # end of input: nothing more will come, just wait
+                    time.sleep(max(0.0, deadline - time.monotonic()))
+                    return False
+                if b"q" in key.lower():
+                    return True
+
+
 def watch_run(run: str | os.PathLike[str], interval: float = 2.0, once: bool = False,
               console: Console | None = None, max_frames: int | None = None,
-              on_summary: Callable[[Summary], None] | None = None) -> int:
-    """Show the run's status, refreshing every ``interval`` seconds until Ctrl-C (which ends
-    the watch normally).
+              on_summary: Callable[[Summary], None] | None = None, keys: Any = None) -> int:
+    """Show the run's status, refreshing every ``interval`` seconds until ``q`` or Ctrl-C
+    (either ends the watch normally).
 
     ``once``: draw one frame and return. In a non-interactive console frames are printed one
     after another. ``max_frames`` bounds the number of refreshes (tests); ``on_summary`` is
@@ -194,18 +293,21 @@ def watch_run(run: str | os.PathLike[str], interval: float = 2.0, once: bool = F
         console.print(frame())
         return frames
     try:
-        if not console.is_terminal:
-            while max_frames is None or frames < max_frames:
-                console.print(frame())
-                console.file.flush()
-                if max_frames is not None and frames >= max_frames:
-                    break
-                time.sleep(interval)
-            return frames
-        with Live(frame(), console=console, refresh_per_second=4, transient=False) as live:
-            while max_frames is None or frames < max_frames:
-                time.sleep(interval)
-                live.update(frame())
+        with QuitKey(keys) as quit_key:
+            if not console.is_terminal:
+                while max_frames is None or frames < max_frames:
+                    console.print(frame())
+                    console.file.flush()
+                    if max_frames is not None and frames >= max_frames:
+                        break
+                    if quit_key.wait(interval):
+                        break
+                return frames
+            with Live(frame(), console=console, refresh_per_second=4, transient=False) as live:
+                while max_frames is None or frames < max_frames:
+                    if quit_key.wait(interval):
+                        break
+                    live.update(frame())
     except KeyboardInterrupt:  # Ctrl-C is how a watch ends
         pass
     return frames

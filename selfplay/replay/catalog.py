@@ -108,6 +108,20 @@ class CatalogTotals:
     newest_snapshot: int | None
 
 
+@dataclass
+class GameListing:
+    """One committed game as ``selfplay games`` lists it."""
+
+    game_id: str
+    worker: str
+    snapshot_min: int | None
+    snapshot_max: int | None
+    length: int
+    result: int  # final result from player 0's view: +1, 0 (draw) or -1
+    resigned: bool
+    finished_at: float | None  # Unix s
+
+
 def game_row(rec: Any, shard: str, offset: int, added_at: float) -> tuple:
     """The ``games`` row of record ``rec`` stored at ``offset`` in ``shard``."""
     t = rec.num_positions
@@ -261,6 +275,19 @@ class Catalog:
         if limit is not None:
             q += f" LIMIT {int(limit)}"
         return [r[0] for r in self.con.execute(q)]
+
+    def game_rows(self, last: int | None = None) -> list[GameListing]:
+        """One :class:`GameListing` per committed game in commit order (only the newest ``last``
+        if given); what ``selfplay games`` prints."""
+        cols = "game_id, worker, snapshot_min, snapshot_max, length, result, resigned, finished_at"
+        if last is None:
+            rows = self.con.execute(f"SELECT {cols} FROM games ORDER BY seq").fetchall()
+        else:
+            rows = self.con.execute(f"SELECT {cols} FROM games ORDER BY seq DESC LIMIT ?", (int(last),)).fetchall()
+            rows.reverse()
+        return [GameListing(str(r[0]), str(r[1]), None if r[2] is None else int(r[2]),
+                            None if r[3] is None else int(r[3]), int(r[4]), int(r[5]), bool(r[6]),
+                            None if r[7] is None else float(r[7])) for r in rows]
 
     def totals(self) -> CatalogTotals:
         g, p, s = self.con.execute(

@@ -4,12 +4,18 @@ The ``.npz`` file (a zip of ``.npy`` arrays, readable with ``numpy.load`` and no
 for N positions in commit order:
 
 - ``planes``   float32 (N, C, H, W) network input from the side to move's view;
-- ``policy``   float32 (N, A) search policy target, each row summing to 1 (a row is all zero
-  only for a position stored without any policy target);
+- ``policy``   float32 (N, A) search policy target, each row summing to 1 — for policy targets
+  only: a row is all zero for a reduced-search position (playout cap randomisation, Wu 2019)
+  unless ``reduced_policies`` is asked for, and for a position stored without any target;
+- ``policy_weight`` float32 (N,) 1 where ``policy`` is a target to train on (a full-search
+  position with a visit distribution), 0 elsewhere: multiply the policy loss by it;
 - ``value``    float32 (N,) final outcome from the mover's view, in {-1, 0, 1};
 - ``mask``     bool (N, A) legal moves;
+- ``action``   int32 (N,) the move played;
+- ``root_value`` float32 (N,) the search's root value from the mover's view in [-1, 1]; NaN
+  where no search ran (imported games);
 - ``snapshot`` int32 (N,) snapshot version that played the move (-1: not a network's move);
-- ``full_search`` bool (N,) the move had the full search budget (a policy target);
+- ``full_search`` bool (N,) the move had the full search budget;
 - ``move_number`` int32 (N,) position index within its game; ``game_index`` int32 (N,) index
   into ``game_ids`` (G,); ``info`` a JSON string: game, options, shapes, record schema version.
 
@@ -35,6 +41,7 @@ from selfplay.records import GameRecord
 from selfplay.replay import codec
 from selfplay.replay.batch import BatchBuilder
 from selfplay.replay.reader import game_key, make_record_game, newest_records, run_toml_game
+from selfplay.overwrite import check_output
 from selfplay.rundir import RunDir
 
 
@@ -74,14 +81,16 @@ def _select(records: list[GameRecord], last: int | None) -> list[tuple[GameRecor
 
 def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
                last: int | None = None, compress: bool = False, overwrite: bool = False,
-               chunk_positions: int = 65_536) -> ExportSummary:
-    """Write the run's positions (the newest ``last`` if given) to ``out`` as .npz."""
+               reduced_policies: bool = False, chunk_positions: int = 65_536) -> ExportSummary:
+    """Write the run's positions (the newest ``last`` if given) to ``out`` as .npz.
+
+    ``reduced_policies``: keep the visit distributions of reduced-search positions in ``policy``
+    (their ``policy_weight`` stays 0); by default those rows are zero."""
     run = RunDir.open(run_dir)
     out = Path(out)
     if last is not None and last < 1:
         raise RunDirError(f"--last {last}: the number of positions must be >= 1")
-    if out.exists() and not overwrite:
-        raise RunDirError(f"output {str(out)!r} exists; pass --overwrite to replace it")
+    check_output(out, overwrite)
     if out.suffix != ".npz":
         raise RunDirError(f"output {str(out)!r} must end in .npz")
     if not out.parent.exists():
@@ -122,7 +131,8 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
     a = game.num_actions
     specs = {
         "planes": (np.float32, (n, c, h, w)), "policy": (np.float32, (n, a)),
-        "value": (np.float32, (n,)), "mask": (np.bool_, (n, a)), "snapshot": (np.int32, (n,)),
+        "policy_weight": (np.float32, (n,)), "value": (np.float32, (n,)), "mask": (np.bool_, (n, a)),
+        "action": (np.int32, (n,)), "root_value": (np.float32, (n,)), "snapshot": (np.int32, (n,)),
         "full_search": (np.bool_, (n,)), "move_number": (np.int32, (n,)),
         "game_index": (np.int32, (n,)),
     }
@@ -136,8 +146,14 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
                 part = idx[lo:lo + chunk_positions]
                 b = builder.from_record(rec, None, part)
                 sl = slice(pos, pos + part.size)
-                for k in ("planes", "policy", "value", "mask", "snapshot", "full_search"):
+                for k in ("planes", "value", "mask", "snapshot", "full_search"):
                     arrays[k][sl] = b[k]
+                full = np.asarray(b["full_search"], dtype=bool)
+                target = full & (np.asarray(b["policy"]).sum(axis=1) > 0)
+                arrays["policy_weight"][sl] = target
+                arrays["policy"][sl] = b["policy"] if reduced_policies else np.where(full[:, None], b["policy"], 0.0)
+                arrays["action"][sl] = np.asarray(rec.actions)[part]
+                arrays["root_value"][sl] = np.asarray(rec.root_values)[part]
                 arrays["move_number"][sl] = part
                 arrays["game_index"][sl] = gi
                 pos += part.size
@@ -148,7 +164,7 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
         info = {"game": game.name, "options": game.options(), "input_shape": [c, h, w],
                 "num_actions": a, "positions": n, "games": len(chosen),
                 "record_schema_version": codec.SCHEMA_VERSION, "run": str(run.root.resolve()),
-                "last": last}
+                "last": last, "reduced_policies": bool(reduced_policies)}
         np.save(tmpdir / "game_ids.npy", ids)
         np.save(tmpdir / "info.npy", np.array(json.dumps(info)))
         partial = tmpdir / "out.npz"

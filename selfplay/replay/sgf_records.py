@@ -53,31 +53,58 @@ def result_from_re(re_value: str | None, where: str) -> int:
 
 # ---- export ------------------------------------------------------------------------------------
 
+_SIGN_TEXT = {1: "B+", -1: "W+", 0: "0"}
+
+
+def _sign(re_text: str) -> int:
+    return 0 if re_text == "0" else (1 if re_text.startswith("B") else -1)
+
+
 def record_to_sgf(rec: GameRecord) -> str:
-    """SGF text of one Go record (moves checked under the record's own rules)."""
+    """SGF text of one Go record (moves checked under the record's own rules).
+
+    The game starts from the record's first board: setup stones (a handicap) are written as
+    AB / AW with PL naming the first player. RE is the result *as recorded*: an imported game's
+    own RE text; a resignation as B+R / W+R; otherwise the Tromp–Taylor score of the final
+    board when it agrees with the record's winner, else just the winner ("B+", "W+", "0") with
+    the score noted in GC. Raises FormatError for a record that is not Go or whose moves the
+    rules refuse."""
     from selfplay.games.go import GoGame
     from selfplay.games.sgf import write_sgf
 
     game = make_record_game(rec)
     if not isinstance(game, GoGame):
         raise FormatError(f"game {rec.game_id!r} is {rec.game}, not Go; only Go games export to SGF")
-    if rec.num_positions and int(np.asarray(rec.boards[0]).any()):
-        raise FormatError(f"game {rec.game_id!r} starts from setup stones; SGF export handles "
-                          f"games from the empty board")
+    first = np.asarray(rec.boards[0]).ravel() if rec.num_positions else np.zeros(0, dtype=np.int8)
+    setup_black = [int(p) for p in np.flatnonzero(first == 1)]
+    setup_white = [int(p) for p in np.flatnonzero(first == 2)]
+    first_player = int(rec.to_play[0]) if rec.num_positions else 0
     moves = [int(a) for a in np.asarray(rec.actions)]
-    if rec.resigned:
+    comment: dict[str, Any] = {"game_id": rec.game_id, "worker": rec.worker_id, "seed": rec.seed,
+                               "resign_disabled": rec.resign_disabled}
+    if rec.resigned and rec.worker_id != IMPORT_WORKER:
         # The resigning position is kept as a training position, with the move its search
         # chose; that move was never played, so the game record ends before it.
         moves = moves[:-1]
+    try:
+        start = game.state_from_setup(setup_black, setup_white, first_player) \
+            if setup_black or setup_white or first_player else game.initial_state()
+        state = game.play_sequence(moves, start)
+    except IllegalMoveError as exc:
+        raise FormatError(f"game {rec.game_id!r}: {exc}") from None
+    recorded = str(rec.extra.get("RE", "")).strip() if rec.worker_id == IMPORT_WORKER else ""
+    if recorded:
+        result = recorded  # the game's own result (e.g. a time win), never re-scored
+    elif rec.resigned:
         result = {1: "B+R", -1: "W+R", 0: "0"}[int(rec.result)]
     else:
-        state = game.play_sequence(moves)
-        result = game.result_text(state) if game.is_terminal(state) else \
-            {1: "B+", -1: "W+", 0: "0"}[int(rec.result)]
-        scored = 0 if result == "0" else (1 if result.startswith("B") else -1)
-        if scored != int(rec.result):
-            raise FormatError(f"game {rec.game_id!r}: record result {rec.result} disagrees with "
-                              f"the Tromp-Taylor score {result}")
+        result = _SIGN_TEXT[int(rec.result)]
+        if game.is_terminal(state):
+            scored = game.result_text(state)
+            if _sign(scored) == int(rec.result):
+                result = scored
+            else:
+                comment["tromp_taylor_score"] = scored
     snaps = np.asarray(rec.snapshot)
     tp = np.asarray(rec.to_play)
 
@@ -90,10 +117,14 @@ def record_to_sgf(rec: GameRecord) -> str:
         lo, hi = int(s.min()), int(s.max())
         return f"plyfoundry snapshot {lo}" if lo == hi else f"plyfoundry snapshots {lo}-{hi}"
 
-    comment = {"game_id": rec.game_id, "worker": rec.worker_id, "seed": rec.seed,
-               "resign_disabled": rec.resign_disabled}
-    return write_sgf(game, moves, result=result, black=player(0), white=player(1),
-                     extra={"GN": rec.game_id, "GC": json.dumps(comment, sort_keys=True)})
+    extra: dict[str, Any] = {"GN": rec.game_id, "GC": json.dumps(comment, sort_keys=True)}
+    handicap = rec.extra.get("handicap") if rec.worker_id == IMPORT_WORKER else None
+    if not handicap and setup_black and not setup_white and first_player == 1:
+        handicap = len(setup_black)  # black stones placed, White to move: a handicap
+    if handicap:
+        extra["HA"] = int(handicap)
+    return write_sgf(game, moves, result=result, black=player(0), white=player(1), extra=extra,
+                     setup_black=setup_black, setup_white=setup_white, first_player=first_player)
 
 
 def _safe_name(game_id: str) -> str:
@@ -101,32 +132,64 @@ def _safe_name(game_id: str) -> str:
     return keep[:120] or "game"
 
 
+@dataclass
+class SgfExport:
+    """What an SGF export wrote, and the games it skipped with the reason."""
+
+    written: list[Path] = field(default_factory=list)
+    skipped: list[tuple[str, str]] = field(default_factory=list)
+
+
 def export_sgf(run_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str], *,
-               game_ids: Iterable[str] | None = None, overwrite: bool = False) -> list[Path]:
-    """Write the run's Go games (or the ``game_ids``) as ``OUT/GAME_ID.sgf``; returns the paths.
-    Non-Go games are refused when named and skipped otherwise."""
+               game_ids: Iterable[str] | None = None, overwrite: bool = False) -> SgfExport:
+    """Write the run's Go games (or the ``game_ids``) as ``OUT/GAME_ID.sgf``.
+
+    A game that cannot be written (not Go, moves the rules refuse, unreadable) is skipped with
+    its reason in the returned :class:`SgfExport`; the others are still written. An existing
+    file is an error before anything is written, unless ``overwrite``. A run with no Go game
+    at all is an error."""
     from selfplay.rundir import atomic_write_bytes
 
     run = RunDir.open(run_dir)
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise RunDirError(f"{str(out)!r} is a file; --out must be a directory")
+    rep = SgfExport()
     if game_ids is not None:
-        records = [read_game(run, gid) for gid in game_ids]
+        records = []
+        for gid in game_ids:
+            try:
+                records.append(read_game(run, gid))
+            except SelfplayError as exc:
+                rep.skipped.append((gid, str(exc)))
     else:
-        records = [r for r in RunReader(run, on_corrupt="raise").records() if r.game == "go"]
-    if not records:
-        raise FormatError(f"run {str(run.root)!r} holds no Go games to export")
-    out.mkdir(parents=True, exist_ok=True)
-    paths = []
+        records = []
+        for r in RunReader(run, on_corrupt="skip").records():
+            if r.game == "go":
+                records.append(r)
+            else:
+                rep.skipped.append((r.game_id, f"{r.game} is not Go"))
+    if not overwrite:
+        taken = [out / f"{_safe_name(r.game_id)}.sgf" for r in records]
+        taken = [p for p in taken if p.exists()]
+        if taken:
+            raise RunDirError(f"{str(taken[0])!r} exists ({len(taken)} file(s) would be replaced); "
+                              f"pass --overwrite to replace them")
+    texts = []
     for rec in records:
-        text = record_to_sgf(rec)
+        try:
+            texts.append((rec, record_to_sgf(rec)))
+        except SelfplayError as exc:
+            rep.skipped.append((rec.game_id, str(exc)))
+    if not texts:
+        why = f"; skipped {len(rep.skipped)}: {rep.skipped[0][1]}" if rep.skipped else ""
+        raise FormatError(f"run {str(run.root)!r} holds no Go games to export{why}")
+    out.mkdir(parents=True, exist_ok=True)
+    for rec, text in texts:
         path = out / f"{_safe_name(rec.game_id)}.sgf"
-        if path.exists() and not overwrite:
-            raise RunDirError(f"{str(path)!r} exists; pass --overwrite to replace it")
         atomic_write_bytes(path, text.encode())
-        paths.append(path)
-    return paths
+        rep.written.append(path)
+    return rep
 
 
 # ---- import ------------------------------------------------------------------------------------
