@@ -245,3 +245,61 @@ def test_unknown_backend_and_precision_are_refused():
         NetworkEvaluator(NET, backend="tensorflow")
     with pytest.raises(ConfigError, match="precision"):
         NetworkEvaluator(NET, precision="float8")
+
+
+# ---- selfplay snapshot export ------------------------------------------------------------------
+
+def _go_run(tmp_path):
+    from selfplay.config import dump_config, with_overrides, load_preset
+    from selfplay.rundir import RunDir
+    from selfplay.snapshots import SnapshotStore
+
+    run = tmp_path / "run"
+    RunDir.create(run)
+    cfg = with_overrides(load_preset("go9"), {"game.options": {"size": 5}, "network.blocks": 1,
+                                              "network.channels": 16, "network.value_hidden": 16})
+    (run / "run.toml").write_text(dump_config(cfg))
+    game = make_game("go", size=5)
+    store = SnapshotStore(RunDir.open(run))
+    nets = [build_network(game, cfg.network, seed=s) for s in (1, 2)]
+    for net in nets:
+        store.publish(net)
+    return run, game, nets
+
+
+def test_snapshot_export_writes_a_model_onnx_runtime_runs(tmp_path, capsys):
+    """Reference: ONNX Runtime on the written file; torch float32 on the snapshot's weights."""
+    ort = pytest.importorskip("onnxruntime")
+    from selfplay.cli import main
+
+    run, game, nets = _go_run(tmp_path)
+    out = tmp_path / "v1.onnx"
+    assert main(["snapshot", "export", str(run), "--version", "1", "--out", str(out)]) == 0
+    assert "snapshot 1" in capsys.readouterr().out
+    meta = read_model_metadata(out.read_bytes())
+    assert meta["plyfoundry.snapshot_version"] == "1" and meta["plyfoundry.game"] == "go"
+    planes = np.random.default_rng(0).random((5, *game.input_shape), dtype=np.float32).round()
+    logits, values = ort.InferenceSession(str(out), providers=["CPUExecutionProvider"]).run(None, {"planes": planes})
+    with torch.inference_mode():
+        ref_logits, ref_values = nets[0](torch.from_numpy(planes))
+    assert np.abs(logits - ref_logits.numpy()).max() < 1e-4 and np.abs(values - ref_values.numpy()).max() < 1e-4
+    latest = tmp_path / "latest.onnx"
+    assert main(["snapshot", "export", str(run), "--out", str(latest)]) == 0
+    assert read_model_metadata(latest.read_bytes())["plyfoundry.snapshot_version"] == "2"
+
+
+def test_snapshot_export_refuses_bad_requests(tmp_path, capsys):
+    from selfplay.cli import main
+
+    run, _, _ = _go_run(tmp_path)
+    out = tmp_path / "x.onnx"
+    assert main(["snapshot", "export", str(run), "--version", "9", "--out", str(out)]) == 2
+    assert "no snapshot version 9 (it has 1..2" in capsys.readouterr().err
+    assert main(["snapshot", "export", str(run), "--version", "first", "--out", str(out)]) == 2
+    assert "'first' is not a snapshot number" in capsys.readouterr().err
+    assert main(["snapshot", "export", str(tmp_path / "nowhere"), "--out", str(out)]) == 2
+    assert "does not exist" in capsys.readouterr().err
+    out.write_text("keep me")
+    assert main(["snapshot", "export", str(run), "--out", str(out)]) == 2
+    assert "--overwrite" in capsys.readouterr().err and out.read_text() == "keep me"
+    assert not out.with_name(".x.onnx.tmp").exists()
