@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 
+import pytest
+
 from selfplay.cli import main
 
 
@@ -37,3 +39,14 @@ def test_bench_refuses_an_unknown_backend(capsys):
 def test_bench_refuses_bad_arguments(capsys):
     assert main(["bench", "search", "--simulations", "0", "--game", "tictactoe"]) == 2
     assert "--simulations=0" in capsys.readouterr().err
+
+
+@pytest.mark.slow  # starts three worker processes with the reference network
+def test_bench_all_runs_its_parts_and_refuses_unknown_ones(capsys):
+    assert main(["bench", "all", "--parts", "nonsense"]) == 2
+    assert "--parts: 'nonsense'" in capsys.readouterr().err
+    assert main(["bench", "all", "--json", "--quick", "--parts", "memory"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    rss = out["memory"]["peak_rss_bytes_by_games_in_parallel"]
+    assert set(rss) == {"16", "64", "256"} and all(v > 50 * 2**20 for v in rss.values())
+    assert out["seconds_total"] > 0
