@@ -75,7 +75,13 @@ class WorkerConfig(BaseModel):
         description="games one worker plays at once; one leaf of each (more with virtual loss) "
         "goes into a single batched forward pass per step",
     )
-    threads: int = Field(1, ge=1, le=256, description="torch threads per worker (one per CPU it is given)")
+    threads: int = Field(1, ge=1, le=256, description="threads of each worker's forward pass (one per CPU it is given)")
+    inference: Literal["auto", "torch", "openvino", "onnxruntime"] = Field(
+        "auto",
+        description="runtime of the network's forward pass: 'auto' = the fastest that imports here, "
+        "measured at the worker's batch size when it starts (a couple of seconds; remembered per "
+        "machine), or one by name; precision follows the CPU (bfloat16 on matrix units, else float32)",
+    )
     snapshot_pickup: Literal["between_moves", "between_games"] = Field(
         "between_moves",
         description="when a worker looks for a newer snapshot: between moves (every "

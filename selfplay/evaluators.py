@@ -19,23 +19,19 @@ Implementations:
 
 from __future__ import annotations
 
+import copy
+import threading
 import time
-from dataclasses import dataclass
-from typing import Any, Protocol, Sequence, runtime_checkable
+from dataclasses import dataclass, field
+from typing import Any, Callable, Protocol, Sequence, runtime_checkable
 
 import numpy as np
 import torch
 
 from selfplay.errors import ConfigError
 from selfplay.games.base import Game
-from selfplay.network import PolicyValueNet, cpu_has_bf16_matrix_units, fold_for_inference
-
-#: forward-pass precisions of :class:`NetworkEvaluator`; "auto" = bfloat16 where the CPU has
-#: bfloat16 matrix units (AMX), float32 elsewhere
-PRECISIONS = ("auto", "float32", "bfloat16")
-#: "auto" takes bfloat16 only for towers at least this wide: measured here, narrower nets run
-#: faster in float32 (the conversions cost more than the matrix units save)
-AUTO_BF16_MIN_CHANNELS = 32
+from selfplay.inference.base import INFERENCE_CHOICES, PRECISIONS
+from selfplay.network import PolicyValueNet
 
 
 @dataclass
@@ -108,88 +104,205 @@ class EvaluatorTimes:
     leaves: int = 0
 
 
+@dataclass
+class SwapStats:
+    """How new weights (snapshots) reached the forward pass.
+
+    swaps_total: weight sets put into use; swap_seconds_total / last_swap_seconds: seconds spent
+    exporting and compiling them (in the background for :meth:`NetworkEvaluator.prepare`, on the
+    hot path for weights changed in place); blocking_swaps_total: of those, swaps compiled on the
+    hot path; refused: version -> why its compile failed (the previous weights stayed in use)."""
+
+    swaps_total: int = 0
+    blocking_swaps_total: int = 0
+    swap_seconds_total: float = 0.0
+    last_swap_seconds: float = 0.0
+    refused: dict[int, str] = field(default_factory=dict)
+
+
+def softmax_over_legal(logits: np.ndarray, legal: np.ndarray) -> np.ndarray:
+    """float32 (N, A): the softmax of ``logits`` over each row's legal actions, 0 on illegal ones."""
+    masked = np.where(legal, logits.astype(np.float32, copy=False), np.float32(-np.inf))
+    masked -= masked.max(axis=1, keepdims=True)
+    np.exp(masked, out=masked)
+    masked /= masked.sum(axis=1, keepdims=True)
+    return masked
+
+
+#: backend chosen by "auto" per (network shape, batch, threads, precision) in this process, so a
+#: second evaluator of the same worker does not calibrate again
+_AUTO_CHOICES: dict[str, str] = {}
+
+
 class NetworkEvaluator:
-    """Batched policy-value network evaluation under ``torch.inference_mode``.
+    """Batched policy-value network evaluation on an inference backend.
 
-    ``threads`` sets ``torch.set_num_threads`` (process-wide) so that workers sharing a machine do
-    not fight over cores; one thread by default. Pass ``game`` to check the fit at once.
-
-    The forward pass runs on an inference copy of the net (:func:`selfplay.network.fold_for_inference`:
-    batch norms folded into the convolutions, channels-last layout), which computes the same
-    function faster on these CPUs. Weights loaded later into ``net`` in place (for instance by
-    ``load_state_dict``) are noticed at the next call and the copy is rebuilt.
+    ``backend``: "torch", "openvino", "onnxruntime" (see :mod:`selfplay.inference`) or "auto" =
+    the fastest of those that import here, measured at ``batch_hint`` leaves per call by a short
+    calibration (:func:`selfplay.inference.choose.choose_backend`; ``self.choice`` says what it
+    measured). ``threads``: threads of the forward pass (torch's is process-wide), one by
+    default, so workers sharing a machine do not fight over cores. Pass ``game`` to check the
+    fit at once.
 
     ``precision``: "float32", "bfloat16", or "auto" (default) = bfloat16 on CPUs with bfloat16
-    matrix units (AMX: several times the float32 speed at batch 16 and more) for towers of at
-    least 32 channels, float32 otherwise.
-    Priors and values come back as float32 either way; bfloat16 keeps about 3 significant
-    digits, which moves priors and values by well under a percent (reduced-precision inference
-    is common practice for search networks)."""
+    matrix units (AMX), float32 elsewhere; :func:`selfplay.inference.resolve_precision` has
+    each backend's rule. Priors and values come back as float32 either way; bfloat16 keeps
+    about 3 significant digits, which moves priors and values by well under a percent
+    (reduced-precision inference is common practice for search networks).
+
+    New weights: :meth:`prepare` compiles a snapshot in a background thread while the current
+    one keeps playing, and :meth:`swap_if_ready` puts it into use between steps. Weights loaded
+    into ``net`` in place (``load_state_dict``, an optimiser step) are noticed at the next call
+    and compiled there (a blocking swap)."""
 
     def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None,
-                 channels_last: bool = True, precision: str = "auto") -> None:
+                 channels_last: bool = True, precision: str = "auto", backend: str = "torch",
+                 batch_hint: int | None = None, say: Callable[[str], None] | None = None) -> None:
         if not isinstance(net, PolicyValueNet):
             raise ConfigError(f"NetworkEvaluator needs a PolicyValueNet, got {type(net).__name__}")
         if not isinstance(threads, int) or threads < 1:
             raise ConfigError(f"evaluator threads={threads!r} must be a positive integer")
         if precision not in PRECISIONS:
             raise ConfigError(f"evaluator precision={precision!r} must be one of {', '.join(PRECISIONS)}")
-        if precision == "auto":
-            wide = net.config.channels >= AUTO_BF16_MIN_CHANNELS
-            precision = "bfloat16" if wide and cpu_has_bf16_matrix_units() else "float32"
-        self.precision = precision
-        self.dtype = torch.bfloat16 if precision == "bfloat16" else torch.float32
-        self.channels_last = bool(channels_last)
+        if backend not in INFERENCE_CHOICES:
+            raise ConfigError(f"inference backend {backend!r} must be one of {', '.join(INFERENCE_CHOICES)}")
         self.net = net
         self.threads = threads
-        torch.set_num_threads(threads)
+        self.requested_precision = precision
+        self.channels_last = bool(channels_last)  # kept for callers; every backend lays inputs out itself
         self.times = EvaluatorTimes()
-        # tensors whose version counters tell that weights were replaced in place: the first
-        # and last parameter and the first batch-norm statistic (load_state_dict and optimizer
-        # steps touch them all; checking three keeps the per-call cost to a few microseconds)
-        params, buffers = list(net.parameters()), list(net.buffers())
-        self._tensors = [params[0], params[-1]] + buffers[:1]
-        self._fingerprint = -1
-        self._inference: torch.nn.Module | None = None
+        self.swaps = SwapStats()
+        self.choice: Any = None
+        self._say = say
+        self._lock = threading.Lock()
+        self._ready: tuple[int, PolicyValueNet, Any, float] | None = None
+        self._pending: threading.Thread | None = None
+        torch.set_num_threads(threads)
         if game is not None:
             self.check_game(game)
+        self.backend = backend if backend != "auto" else self._choose(batch_hint)
+        if self.choice is None:
+            self._compiled = self._compile(net)
+        self._fingerprint = self._weights_fingerprint()
+
+    # ---- backend --------------------------------------------------------------------------
+    def _choose(self, batch_hint: int | None) -> str:
+        from selfplay.inference.choose import cache_key, choose_backend
+
+        batch = max(1, int(batch_hint or 32))
+        key = cache_key(self.net, batch, self.threads, self.requested_precision)
+        if key in _AUTO_CHOICES:
+            return _AUTO_CHOICES[key]
+        self.choice = choose_backend(self.net, batch, self.threads, self.requested_precision, say=self._say)
+        self._compiled = self.choice.compiled
+        _AUTO_CHOICES[key] = self.choice.backend
+        if self._say:
+            self._say(self.choice.describe())
+        return self.choice.backend
+
+    def _compile(self, net: PolicyValueNet) -> Any:
+        from selfplay.inference.base import build_backend
+
+        return build_backend(self.backend, net, self.threads, self.requested_precision)
 
     @property
-    def inference_net(self) -> torch.nn.Module:
-        """The module the forward pass runs on, rebuilt when the source net's weights changed."""
-        fingerprint = sum(t._version for t in self._tensors)
-        if self._inference is None or fingerprint != self._fingerprint:
-            self._inference = fold_for_inference(self.net, channels_last=self.channels_last, dtype=self.dtype)
-            self._fingerprint = fingerprint
-        return self._inference
+    def compiled(self) -> Any:
+        """The compiled network in use now: float32 planes -> (logits, values)."""
+        return self._current()
 
+    @property
+    def precision(self) -> str:
+        """The precision the forward pass runs at now ("float32" or "bfloat16")."""
+        return self._compiled.precision
+
+    def _weights_fingerprint(self) -> int:
+        # version counters of the first and last parameter and the first batch-norm statistic:
+        # load_state_dict and optimiser steps touch them all (a few microseconds per call)
+        params, buffers = list(self.net.parameters()), list(self.net.buffers())
+        return sum(t._version for t in [params[0], params[-1]] + buffers[:1]) + id(self.net)
+
+    def _current(self) -> Any:
+        fingerprint = self._weights_fingerprint()
+        if fingerprint != self._fingerprint:  # weights replaced in place: compile on the hot path
+            t0 = time.perf_counter()
+            self._compiled = self._compile(self.net)
+            self._note_swap(time.perf_counter() - t0, blocking=True)
+            self._fingerprint = self._weights_fingerprint()
+        return self._compiled
+
+    def _note_swap(self, seconds: float, blocking: bool) -> None:
+        self.swaps.swaps_total += 1
+        self.swaps.blocking_swaps_total += int(blocking)
+        self.swaps.swap_seconds_total += seconds
+        self.swaps.last_swap_seconds = seconds
+
+    # ---- new weights off the hot path --------------------------------------------------------
+    def prepare(self, weights: PolicyValueNet | dict[str, torch.Tensor], version: int,
+                background: bool = True) -> bool:
+        """Compile ``weights`` (a net of the same shape, or its state dict) as snapshot
+        ``version``; in a background thread unless ``background`` is False. The current weights
+        stay in use until :meth:`swap_if_ready`. Weights that do not fit, or a failed compile,
+        are recorded in ``swaps.refused`` (the version and why) and change nothing; returns
+        False when the weights were refused at once."""
+        new_net = copy.deepcopy(self.net)
+        state = weights.state_dict() if isinstance(weights, torch.nn.Module) else weights
+        try:
+            new_net.load_state_dict(state, strict=True)
+        except (RuntimeError, TypeError, KeyError) as exc:
+            self.swaps.refused[int(version)] = f"weights do not fit the network: {str(exc).splitlines()[0]}"
+            return False
+        new_net.eval()
+
+        def work() -> None:
+            t0 = time.perf_counter()
+            try:
+                compiled = self._compile(new_net)
+            except Exception as exc:  # noqa: BLE001 - a runtime may fail in many ways; keep playing
+                with self._lock:
+                    self.swaps.refused[int(version)] = f"{type(exc).__name__}: {exc}".splitlines()[0]
+                return
+            with self._lock:
+                self._ready = (int(version), new_net, compiled, time.perf_counter() - t0)
+
+        if self._pending is not None:
+            self._pending.join()  # one compile at a time; the newer version replaces the older
+        if background:
+            self._pending = threading.Thread(target=work, name=f"compile-v{version}", daemon=True)
+            self._pending.start()
+        else:
+            work()
+        return True
+
+    def swap_if_ready(self, wait: bool = False) -> int | None:
+        """Put a prepared snapshot into use; returns its version, or None if none is ready
+        (``wait``: block until the pending compile has finished)."""
+        if wait and self._pending is not None:
+            self._pending.join()
+        with self._lock:
+            ready, self._ready = self._ready, None
+        if ready is None:
+            return None
+        version, new_net, compiled, seconds = ready
+        self.net, self._compiled = new_net, compiled
+        self._fingerprint = self._weights_fingerprint()
+        self._note_swap(seconds, blocking=False)
+        return version
+
+    # ---- evaluation ---------------------------------------------------------------------------
     def check_game(self, game: Game) -> None:
         problem = self.net.fits(game)
         if problem:
             raise ConfigError(problem)
 
-    def input_tensor(self, planes: np.ndarray) -> torch.Tensor:
-        """The tensor the net is fed for float32 planes (N, C, H, W), in its memory format."""
-        planes = np.asarray(planes, dtype=np.float32)
-        if self.channels_last:
-            # lay the planes out channels-last in numpy, then view them as NCHW: one copy
-            x = torch.from_numpy(np.ascontiguousarray(planes.transpose(0, 2, 3, 1))).permute(0, 3, 1, 2)
-        else:
-            x = torch.from_numpy(np.ascontiguousarray(planes))
-        return x.to(self.dtype) if self.dtype != torch.float32 else x
+    def forward_logits(self, planes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Raw network outputs for float32 planes (N, C, H, W): (logits (N, A), values (N,))."""
+        return self._current()(planes)
 
     def forward_planes(self, planes: np.ndarray, legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Network on ready-made input planes: (priors over legal moves, values)."""
         t0 = time.perf_counter()
-        module = self.inference_net
-        with torch.inference_mode():
-            x = self.input_tensor(planes)
-            logits, values = module(x)
-            logits, values = logits.float(), values.float()
-            mask = torch.from_numpy(np.ascontiguousarray(legal, dtype=bool))
-            logits = logits.masked_fill(~mask, float("-inf"))
-            priors = torch.softmax(logits, dim=1)
-            out = priors.numpy().astype(np.float32, copy=False), values.numpy().astype(np.float32, copy=False)
+        logits, values = self._current()(planes)
+        out = softmax_over_legal(logits, np.asarray(legal, dtype=bool)), values.astype(np.float32, copy=False)
         self.times.forward += time.perf_counter() - t0
         return out
 
@@ -200,6 +313,15 @@ class NetworkEvaluator:
         self.times.calls += 1
         self.times.leaves += len(batch)
         return self.forward_planes(planes, batch.legal)
+
+    def describe(self) -> dict[str, Any]:
+        """Backend facts for metric lines: backend, precision, measured bound, swap costs."""
+        bound = self.choice.bound_evals_per_second if self.choice is not None else None
+        return {"inference_backend": self.backend, "inference_precision": self.precision,
+                "inference_bound_evals_per_second": bound,
+                "snapshot_swaps_total": self.swaps.swaps_total,
+                "snapshot_swap_seconds_last": self.swaps.last_swap_seconds,
+                "snapshot_swap_seconds_total": self.swaps.swap_seconds_total}
 
 
 class RandomRolloutEvaluator:
@@ -252,7 +374,8 @@ class MixedEvaluator:
     rollouts, Silver et al. 2016). ``lam`` must lie in [0, 1]."""
 
     def __init__(self, net: PolicyValueNet, lam: float, threads: int = 1, game: Game | None = None,
-                 max_moves: int | None = None) -> None:
+                 max_moves: int | None = None, backend: str = "torch", batch_hint: int | None = None,
+                 say: Callable[[str], None] | None = None) -> None:
         try:
             lam = float(lam)
         except (TypeError, ValueError):
@@ -260,13 +383,23 @@ class MixedEvaluator:
         if not 0.0 <= lam <= 1.0 or lam != lam:
             raise ConfigError(f"rollout mix lambda={lam} must be in [0, 1]")
         self.lam = lam
-        self.network = NetworkEvaluator(net, threads=threads, game=game)
+        self.network = NetworkEvaluator(net, threads=threads, game=game, backend=backend,
+                                        batch_hint=batch_hint, say=say)
         self.max_moves = max_moves
         self.times = self.network.times
 
     @property
     def net(self) -> PolicyValueNet:
         return self.network.net
+
+    def prepare(self, weights: Any, version: int, background: bool = True) -> None:
+        self.network.prepare(weights, version, background)
+
+    def swap_if_ready(self, wait: bool = False) -> int | None:
+        return self.network.swap_if_ready(wait)
+
+    def describe(self) -> dict[str, Any]:
+        return self.network.describe()
 
     def check_game(self, game: Game) -> None:
         self.network.check_game(game)
@@ -283,18 +416,25 @@ class MixedEvaluator:
 
 
 def make_evaluator(net: PolicyValueNet | None, game: Game, rollout_mix_lambda: float = 0.0,
-                   threads: int = 1) -> Evaluator:
+                   threads: int = 1, inference: str = "torch", batch_hint: int | None = None,
+                   say: Callable[[str], None] | None = None) -> Evaluator:
     """The evaluator a run's settings ask for: the network (``lambda = 0``), the network mixed
-    with rollouts (``0 < lambda``), or pure rollouts when there is no network."""
+    with rollouts (``0 < lambda``), or pure rollouts when there is no network.
+
+    ``inference``: the backend of the network's forward pass ("auto", "torch", "openvino",
+    "onnxruntime"; ``[worker] inference``); ``batch_hint``: leaves per call the worker will
+    feed it (games in parallel x leaves per game), the batch "auto" calibrates at; ``say``
+    receives the one-line notices of "auto" (what it chose, backends it could not use)."""
     if net is None:
         return RandomRolloutEvaluator()
     if rollout_mix_lambda == 0.0:
-        return NetworkEvaluator(net, threads=threads, game=game)
-    return MixedEvaluator(net, rollout_mix_lambda, threads=threads, game=game)
+        return NetworkEvaluator(net, threads=threads, game=game, backend=inference, batch_hint=batch_hint, say=say)
+    return MixedEvaluator(net, rollout_mix_lambda, threads=threads, game=game, backend=inference,
+                          batch_hint=batch_hint, say=say)
 
 
 __all__ = [
     "Evaluator", "EvaluatorTimes", "LeafBatch", "MixedEvaluator", "NetworkEvaluator",
-    "RandomRolloutEvaluator", "UniformEvaluator", "make_evaluator", "random_rollout_value",
-    "uniform_priors",
+    "RandomRolloutEvaluator", "SwapStats", "UniformEvaluator", "make_evaluator", "random_rollout_value",
+    "softmax_over_legal", "uniform_priors",
 ]

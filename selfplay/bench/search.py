@@ -1,18 +1,21 @@
-"""``selfplay bench search``: how close self-play comes to the network's own speed.
+"""``selfplay bench search``: how close self-play comes to the network's own speed, per backend.
 
-Measured in one run, same network, same torch thread count:
+Measured in one run, same network, same thread count, for every inference backend that imports
+here (``--backends``):
 
-- ``inference_bound_evals_per_second``: evaluations/s of the network alone (one forward pass of
-  ready-made input planes) at the mean batch size the search fed it;
+- ``bound_evals_per_second``: evaluations/s of the compiled network alone (one forward pass of
+  ready-made input planes) at the mean batch size the search fed it — the *inference bound*;
 - ``selfplay_evals_per_second`` and ``positions_per_second`` of the vectorised worker with
-  ``--games-in-parallel`` games;
-- ``efficiency`` = self-play evals/s / inference bound (target >= 0.8);
-- ``batching_speedup`` = positions/s with G games over positions/s of ONE game with batch-1
-  evaluation (target >= 3);
-- the share of self-play time in rules, tree and network (and input encoding within network).
+  ``--games-in-parallel`` games on that backend;
+- ``efficiency`` = self-play evals/s / that backend's own bound (target >= 0.85);
 
-Figures are medians over repeats of ``--seconds`` each; within a repeat the three measurements
-run in interleaved one-second slices. The machine may be shared, so read the ratios.
+and at the top level ``best_backend`` (most self-play positions/s), ``speedup_vs_torch`` (its
+positions/s over torch's, in the same run) and ``efficiency`` (the best backend's). For the best
+backend also: ``batching_speedup`` = positions/s with G games over positions/s of ONE game with
+batch-1 evaluation (target >= 3), and the share of self-play time in rules, tree and network.
+
+Figures are medians over repeats; within a repeat the backends' measurements run in interleaved
+one-second slices, so that a drifting load on a shared machine touches all alike. Read the ratios.
 """
 
 from __future__ import annotations
@@ -47,13 +50,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="game to play (default go9: Go on 9x9)")
     parser.add_argument("--net", default="reference", choices=["tiny", "reference"],
                         help="network size: reference = 6 blocks x 64 channels (default)")
-    parser.add_argument("--seconds", type=float, default=8.0, help="seconds per measurement (default 8)")
+    parser.add_argument("--seconds", type=float, default=6.0, help="seconds per measurement (default 6)")
     parser.add_argument("--repeats", type=int, default=3, help="repeats of each measurement; medians are shown (default 3)")
     parser.add_argument("--games-in-parallel", type=int, default=64, help="games per worker, G (default 64)")
     parser.add_argument("--leaves-per-game", type=int, default=1, help="leaves per game per batch, virtual loss beyond 1 (default 1)")
     parser.add_argument("--simulations", type=int, default=64, help="simulations per move (default 64)")
     parser.add_argument("--algorithm", default="puct", choices=["puct", "gumbel"], help="root search (default puct)")
-    parser.add_argument("--threads", type=int, default=1, help="torch threads (default 1)")
+    parser.add_argument("--threads", type=int, default=1, help="forward-pass threads (default 1)")
+    parser.add_argument("--backends", default="all",
+                        help="comma-separated inference backends to compare, or 'all' that import here "
+                        "(default all: torch, openvino, onnxruntime)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the worker (default 0)")
     parser.add_argument("--precision", default="auto", choices=["auto", "float32", "bfloat16"],
                         help="forward-pass precision (default auto: bfloat16 where the CPU has matrix units)")
@@ -115,124 +121,167 @@ class _Meter:
 
 
 def inference_bound(evaluator: NetworkEvaluator, input_shape: tuple[int, ...], batch: int, seconds: float) -> float:
-    """Evaluations/s of the evaluator's net alone (its inference form, a ready input tensor in
-    the same memory format, same threads, inference mode) on random 0/1 planes at ``batch``."""
-    import torch
+    """Evaluations/s of the evaluator's compiled network alone (same backend, threads and
+    precision) on random 0/1 planes at ``batch``."""
+    from selfplay.inference.choose import time_forward
 
     planes = np.random.default_rng(0).random((batch, *input_shape), dtype=np.float32).round()
-    x = evaluator.input_tensor(planes)
-    net = evaluator.inference_net
-    n = 0
-    with torch.inference_mode():
-        for _ in range(3):
-            net(x)
-        t0 = time.perf_counter()
-        while time.perf_counter() - t0 < seconds:
-            net(x)
-            n += batch
-    return n / (time.perf_counter() - t0)
+    return time_forward(evaluator.compiled, planes, seconds)
 
 
-def run(args: argparse.Namespace) -> int:
+def _backends(arg: str) -> list[str]:
+    from selfplay.inference import BACKEND_NAMES, backend_available
+
+    if arg == "all":
+        return [b for b in BACKEND_NAMES if backend_available(b) is None]
+    names = [b.strip() for b in arg.split(",") if b.strip()]
+    for b in names:
+        problem = backend_available(b)
+        if problem:
+            raise ConfigError(f"--backends: {b} cannot run here ({problem})")
+    if not names:
+        raise ConfigError("--backends: name at least one backend, or 'all'")
+    return list(dict.fromkeys(names))
+
+
+def measure(args: argparse.Namespace) -> dict[str, Any]:
+    """Run the benchmark described by ``args``; returns the figures (see the module docstring)."""
     from selfplay.evaluators import NetworkEvaluator
     from selfplay.network import NetworkConfig, build_network
     from selfplay.worker import SelfPlayWorker
 
     _check(args)
+    backends = _backends(getattr(args, "backends", "all"))
     name, options = _GAMES[args.game]
     game = make_game(name, **options)
     net_cfg = NetworkConfig.reference() if args.net == "reference" else NetworkConfig.tiny()
     net = build_network(game, net_cfg, seed=args.seed)
     search = SearchConfig(algorithm=args.algorithm, simulations=args.simulations,
                           leaves_per_game=args.leaves_per_game, temperature_moves=10_000)
-    evaluator = NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision)
-    many = SelfPlayWorker(game, evaluator, search, games_in_parallel=args.games_in_parallel,
-                          worker_id="bench", seed=args.seed)
     single_search = search.model_copy(update={"leaves_per_game": 1})
-    one = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision),
-                         single_search,
-                         games_in_parallel=1, worker_id="bench1", seed=args.seed)
-    many.step()  # warm-up (compilation, allocator)
-    one.step()
-    # Each repeat interleaves one-second slices of the three measurements (G games, the net
-    # alone, one game), so that a drifting load on a shared machine touches all three alike.
-    many_runs, one_runs, bounds, bounds_1 = [], [], [], []
+    evaluators, many, one = {}, {}, {}
+    for b in backends:
+        evaluators[b] = NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision, backend=b)
+        many[b] = SelfPlayWorker(game, evaluators[b], search, games_in_parallel=args.games_in_parallel,
+                                 worker_id="bench", seed=args.seed)
+        one[b] = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game,
+                                                       precision=args.precision, backend=b),
+                                single_search, games_in_parallel=1, worker_id="bench1", seed=args.seed)
+        many[b].step()  # warm-up (compilation, allocator)
+        one[b].step()
+    runs: dict[str, list[dict[str, float]]] = {b: [] for b in backends}
+    one_runs: dict[str, list[dict[str, float]]] = {b: [] for b in backends}
+    bounds: dict[str, list[float]] = {b: [] for b in backends}
+    bounds_1: dict[str, list[float]] = {b: [] for b in backends}
     slices = max(1, round(args.seconds))
     piece = args.seconds / slices
+    shape = tuple(game.input_shape)
     for _ in range(args.repeats):
-        m, o = _Meter(many), _Meter(one)
-        evals_alone, evals_alone_1, seconds_alone = 0.0, 0.0, 0.0
+        meters = {b: (_Meter(many[b]), _Meter(one[b])) for b in backends}
+        alone = {b: [0.0, 0.0] for b in backends}
         for _ in range(slices):
-            m.run(piece)
-            batch = max(1, round(m.mean_batch()))
-            evals_alone += inference_bound(evaluator, tuple(game.input_shape), batch, piece / 2) * piece / 2
-            evals_alone_1 += inference_bound(evaluator, tuple(game.input_shape), 1, piece / 2) * piece / 2
-            seconds_alone += piece / 2
-            o.run(piece)
-        many_runs.append(m.figures())
-        one_runs.append(o.figures())
-        bounds.append(evals_alone / seconds_alone)
-        bounds_1.append(evals_alone_1 / seconds_alone)
+            for b in backends:
+                m, o = meters[b]
+                m.run(piece)
+                batch = max(1, round(m.mean_batch()))
+                alone[b][0] += inference_bound(evaluators[b], shape, batch, piece / 2)
+                alone[b][1] += inference_bound(evaluators[b], shape, 1, piece / 4)
+                o.run(piece / 2)
+        for b in backends:
+            runs[b].append(meters[b][0].figures())
+            one_runs[b].append(meters[b][1].figures())
+            bounds[b].append(alone[b][0] / slices)
+            bounds_1[b].append(alone[b][1] / slices)
 
-    def med(runs: list[dict[str, Any]], key: str) -> float:
-        return float(statistics.median(r[key] for r in runs))
+    def med(values: Any) -> float:
+        return float(statistics.median(list(values)))
 
-    bound = float(statistics.median(bounds))
-    evals = med(many_runs, "evals_per_second")
-    pps = med(many_runs, "positions_per_second")
-    pps_one = med(one_runs, "positions_per_second")
-    out = {
+    per_backend: dict[str, dict[str, Any]] = {}
+    for b in backends:
+        per_backend[b] = {
+            "precision": evaluators[b].precision,
+            "bound_evals_per_second": med(bounds[b]),
+            "selfplay_evals_per_second": med(r["evals_per_second"] for r in runs[b]),
+            "positions_per_second": med(r["positions_per_second"] for r in runs[b]),
+            # ratios per repeat (each from measurements taken back to back), then their median
+            "efficiency": med(r["evals_per_second"] / x for r, x in zip(runs[b], bounds[b])),
+            "mean_batch_size": med(r["mean_batch"] for r in runs[b]),
+            "microseconds_per_eval_outside_forward": med(r["us_per_eval_outside_forward"] for r in runs[b]),
+        }
+    best = max(backends, key=lambda b: per_backend[b]["positions_per_second"])
+    r_best, o_best = runs[best], one_runs[best]
+    out: dict[str, Any] = {
         "game": args.game,
         "network": f"{net_cfg.blocks}x{net_cfg.channels}",
         "threads": args.threads,
-        "precision": evaluator.precision,
         "algorithm": args.algorithm,
         "simulations": args.simulations,
         "games_in_parallel": args.games_in_parallel,
         "leaves_per_game": args.leaves_per_game,
-        "mean_batch_size": med(many_runs, "mean_batch"),
-        "inference_bound_evals_per_second": bound,
-        "selfplay_evals_per_second": evals,
-        "positions_per_second": pps,
-        # ratios per repeat (each from measurements taken back to back), then their median:
-        # steadier on a shared machine than a ratio of medians
-        "efficiency": float(statistics.median(m["evals_per_second"] / b for m, b in zip(many_runs, bounds))),
-        "single_game_positions_per_second": pps_one,
-        "single_game_evals_per_second": med(one_runs, "evals_per_second"),
+        "backends": per_backend,
+        "best_backend": best,
+        "speedup_vs_torch": (med(r["positions_per_second"] / t["positions_per_second"]
+                                 for r, t in zip(r_best, runs["torch"]))
+                             if "torch" in backends else None),
+        "efficiency": per_backend[best]["efficiency"],
+        "precision": per_backend[best]["precision"],
+        "mean_batch_size": per_backend[best]["mean_batch_size"],
+        "inference_bound_evals_per_second": per_backend[best]["bound_evals_per_second"],
+        "selfplay_evals_per_second": per_backend[best]["selfplay_evals_per_second"],
+        "positions_per_second": per_backend[best]["positions_per_second"],
+        "single_game_positions_per_second": med(o["positions_per_second"] for o in o_best),
+        "single_game_evals_per_second": med(o["evals_per_second"] for o in o_best),
         # the network's own gain from batching: an upper bound on batching_speedup when the
         # single game runs its network near speed
-        "inference_bound_batch1_evals_per_second": float(statistics.median(bounds_1)),
-        "network_batch_scaling": float(statistics.median(b / max(b1, 1e-9) for b, b1 in zip(bounds, bounds_1))),
-        "batching_speedup": float(statistics.median(m["positions_per_second"] / max(o["positions_per_second"], 1e-9)
-                                                    for m, o in zip(many_runs, one_runs))),
-        "time_share_rules": med(many_runs, "share_rules"),
-        "time_share_tree": med(many_runs, "share_tree"),
-        "time_share_network": med(many_runs, "share_network"),
-        "time_share_encode": med(many_runs, "share_encode"),
-        "time_share_forward": med(many_runs, "share_forward"),
-        "microseconds_per_eval_outside_forward": med(many_runs, "us_per_eval_outside_forward"),
+        "inference_bound_batch1_evals_per_second": med(bounds_1[best]),
+        "network_batch_scaling": med(x / max(x1, 1e-9) for x, x1 in zip(bounds[best], bounds_1[best])),
+        "batching_speedup": med(m["positions_per_second"] / max(o["positions_per_second"], 1e-9)
+                                for m, o in zip(r_best, o_best)),
+        "time_share_rules": med(r["share_rules"] for r in r_best),
+        "time_share_tree": med(r["share_tree"] for r in r_best),
+        "time_share_network": med(r["share_network"] for r in r_best),
+        "time_share_encode": med(r["share_encode"] for r in r_best),
+        "time_share_forward": med(r["share_forward"] for r in r_best),
+        "microseconds_per_eval_outside_forward": per_backend[best]["microseconds_per_eval_outside_forward"],
         # the evaluator's forward calls inside self-play (with masking and softmax), evals per
-        # second of forward time: compare with the inference bound to see whether the network
-        # itself ran slower inside self-play than alone
-        "selfplay_forward_evals_per_second": med(many_runs, "forward_evals_per_second"),
+        # second of forward time: compare with the bound to see whether the network itself ran
+        # slower inside self-play than alone
+        "selfplay_forward_evals_per_second": med(r["forward_evals_per_second"] for r in r_best),
         "repeats": args.repeats,
         "seconds_per_measurement": args.seconds,
     }
-    if getattr(args, "json", False):
-        print(json.dumps(out))
-        return 0
-    print(f"search benchmark: {out['game']}, net {out['network']} ({out['precision']}), {args.threads} thread(s), {args.algorithm}, "
-          f"{args.simulations} simulations, G={args.games_in_parallel}, leaves/game={args.leaves_per_game}")
-    print(f"  inference bound (batch {out['mean_batch_size']:.1f}):  {bound:10.0f} evals/s")
-    print(f"  self-play:                         {evals:10.0f} evals/s  {pps:8.1f} positions/s")
-    print(f"  efficiency:                        {out['efficiency']:10.2f}   (target >= 0.8)")
-    print(f"  one game, batch 1:                 {out['single_game_evals_per_second']:10.0f} evals/s  {pps_one:8.1f} positions/s")
-    print(f"  batching speedup:                  {out['batching_speedup']:10.2f}   (target >= 3)")
-    print(f"  the net alone at batch 1:          {out['inference_bound_batch1_evals_per_second']:10.0f} evals/s "
+    return out
+
+
+def print_figures(out: dict[str, Any]) -> None:
+    print(f"search benchmark: {out['game']}, net {out['network']}, {out['threads']} thread(s), {out['algorithm']}, "
+          f"{out['simulations']} simulations, G={out['games_in_parallel']}, leaves/game={out['leaves_per_game']}")
+    print(f"  {'backend':<12} {'precision':<9} {'bound evals/s':>14} {'self-play evals/s':>18} "
+          f"{'positions/s':>12} {'efficiency':>10}")
+    for b, f in out["backends"].items():
+        print(f"  {b:<12} {f['precision']:<9} {f['bound_evals_per_second']:>14,.0f} "
+              f"{f['selfplay_evals_per_second']:>18,.0f} {f['positions_per_second']:>12,.1f} {f['efficiency']:>10.2f}")
+    best = out["best_backend"]
+    speed = out["speedup_vs_torch"]
+    print(f"  best: {best}; positions/s vs torch: {speed:.2f}x (target >= 2 with bfloat16 matrix units)"
+          if speed is not None else f"  best: {best}")
+    print(f"  efficiency of {best} against its own bound: {out['efficiency']:.2f} (target >= 0.85)")
+    print(f"  one game, batch 1 ({best}):       {out['single_game_evals_per_second']:10,.0f} evals/s "
+          f"{out['single_game_positions_per_second']:8.1f} positions/s")
+    print(f"  batching speedup:                 {out['batching_speedup']:10.2f}   (target >= 3)")
+    print(f"  the net alone at batch 1:         {out['inference_bound_batch1_evals_per_second']:10,.0f} evals/s "
           f"(its own batching gain: {out['network_batch_scaling']:.2f}x)")
-    print(f"  time shares: rules {out['time_share_rules']:.1%}  tree {out['time_share_tree']:.1%}  "
+    print(f"  time shares ({best}): rules {out['time_share_rules']:.1%}  tree {out['time_share_tree']:.1%}  "
           f"network {out['time_share_network']:.1%} (encode {out['time_share_encode']:.1%}, "
           f"forward {out['time_share_forward']:.1%})")
     print(f"  outside the forward pass: {out['microseconds_per_eval_outside_forward']:.0f} us per evaluation; "
-          f"forward calls inside self-play ran at {out['selfplay_forward_evals_per_second']:.0f} evals/s")
+          f"forward calls inside self-play ran at {out['selfplay_forward_evals_per_second']:,.0f} evals/s")
+
+
+def run(args: argparse.Namespace) -> int:
+    out = measure(args)
+    if getattr(args, "json", False):
+        print(json.dumps(out))
+    else:
+        print_figures(out)
     return 0

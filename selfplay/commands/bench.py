@@ -1,4 +1,4 @@
-"""``selfplay bench {rules,search,replay}``: benchmarks that print figures measured in one run."""
+"""``selfplay bench {rules,search,replay,all}``: benchmarks that print figures measured in one run."""
 
 from __future__ import annotations
 
@@ -10,6 +10,7 @@ BENCH_MODULES = {
     "rules": ("selfplay.bench.rules", "random-playout moves/s and legal-mask computations/s per game"),
     "search": ("selfplay.bench.search", "inference bound, self-play evals/s, efficiency, batching speedup"),
     "replay": ("selfplay.bench.replay", "buffer ingest and sampling positions/s, bytes per position"),
+    "all": ("selfplay.bench.all", "every figure of the project in one run, each beside its target"),
 }
 
 
