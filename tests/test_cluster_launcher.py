@@ -128,7 +128,7 @@ def test_run_toml_is_complete(tmp_path):
     out = _make_run(tmp_path)
     text = (out / "run.toml").read_text()
     assert load_config(out / "run.toml") == load_preset("tictactoe")
-    assert "# torch threads per worker" in text
+    assert "# threads of each worker's forward pass" in text
     assert isinstance(resolve_run(_args(out=str(out), resume=True)), RunPlan)
 
 

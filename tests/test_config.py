@@ -62,7 +62,7 @@ def test_dump_is_complete_and_reads_back(name):
 
 def test_dump_carries_descriptions_and_defaults():
     text = dump_config(RunConfig())
-    assert "# torch threads per worker (one per CPU it is given) (default 1)" in text
+    assert "# threads of each worker's forward pass (one per CPU it is given) (default 1)" in text
     assert "threads = 1" in text
     bare = dump_config(RunConfig(), comments=False)
     assert not any(line.startswith("# ") and "default" in line for line in bare.splitlines())

@@ -303,3 +303,26 @@ def test_snapshot_export_refuses_bad_requests(tmp_path, capsys):
     assert main(["snapshot", "export", str(run), "--out", str(out)]) == 2
     assert "--overwrite" in capsys.readouterr().err and out.read_text() == "keep me"
     assert not out.with_name(".x.onnx.tmp").exists()
+
+
+@pytest.mark.skipif("openvino" not in AVAILABLE, reason="openvino is not installed")
+def test_signals_are_handled_after_an_openvino_compile():
+    """OpenVINO leaves the compiling thread a minimal alternate signal stack; a Python signal
+    handler must still run there (a SIGCHLD handler killed the test process before the fix)."""
+    import signal
+
+    from selfplay.inference.altstack import ALTSTACK_BYTES, current_altstack
+
+    compiled = build_backend("openvino", NET, precision="bfloat16")
+    compiled(real_positions(4)[0])
+    now = current_altstack()
+    assert now is not None and (now[0] & 2 or now[1] >= ALTSTACK_BYTES)
+    got = []
+    previous = signal.signal(signal.SIGUSR1, lambda *a: got.append(1))
+    try:
+        for _ in range(5):
+            signal.raise_signal(signal.SIGUSR1)
+            compiled(real_positions(2)[0])
+    finally:
+        signal.signal(signal.SIGUSR1, previous)
+    assert got == [1] * 5

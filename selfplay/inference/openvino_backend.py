@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from selfplay.inference.altstack import ensure_roomy_altstack
 from selfplay.inference.onnx_export import export_onnx_bytes
 from selfplay.network import PolicyValueNet
 
@@ -33,6 +34,7 @@ class OpenVinoCompiled:
             "ENABLE_CPU_PINNING": bool(pin_threads),
         }
         self.compiled = core.compile_model(model, "CPU", config)
+        ensure_roomy_altstack()  # see selfplay.inference.altstack
         self.request = self.compiled.create_infer_request()
         self._tensor = ov.Tensor
 
