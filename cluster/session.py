@@ -36,6 +36,9 @@ def local_only_environment() -> None:
         ray_constants.ENABLE_RAY_CLUSTER = False
     # Keep Ray's own usage report from trying to reach the network.
     os.environ.setdefault("RAY_USAGE_STATS_ENABLED", "0")
+    # Token authentication on, said explicitly: Ray then keeps it without a start-up WARNING
+    # (left unset, it turns it on and warns that it did).
+    os.environ.setdefault("RAY_AUTH_MODE", "token")
 
 
 def start_local(num_cpus: int) -> RaySession:
@@ -110,6 +113,24 @@ def cluster_cpus() -> int:
     import ray
 
     return int(ray.cluster_resources().get("CPU", 0))
+
+
+def local_helper_pids() -> set[int]:
+    """Pids of the processes below this one (a local Ray's helpers: GCS, raylet, workers), from /proc."""
+    from pathlib import Path
+
+    parent: dict[int, int] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            parent[int(stat.parent.name)] = int(stat.read_text().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            continue
+    out: set[int] = set()
+    frontier = {os.getpid()}
+    while frontier:
+        frontier = {pid for pid, pp in parent.items() if pp in frontier} - out
+        out |= frontier
+    return out
 
 
 def shutdown() -> None:
