@@ -124,7 +124,7 @@ class Driver:
         self.initial_positions = int(self.buffer_stats["positions_total"])
         self.budget = GameBudget(self.config, self.initial_games, self.initial_positions,
                                  worker_count=self.target_workers(),
-                                 lookahead=2 * self.config.worker.games_in_parallel)
+                                 lookahead=self.config.worker.games_in_parallel)
         if stop_reached(self.config, self.initial_games, self.initial_positions, 0.0):
             self.say(f"the run already holds {self.initial_games} games: nothing to do "
                      "(raise --games/--positions to go on)")

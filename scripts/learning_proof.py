@@ -32,7 +32,7 @@ import numpy as np
 from selfplay.config import RunConfig, config_from_dict
 from selfplay.evaluation import MinimaxPlayer, PolicyPlayer, SearchPlayer, play_match
 from selfplay.evaluators import NetworkEvaluator, RandomRolloutEvaluator
-from selfplay.learner_config import LoopConfig
+from selfplay.loop import LoopConfig
 from selfplay.loop import LocalRun, LoopStatus, run_local_loop
 from selfplay.metrics import MetricsLog
 from selfplay.network import build_network

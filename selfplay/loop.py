@@ -115,7 +115,7 @@ class LocalRun:
             self.initial_games, self.initial_positions = stats["games_total"], stats["positions_total"]
             self.budget = GameBudget(config, self.initial_games, self.initial_positions,
                                      worker_count=config.run.workers or 1,
-                                     lookahead=2 * config.worker.games_in_parallel)
+                                     lookahead=config.worker.games_in_parallel)
             for slot in range(config.run.workers or 1):
                 self.workers.append(SelfPlayRole(
                     config, slot=slot, session=session, weights=self.snapshots.current, deliver=buffer.add_games,

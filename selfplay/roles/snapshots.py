@@ -59,7 +59,7 @@ class SnapshotServerRole:
         if self.store.latest_version() == 0:
             self.store.publish(net, extra={"phase": "initial"})  # version 1: the one place it is published
         self.refresh()
-        self._timer = Every(config.worker.snapshot_poll_seconds, self.refresh, "snapshot-server") if timer else None
+        self._timer = Every(max(0.1, config.worker.snapshot_poll_seconds), self.refresh, "snapshot-server") if timer else None
 
     def refresh(self) -> int:
         """Adopt the newest snapshot on disk if it is newer than the one served; return the version served."""
