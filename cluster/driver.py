@@ -34,7 +34,8 @@ def execute_ray(plan: Any, lock: RunLock, *, say: Callable[[str], None],
 
     if plan.address is None:
         session.start_local(num_cpus=plan.local_cpus)
-        lock.update(helpers=sorted(session.local_helper_pids()))  # ended by the next start if left behind
+        # ended by the reaper when this process is gone, else by the next start (the lock names them)
+        lock.update(helpers=sorted(session.note_helpers()))
     else:
         session.join_cluster(plan.address)
     try:
@@ -132,10 +133,19 @@ class Driver:
         self._top_up()
         if self.learner is not None:
             self._submit_learner()
+        self._note_helpers()
         self.say(f"run {self.run.root}: game {self.config.game.name} {self.config.game.options}, "
                  f"{len(self.slots)} worker(s) x {self.config.worker.games_in_parallel} games, "
                  f"learner {'on' if self.learner is not None else 'off'}, snapshot v{self.snapshot_version}, "
                  f"{self.initial_games} games already in the run")
+
+    def _note_helpers(self) -> None:
+        """The local Ray's processes as they are now that every actor started (see
+        :func:`cluster.session.note_helpers`)."""
+        from cluster import session
+
+        if session.reaping():
+            self.lock.update(helpers=sorted(session.note_helpers()))
 
     @staticmethod
     def _started(what: str, call: Callable[[], Any]) -> Any:
