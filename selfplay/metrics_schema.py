@@ -64,7 +64,7 @@ COMMON = (
 
 FINAL_NOTE = "Every role writes a last line with all its counters and `\"final\": true` when it stops."
 
-WORKER = Component("worker", "worker id (`w0000` ...)", "one self-play worker (the self-play role)", (
+WORKER = Component("worker", "the worker id, e.g. `w0000`", "one self-play worker (the self-play role)", (
     _f("games_total", "int", "games", "games this worker finished that the buffer stored (duplicates excluded)", True),
     _f("positions_total", "int", "positions", "positions (moves) in those games", True),
     _f("duplicates_total", "int", "games", "finished games the buffer already held (a retried send)", True),
@@ -94,7 +94,7 @@ WORKER = Component("worker", "worker id (`w0000` ...)", "one self-play worker (t
     _f("time_share_network", "float", "ratio", "share spent in the network", True),
 ))
 
-BUFFER = Component("buffer", "buffer shard (`buffer0` ...)", "one replay buffer shard (the buffer role)", (
+BUFFER = Component("buffer", "the buffer shard, e.g. `buffer0`", "one replay buffer shard (the buffer role)", (
     _f("games_total", "int", "games",
        "games the run has stored: committed to the catalog (all shards) plus this shard's accepted games "
        "waiting for their shard file", True),
@@ -125,7 +125,7 @@ LEARNER = Component("learner", "`learner`", "the learner role", (
        choices=("checkpoint", "snapshot", "fresh")),
 ))
 
-SNAPSHOTS = Component("snapshots", "the snapshot store's writer (`learner`, `publish` ...)",
+SNAPSHOTS = Component("snapshots", "the snapshot store's writer: `snapshots` (version 1), `learner`, `publish` ...",
                       "one line per published snapshot (the same facts are in `RUN/snapshots/NNNNNN.json`)", (
     _f("version", "int", "version", "the version just published (versions only increase)", True),
     _f("published_at", "float", "Unix s", "when it became visible", True),
@@ -141,7 +141,7 @@ SNAPSHOT_SERVER = Component("snapshot_server", "`snapshots`",
     _f("refused_total", "int", "versions", "versions refused (did not load or fit the game)", True),
 ))
 
-RUN = Component("run", "`driver` (the Ray path) or `local` (in-process)",
+RUN = Component("run", "`driver` on the Ray path, `local` in-process",
                 "the run itself: start, heartbeat, stop. A run whose last run line is not a stop and whose "
                 "newest heartbeat is older than 30 s has crashed", (
     _f("event", "str", "-", "`start`, `heartbeat` (at least every 10 s while running) or `stop`", True,
@@ -233,7 +233,8 @@ def render_markdown() -> str:
         "", *_table(COMMON), "",
         FINAL_NOTE + " Counters are cumulative and end in `_total`. A counter that goes *down* means its "
         "writer restarted (a replaced worker counts from 0 again); the monitor folds the drop in, as "
-        "Prometheus' `rate()` does. A torn last line (a writer died mid-line) is skipped until it is complete.",
+        "Prometheus' `rate()` does. A torn last line (a writer died mid-line) is skipped until it is complete; "
+        "a malformed complete line is skipped and counted (`metrics_bad_lines` in the status).",
     ]
     for comp in COMPONENTS.values():
         lines += ["", f"### component `{comp.name}` (source = {comp.source})", "", comp.about[0].upper() + comp.about[1:] + ".",

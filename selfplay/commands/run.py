@@ -220,11 +220,13 @@ def execute(plan: RunPlan, *, out: Callable[[str], None] | None = None) -> int:
             return _with_metrics_server(plan, say, lambda: execute_in_process(plan.config, plan.run, lock, say=say))
         try:
             from cluster.driver import execute_ray
-        except ImportError as exc:
-            raise SelfplayError(f"the Ray layer cannot be imported ({exc}); install Ray, or run without it: "
+
+            return execute_ray(plan, lock, say=say, serve=lambda body: _with_metrics_server(plan, say, body))
+        except ModuleNotFoundError as exc:
+            if (exc.name or "").split(".")[0] not in ("ray", "cluster"):
+                raise
+            raise SelfplayError(f"Ray cannot be imported ({exc}); install it, or run without it: "
                                 "selfplay run --in-process ...") from None
-        return execute_ray(plan, lock, say=say,
-                           serve=lambda body: _with_metrics_server(plan, say, body))
     finally:
         lock.release()
         if not existed and not plan.run.config.exists():
