@@ -187,6 +187,7 @@ class SelfPlayActor:
                 return known, None  # the snapshot actor is restarting: keep playing what we have
             return version, (refs[0] if refs else None)
 
+        self.buffer = buffer
         self.role = SelfPlayRole(
             _config(config_data), slot=slot, session=session, incarnation=os.urandom(3).hex() if restarted else "",
             weights=weights, fetch=ray.get, deliver=lambda recs: ray.get(buffer.add_games.remote(recs)),
@@ -197,6 +198,7 @@ class SelfPlayActor:
 
     def close(self) -> None:
         self.role.close()
+        ray.get(self.buffer.append_metrics.remote([]))  # after the lines sent before it: all are written
 
     def where(self) -> dict[str, Any]:
         return {"slot": self.role.slot, "tag": self.role.tag, **_where()}
