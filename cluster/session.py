@@ -38,16 +38,18 @@ def local_only_environment() -> None:
         ray_constants.ENABLE_RAY_CLUSTER = False
     # Keep Ray's own usage report from trying to reach the network.
     os.environ.setdefault("RAY_USAGE_STATS_ENABLED", "0")
-    # Token authentication on, said explicitly: Ray then keeps it without a start-up WARNING
-    # (left unset, it turns it on and warns that it did).
-    os.environ.setdefault("RAY_AUTH_MODE", "token")
 
 
 def start_local(num_cpus: int) -> RaySession:
     """Start a private Ray instance on this machine, bound to 127.0.0.1, with ``num_cpus`` CPUs."""
     local_only_environment()
+    import logging
+
     import ray
 
+    # Ray turns token authentication on for a new local instance and says so with a WARNING on
+    # every start; keep the authentication, drop the notice (a healthy start prints no warning)
+    logging.getLogger("ray._private.authentication.authentication_token_setup").setLevel(logging.ERROR)
     ray.init(
         address="local",
         num_cpus=num_cpus,
