@@ -123,6 +123,7 @@ class LocalRun:
         except BaseException as exc:
             self.close(error_reason(exc), failed=True)
             raise
+        self._stop_requested: Callable[[], str | None] = lambda: None
         self.status = LoopStatus(started_at=time.time(), games=self.initial_games, positions=self.initial_positions,
                                  learner_steps=self.learner.learner.step if self.learner else 0,
                                  snapshot_version=self.snapshots.version)
@@ -153,7 +154,7 @@ class LocalRun:
                 stored += len(rep["added"])
                 positions += rep["positions"]
                 progressed = progressed or rep["finished"] > 0 or rep["games_in_flight"] > 0
-            if not progressed or self._stop_condition():
+            if not progressed or self._stop_condition() or self._stop_requested():
                 break
         self.status.games, self.status.positions = self.budget.stored_games, self.budget.stored_positions
         return positions
@@ -176,6 +177,7 @@ class LocalRun:
                   on_phase: Callable[["LocalRun"], None] | None = None) -> str:
         """Alternate generation and training until a stop condition, ``stop(status)`` or
         ``stop_requested()`` (a signal's reason); returns the stop reason."""
+        self._stop_requested = stop_requested
         rs = self.config.run
         if self.learner is not None and (rs.positions or rs.games):
             try:
