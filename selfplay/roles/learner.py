@@ -73,14 +73,19 @@ class LearnerRole:
         return self.learner.snapshot_version
 
     def close(self, save: bool = True) -> None:
-        """Checkpoint (unless ``save`` is false, as after the learner itself failed) and write the
-        final line."""
+        """Publish what was trained since the newest snapshot as a last one (which checkpoints
+        too), or just checkpoint — unless ``save`` is false, as after the learner itself failed —
+        and write the final line."""
         if self._closed:
             return
         self._closed = True
-        if save:
-            self.learner.save_checkpoint()
         L = self.learner
+        if save:
+            newest = self.store.latest()
+            if L.step > 0 and (newest is None or L.step != newest.training_steps):
+                L.publish(extra={"phase": "final"})
+            else:
+                L.save_checkpoint()
         self.metrics.write(step=L.step, samples_trained_total=L.samples_trained_total, reuse_ratio=L.reuse_ratio,
                            snapshot_version=L.snapshot_version, pretrain_steps=L.pretrain_steps,
                            resumed_from=self.resumed_from, final=True)
