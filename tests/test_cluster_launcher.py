@@ -199,3 +199,21 @@ def test_actor_startup_errors_become_one_line():
     err = startup_error("the replay buffer", RuntimeError(text))
     assert str(err) == ("the replay buffer could not start: run directory '/r' already has an open record "
                         "store named 'buffer0'")
+
+
+def test_resume_into_a_live_run_is_refused_before_anything_is_touched(tmp_path, capsys):
+    import os
+
+    from selfplay.roles.runlock import RunLock
+
+    out = _make_run(tmp_path)
+    before = (out / "run.toml").read_bytes()
+    live = RunLock.acquire(out)  # another `selfplay run` holds the directory
+    try:
+        for extra in ([], ["--in-process"]):
+            code, err = _run(["--out", str(out), "--resume", "--games", "5", *extra], capsys)
+            assert code == 2 and f"in use by pid {os.getpid()}" in err, err
+            assert (out / "run.toml").read_bytes() == before  # not rewritten
+            assert not (out / "metrics.jsonl").exists()
+    finally:
+        live.release()
