@@ -187,10 +187,16 @@ class SelfPlayActor:
                 return known, None  # the snapshot actor is restarting: keep playing what we have
             return version, (refs[0] if refs else None)
 
+        def fetch(ref: Any) -> Any:
+            try:
+                return ray.get(ref, timeout=60)
+            except (ray.exceptions.RayError, TimeoutError) as exc:  # the weights' owner is restarting
+                raise RuntimeError(f"snapshot weights unavailable: {type(exc).__name__}") from None
+
         self.buffer = buffer
         self.role = SelfPlayRole(
             _config(config_data), slot=slot, session=session, incarnation=os.urandom(3).hex() if restarted else "",
-            weights=weights, fetch=ray.get, deliver=lambda recs: ray.get(buffer.add_games.remote(recs)),
+            weights=weights, fetch=fetch, deliver=lambda recs: ray.get(buffer.add_games.remote(recs)),
             metrics=lambda row: buffer.append_metrics.remote([row]), game_limit=game_limit)
 
     def play(self, seconds: float, game_limit: int | None = -1) -> dict[str, Any]:
