@@ -12,7 +12,7 @@ import sys
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any
 
 from selfplay.config import RunConfig
 from selfplay.metrics import MetricsLog

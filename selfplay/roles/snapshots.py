@@ -10,7 +10,6 @@ node, shared by all workers there)."""
 from __future__ import annotations
 
 import threading
-import time
 from typing import Any, Callable
 
 import numpy as np
@@ -109,10 +108,3 @@ class SnapshotServerRole:
         with self._lock:
             self._write_line(final=True)
 
-
-def wait_for_version(server: SnapshotServerRole, version: int, timeout: float = 10.0) -> int:
-    """Refresh until ``server`` serves ``version`` or newer (tests and one-process callers)."""
-    deadline = time.monotonic() + timeout
-    while server.refresh() < version and time.monotonic() < deadline:
-        time.sleep(0.05)
-    return server.version
