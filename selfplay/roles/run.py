@@ -82,8 +82,8 @@ class GameBudget:
     them) beyond those it finished, so its slots refill at once; allotments never add up to more
     than the games still wanted. For
     ``run.positions`` the games still wanted are estimated from the mean positions per game so
-    far (no limit before the first game is stored). A worker that restarts gives back what it
-    had allotted but not finished."""
+    far; before the first game is stored each worker may start ``lookahead`` games (one per
+    slot). A worker that restarts gives back what it had allotted but not finished."""
 
     config: RunConfig
     stored_games: int
