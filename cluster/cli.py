@@ -1,16 +1,13 @@
-"""Commands contributed by the Ray layer (registered through the plyfoundry.commands entry point)."""
+"""Commands contributed by the Ray layer's package (registered through the plyfoundry.commands
+entry point): ``selfplay run``, whose command line lives in :mod:`selfplay.commands.run` and
+imports Ray only to run on it."""
 
 from __future__ import annotations
 
 import argparse
-import importlib
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    try:
-        launcher = importlib.import_module("cluster.launcher")
-    except ModuleNotFoundError as exc:
-        if exc.name == "cluster.launcher":
-            return
-        raise
-    launcher.register(sub)
+    from selfplay.commands.run import register as register_run
+
+    register_run(sub)

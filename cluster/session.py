@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import os
 import socket
+import subprocess
 import sys
+from pathlib import Path
 from dataclasses import dataclass
 
 from selfplay.errors import ConfigError
@@ -41,8 +43,13 @@ def local_only_environment() -> None:
 def start_local(num_cpus: int) -> RaySession:
     """Start a private Ray instance on this machine, bound to 127.0.0.1, with ``num_cpus`` CPUs."""
     local_only_environment()
+    import logging
+
     import ray
 
+    # Ray turns token authentication on for a new local instance and says so with a WARNING on
+    # every start; keep the authentication, drop the notice (a healthy start prints no warning)
+    logging.getLogger("ray._private.authentication.authentication_token_setup").setLevel(logging.ERROR)
     ray.init(
         address="local",
         num_cpus=num_cpus,
@@ -112,8 +119,85 @@ def cluster_cpus() -> int:
     return int(ray.cluster_resources().get("CPU", 0))
 
 
+def local_helper_pids() -> set[int]:
+    """Pids of the processes below this one (a local Ray's helpers: GCS, raylet, workers), from /proc."""
+    parent: dict[int, int] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            parent[int(stat.parent.name)] = int(stat.read_text().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            continue
+    out: set[int] = set()
+    frontier = {os.getpid()}
+    while frontier:
+        frontier = {pid for pid, pp in parent.items() if pp in frontier} - out
+        out |= frontier
+    return out
+
+
+#: the reaper: reads "pid:starttime" items from stdin until the driver is gone (EOF, however the
+#: driver ended), then ends those of them still running (a reused pid has another start time)
+_REAPER = r"""
+import os, signal, sys, time
+pids = {}
+for line in sys.stdin:
+    for item in line.split():
+        pid, start = item.split(":")
+        pids[int(pid)] = start
+time.sleep(0.5)
+for pid, start in pids.items():
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            now = f.read().rsplit(")", 1)[1].split()[19]
+    except (OSError, IndexError):
+        continue
+    if now == start:
+        try:
+            os.kill(pid, signal.SIGKILL)
+        except OSError:
+            pass
+"""
+
+_reaper: "subprocess.Popen[bytes] | None" = None
+
+
+def _start_time(pid: int) -> str | None:
+    try:
+        return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[19]
+    except (OSError, IndexError):
+        return None
+
+
+def note_helpers() -> set[int]:
+    """Hand the local Ray's helper processes (everything below this process now) to the reaper,
+    which ends them when this process is gone — also after a SIGKILL, when Ray cannot clean up
+    itself (seen: its dashboard and runtime-env agents outlive a killed driver). Returns the pids."""
+    global _reaper
+    pids = local_helper_pids()
+    if _reaper is None or _reaper.poll() is not None:
+        _reaper = subprocess.Popen([sys.executable, "-c", _REAPER], stdin=subprocess.PIPE, start_new_session=True,
+                                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    pids.discard(_reaper.pid)
+    items = [f"{pid}:{start}" for pid in sorted(pids) if (start := _start_time(pid)) is not None]
+    assert _reaper.stdin is not None
+    _reaper.stdin.write((" ".join(items) + "\n").encode())
+    _reaper.stdin.flush()
+    return pids
+
+
+def reaping() -> bool:
+    """True when this process started a local Ray whose helpers the reaper watches."""
+    return _reaper is not None
+
+
 def shutdown() -> None:
+    global _reaper
     import ray
 
     if ray.is_initialized():
         ray.shutdown()
+    if _reaper is not None:
+        assert _reaper.stdin is not None
+        _reaper.stdin.close()  # the reaper ends what Ray left, then exits
+        _reaper.wait(timeout=30)
+        _reaper = None

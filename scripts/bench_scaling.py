@@ -67,21 +67,21 @@ def machine_busy_seconds() -> float:
 def trial(config: Any, workers: int, seconds: float, root: Path, index: int) -> dict[str, float]:
     import ray
 
-    from cluster.launcher import Launcher
+    from cluster.driver import Driver
     from selfplay.config import with_overrides
     from selfplay.rundir import RunDir
 
     cfg = with_overrides(config, {"run.workers": workers, "run.learner": False, "run.games": 0,
                                   "run.positions": 0, "run.minutes": 0})
-    launcher = Launcher(cfg, RunDir(root / f"trial{index}-w{workers}"), say=lambda line: None, progress=False)
+    launcher = Driver(cfg, RunDir(root / f"trial{index}-w{workers}"), say=lambda line: None, progress=False)
     launcher.start()
     marks: dict[str, float] = {}
     pids = [ray.get(ws.handle.where.remote())["pid"] for ws in launcher.slots.values()]
 
-    def tick(la: Launcher) -> bool:
+    def tick(la: Driver) -> bool:
         now = time.monotonic()
         if "t0" not in marks:
-            reports = [ws.games_total > 0 and len(ws.last_stats) > 0 for ws in la.slots.values()]
+            reports = [ws.games_total > 0 and len(ws.last_report) > 0 for ws in la.slots.values()]
             if "warm" not in marks and all(reports):
                 marks.update(warm=now)
             if "warm" in marks and now - marks["warm"] >= 2 * cfg.worker.report_seconds:

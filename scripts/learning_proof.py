@@ -32,7 +32,7 @@ import numpy as np
 from selfplay.config import RunConfig, config_from_dict
 from selfplay.evaluation import MinimaxPlayer, PolicyPlayer, SearchPlayer, play_match
 from selfplay.evaluators import NetworkEvaluator, RandomRolloutEvaluator
-from selfplay.learner_config import LoopConfig
+from selfplay.loop import LoopConfig
 from selfplay.loop import LocalRun, LoopStatus, run_local_loop
 from selfplay.metrics import MetricsLog
 from selfplay.network import build_network
@@ -188,7 +188,7 @@ def main(argv: list[str] | None = None) -> int:
 
     def on_phase(run: LocalRun) -> None:
         ts = train_seconds()
-        new = [h for h in run.learner.history if h["step"] > seen_steps[0]]
+        new = [h for h in run.learner.learner.history if h["step"] > seen_steps[0]]
         if new:
             seen_steps[0] = int(new[-1]["step"])
             loss_curve.append({"train_seconds": ts, "step": seen_steps[0],
@@ -199,10 +199,10 @@ def main(argv: list[str] | None = None) -> int:
         t0 = time.perf_counter()
         version = run.store.latest_version()
         ev = quick_eval(args.game, run, version, args.eval_games, args.seed)
-        last = run.learner.history[-1] if run.learner.history else {}
+        last = run.learner.learner.history[-1] if run.learner.learner.history else {}
         point = {"train_seconds": ts, "version": version, "games": run.status.games,
-                 "positions": run.status.positions, "learner_steps": run.learner.step,
-                 "reuse_ratio": run.learner.reuse_ratio, "loss": last.get("loss"), "eval": ev}
+                 "positions": run.status.positions, "learner_steps": run.learner.learner.step,
+                 "reuse_ratio": run.learner.learner.reuse_ratio, "loss": last.get("loss"), "eval": ev}
         curve.append(point)
         MetricsLog(run.run.metrics, "eval", "learning-proof").write(
             opponent=ev["opponent"], version=version, train_seconds=ts,
@@ -214,8 +214,8 @@ def main(argv: list[str] | None = None) -> int:
         brief = (f"lost {ev['search']['losses']}/{ev['search']['games']} (search), "
                  f"{ev['policy']['losses']}/{ev['policy']['games']} (policy)" if args.game == "tictactoe" else
                  f"won {ev['vs_first']['win_rate']:.2f} vs first, {ev['vs_mcts']['win_rate']:.2f} vs mcts")
-        print(f"[{ts / 60:5.1f} min] v{version} games {run.status.games} steps {run.learner.step} "
-              f"loss {point['loss']} reuse {run.learner.reuse_ratio:.2f}: {brief}", flush=True)
+        print(f"[{ts / 60:5.1f} min] v{version} games {run.status.games} steps {run.learner.learner.step} "
+              f"loss {point['loss']} reuse {run.learner.learner.reuse_ratio:.2f}: {brief}", flush=True)
 
     holder: dict[str, LocalRun] = {}
 
@@ -237,8 +237,8 @@ def main(argv: list[str] | None = None) -> int:
     results = {
         "game": args.game, "minutes_budget": minutes, "train_seconds": trained_for,
         "wall_seconds_with_evals": time.time() - t_start, "games": status.games, "positions": status.positions,
-        "learner_steps": run.learner.step, "samples_trained": run.learner.samples_trained_total,
-        "reuse_ratio": run.learner.reuse_ratio, "snapshots": run.store.latest_version(),
+        "learner_steps": run.learner.learner.step, "samples_trained": run.learner.learner.samples_trained_total,
+        "reuse_ratio": run.learner.learner.reuse_ratio, "snapshots": run.store.latest_version(),
         "settings": SETTINGS[args.game], "final": final, "curve": curve, "loss_curve": loss_curve,
         "cpu_count": os.cpu_count(), "final_eval_seconds": time.time() - t0,
     }

@@ -1,7 +1,8 @@
-"""Typed settings of the learner and of the one-process loop.
+"""Typed settings of the learner.
 
-:class:`LearnerConfig` is the ``[learner]`` section of the run configuration (``run.toml``);
-:class:`LoopConfig` holds the phase sizes of :func:`selfplay.loop.run_local_loop`. Every field has a default and a docstring; a bad value is refused with the
+:class:`LearnerConfig` is the ``[learner]`` section of the run configuration (``run.toml``)
+(the in-process run's phase sizes, ``LoopConfig``, live in :mod:`selfplay.loop`). Every field
+has a default and a docstring; a bad value is refused with the
 field, the value and the reason (:class:`~selfplay.errors.ConfigError`).
 """
 
@@ -126,18 +127,3 @@ class LearnerConfig(_Section):
         if self.lr_schedule == "cosine" and self.lr_min > self.learning_rate:
             raise ValueError(f"lr_min {self.lr_min} is above learning_rate {self.learning_rate}")
         return self
-
-
-class LoopConfig(_Section):
-    """The one-process loop (no Ray): generation phases alternate with training phases."""
-
-    section_name: ClassVar[str] = "loop"
-
-    games_per_phase: int = Field(32, ge=1)
-    """Games a generation phase finishes before the learner trains (at least one worker step)."""
-
-    max_steps_per_phase: int = Field(1000, ge=1)
-    """Upper bound on optimiser steps in one training phase (the reuse ratio usually binds first)."""
-
-    eval_every_snapshots: int = Field(0, ge=0)
-    """Run the configured quick evaluation after every N-th snapshot (0: never, during the loop)."""

@@ -12,27 +12,42 @@ import json
 import os
 import time
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Callable, Iterator
 
 
 class MetricsLog:
-    """Appends metric lines to one metrics.jsonl file."""
+    """Appends metric lines of one component and source.
 
-    def __init__(self, path: str | os.PathLike[str], component: str, source: str = "") -> None:
-        self.path = Path(path)
+    ``target`` is the metrics.jsonl path, or a callable that takes each finished line (a dict):
+    a role far from the run directory (a Ray worker on another node) hands its lines to a role
+    that owns the file, which appends them with :func:`append_rows`."""
+
+    def __init__(self, target: str | os.PathLike[str] | Callable[[dict[str, Any]], Any], component: str,
+                 source: str = "") -> None:
+        self.sink: Callable[[dict[str, Any]], Any] | None = target if callable(target) else None
+        self.path = None if callable(target) else Path(target)
         self.component = component
         self.source = source or component
 
     def write(self, **fields: Any) -> dict[str, Any]:
         """Append one line with the current time and ``fields``; returns the line as a dict."""
         row = {"t": time.time(), "component": self.component, "source": self.source, **fields}
-        line = json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n"
-        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
-        try:
-            os.write(fd, line.encode())
-        finally:
-            os.close(fd)
+        if self.sink is not None:
+            self.sink(row)
+        else:
+            append_rows(self.path, [row])
         return row
+
+
+def append_rows(path: str | os.PathLike[str], rows: list[dict[str, Any]]) -> None:
+    """Append finished metric lines to ``path``, each with one ``write`` call (so several
+    processes on one machine can share the file without interleaving lines)."""
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        for row in rows:
+            os.write(fd, (json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n").encode())
+    finally:
+        os.close(fd)
 
 
 def _jsonable(v: Any) -> Any:

@@ -46,9 +46,11 @@ class _GameInFlight:
 
 
 def game_seed(seed: int, game_index: int) -> int:
-    """The 63-bit seed of game ``game_index`` of a worker seeded with ``seed``."""
-    state = np.random.SeedSequence([int(seed), int(game_index)]).generate_state(1, dtype=np.uint64)[0]
-    return int(state >> np.uint64(1))
+    """The 63-bit seed of game ``game_index`` of a worker seeded with ``seed`` (the run's one
+    seed derivation, :mod:`selfplay.seeding`)."""
+    from selfplay.seeding import game_seed as derived
+
+    return derived(int(seed), int(game_index))
 
 
 class SelfPlayWorker:
@@ -63,7 +65,7 @@ class SelfPlayWorker:
     def __init__(self, game: Game, evaluator: Evaluator, search: SearchConfig | dict[str, Any], *,
                  games_in_parallel: int, worker_id: str, seed: int, snapshot_version: int = 0,
                  run_tag: str = "", clock: Callable[[], float] = time.time,
-                 start_state: Any | None = None) -> None:
+                 start_state: Any | None = None, game_limit: int | None = None) -> None:
         if isinstance(search, dict):
             search = SearchConfig.parse(search)
         if not isinstance(search, SearchConfig):
@@ -89,9 +91,12 @@ class SelfPlayWorker:
         self.clock = clock
         self._search_settings = search.to_dict()
         self._tree = BatchedSearch(game, search, games_in_parallel)
-        self._games: list[_GameInFlight] = []
+        self._games: list[_GameInFlight | None] = []
         self._ready: list[GameRecord] = []
         self._next_index = 0
+        #: games this worker may start in all (None: no limit); a slot whose game ends once the
+        #: limit is reached stays empty until :meth:`allow_games` raises it
+        self.game_limit = game_limit
         # counters
         self.games_total = 0
         self.positions_total = 0
@@ -102,8 +107,8 @@ class SelfPlayWorker:
         self.busy_seconds = 0.0
         self.move_seconds = 0.0
         for s in range(games_in_parallel):
-            self._games.append(self._new_game(s))
-            self._begin_move(s)
+            self._games.append(None)
+            self._start_if_allowed(s)
 
     # ---- evaluator swap ---------------------------------------------------------------------
     def set_evaluator(self, evaluator: Evaluator, snapshot_version: int) -> None:
@@ -114,6 +119,21 @@ class SelfPlayWorker:
         self.snapshot_version = int(snapshot_version)
 
     # ---- game lifecycle -----------------------------------------------------------------------
+    def allow_games(self, limit: int | None) -> None:
+        """Let this worker start games until ``limit`` games have been started in all (None: no
+        limit); empty slots start their games at once."""
+        self.game_limit = limit
+        for s, g in enumerate(self._games):
+            if g is None:
+                self._start_if_allowed(s)
+
+    def _start_if_allowed(self, slot: int) -> None:
+        if self.game_limit is not None and self._next_index >= self.game_limit:
+            self._games[slot] = None
+            return
+        self._games[slot] = self._new_game(slot)
+        self._begin_move(slot)
+
     def _new_game(self, slot: int) -> _GameInFlight:
         index = self._next_index
         self._next_index += 1
@@ -187,8 +207,7 @@ class SelfPlayWorker:
                 if would_be_view >= 0:  # that player won or drew: resigning would have been wrong
                     self.resign_false_positives_total += 1
         self._ready.append(record)
-        self._games[slot] = self._new_game(slot)
-        self._begin_move(slot)
+        self._start_if_allowed(slot)
 
     # ---- driving ------------------------------------------------------------------------------
     def _round(self) -> list[int]:
@@ -203,7 +222,7 @@ class SelfPlayWorker:
         """Advance every game in flight by at least one move (all simulations of that move);
         return the games that finished (new games take their slots)."""
         t0 = time.perf_counter()
-        waiting = set(range(self.games_in_parallel))
+        waiting = {s for s, g in enumerate(self._games) if g is not None}
         while waiting:
             for s in self._round():
                 waiting.discard(s)
@@ -214,7 +233,7 @@ class SelfPlayWorker:
     def play_games(self, n: int) -> list[GameRecord]:
         """The next ``n`` finished games (games finished beyond ``n`` are kept for the next call)."""
         t0 = time.perf_counter()
-        while len(self._ready) < n:
+        while len(self._ready) < n and self.games_in_flight:
             self._round()
         self.busy_seconds += time.perf_counter() - t0
         out, self._ready = self._ready[:n], self._ready[n:]
@@ -227,7 +246,12 @@ class SelfPlayWorker:
 
     @property
     def games_in_flight(self) -> int:
-        return len(self._games)
+        return sum(g is not None for g in self._games)
+
+    @property
+    def games_started(self) -> int:
+        """Games this worker has started (finished, in flight, or ended by a restart)."""
+        return self._next_index
 
     def stats(self) -> dict[str, Any]:
         """Counters with the field names of the "worker" metric lines (cumulative ``_total``),
@@ -267,4 +291,4 @@ class SelfPlayWorker:
 
     def positions_total_moves(self) -> int:
         """Moves made so far, in finished games and in games still in flight."""
-        return self.positions_total + sum(g.moves_made for g in self._games)
+        return self.positions_total + sum(g.moves_made for g in self._games if g is not None)

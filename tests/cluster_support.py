@@ -85,6 +85,14 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
             by_buffer.setdefault(row["source"], []).append(int(row["games_total"]))
         for source, seq in by_buffer.items():
             assert seq == sorted(seq), f"buffer {source} logged a games_total that went down: {seq}"
+    # every metric line fits the metrics schema (selfplay/metrics_schema.py), and every role that
+    # stopped wrote its final line
+    from selfplay.metrics_schema import line_problems
+
+    rows = [r for c in ("worker", "buffer", "learner", "snapshots", "snapshot_server", "run", "eval")
+            for r in metric_rows(run, c)]
+    problems = sorted({p for r in rows for p in line_problems(r)})
+    assert not problems, problems[:5]
     infos = list(SnapshotStore(run).iter_infos())
     versions = [i.version for i in infos]
     assert versions == list(range(1, len(versions) + 1)), versions

@@ -48,18 +48,18 @@ def worker_nodes(cluster):
 
 
 def _launcher(tmp_path, **overrides):
-    from cluster.launcher import Launcher
+    from cluster.driver import Driver
     from selfplay.rundir import RunDir
 
     lines: list[str] = []
-    launcher = Launcher(tiny_config(**overrides), RunDir(tmp_path / "run"), say=lines.append, progress=False)
-    launcher.lines = lines
-    return launcher
+    driver = Driver(tiny_config(**overrides), RunDir(tmp_path / "run"), say=lines.append, progress=False)
+    driver.lines = lines
+    return driver
 
 
-def _finish(launcher):
-    stats = launcher.finish()
-    launcher.kill_actors()
+def _finish(driver):
+    stats = driver.finish()
+    driver.kill_actors()
     return stats
 
 
@@ -70,7 +70,7 @@ def _games(launcher) -> int:
 def test_worker_killed_mid_game(cluster, worker_nodes, tmp_path):
     import ray
 
-    from cluster.launcher import check_worker_count
+    from selfplay.commands.run import check_worker_count
     from cluster.placement import head_node_id
     from selfplay.errors import ConfigError
 
@@ -110,7 +110,7 @@ def test_worker_killed_mid_game(cluster, worker_nodes, tmp_path):
         stats = _finish(launcher)
     assert launcher.slots[0].restarts_seen >= 1
     assert any("was restarted by Ray" in line for line in launcher.lines)
-    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    facts = check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
     assert facts["games"] >= state["killed_at"] + 30
 
 
@@ -135,7 +135,7 @@ def test_snapshot_that_does_not_fit_is_refused_and_the_run_goes_on(cluster, work
         launcher.loop(tick=lambda la: _games(la) >= games + 10)
     finally:
         stats = _finish(launcher)
-    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    facts = check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
     assert all(r["snapshot_version"] == 1 for r in metric_rows(tmp_path / "run", "worker"))
     assert facts["games"] >= games + 10
 
@@ -167,7 +167,7 @@ def test_worker_node_removed_and_another_added(cluster, worker_nodes, tmp_path):
         assert ray.get(launcher.slots[2].handle.where.remote())["node_id"] == new_node.node_id
     finally:
         stats = _finish(launcher)
-    check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
 
 
 def test_learner_killed_restarts_from_its_checkpoint(cluster, worker_nodes, tmp_path):
@@ -198,7 +198,7 @@ def test_learner_killed_restarts_from_its_checkpoint(cluster, worker_nodes, tmp_
     finally:
         stats = _finish(launcher)
     assert launcher.learner_status["step"] >= state["step"]
-    facts = check_run_consistent(tmp_path / "run", launcher.reported_game_ids, stats)
+    facts = check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
     assert facts["snapshots"] >= state["version"] + 2
     assert any("learner lost" in line for line in launcher.lines)
 
@@ -218,7 +218,8 @@ def test_selfplay_run_joins_a_cluster_by_address(cluster, worker_nodes, tmp_path
                           capture_output=True, text=True, timeout=300, env=env)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert "2 worker(s)" in proc.stderr  # one per CPU of the cluster's two worker nodes
-    assert "stop condition met: 40 games" in proc.stderr
+    assert "stopped: games reached" in proc.stderr
+    assert catalog_count(tmp_path / "run") == 40  # the game budget: no game starts once 40 are finished or in flight
     check_run_consistent(tmp_path / "run")
     assert catalog_count(tmp_path / "run") >= 40
 

@@ -1,4 +1,5 @@
-"""`selfplay run` refuses bad input before anything starts (no Ray, nothing written)."""
+"""`selfplay run` refuses bad input before anything starts (no Ray, nothing written); its stop
+conditions, game budget and status line (shared by both run paths)."""
 
 from __future__ import annotations
 
@@ -7,7 +8,7 @@ import socket
 
 import pytest
 
-from cluster.launcher import RunPlan, resolve_run, write_run_toml
+from selfplay.commands.run import RunPlan, resolve_run, write_run_toml
 from selfplay.cli import main
 from selfplay.config import dump_config, load_config, load_preset, with_overrides
 
@@ -25,7 +26,8 @@ def _free_port() -> int:
 
 def _args(**kw):
     base = dict(preset=None, config=None, out=None, games=None, positions=None, minutes=None, workers=None,
-                resume=False, no_learner=False, address=None, metrics_port=None, metrics_host="127.0.0.1")
+                resume=False, no_learner=False, address=None, metrics_port=None, metrics_host="127.0.0.1",
+                in_process=False)
     base.update(kw)
     return argparse.Namespace(**base)
 
@@ -132,32 +134,48 @@ def test_run_toml_is_complete(tmp_path):
     assert isinstance(resolve_run(_args(out=str(out), resume=True)), RunPlan)
 
 
-def test_stop_conditions_and_status_line(tmp_path):
-    import time
-
-    from cluster.launcher import Launcher
-    from selfplay.config import with_overrides
-    from selfplay.rundir import RunDir
+def test_stop_conditions_and_status_line():
+    from selfplay.roles.run import status_line, stop_reached
 
     cfg = with_overrides(load_preset("tictactoe"), {"run.games": 100, "run.positions": 0, "run.minutes": 0})
-    la = Launcher(cfg, RunDir(tmp_path / "r"), say=lambda line: None, progress=False)
-    la.started_at = time.time()
-    la.buffer_stats = {"games_total": 99, "positions_total": 700, "window_positions": 700, "window_capacity": 1000}
-    assert la.stop_reached() is None
-    la.buffer_stats["games_total"] = 100
-    assert la.stop_reached() == "100 games"
-    la.config = with_overrides(cfg, {"run.games": 0, "run.positions": 700})
-    assert la.stop_reached() == "700 positions"
-    la.config = with_overrides(cfg, {"run.games": 0, "run.minutes": 0.5})
-    assert la.stop_reached() is None
-    la.started_at -= 31
-    assert la.stop_reached() == "0.5 minutes"
-    line = la.status_line()
+    assert stop_reached(cfg, 99, 700, 0.0) is None
+    assert stop_reached(cfg, 100, 700, 0.0) == "games reached"
+    assert stop_reached(with_overrides(cfg, {"run.games": 0, "run.positions": 700}), 5, 700, 0.0) == "positions reached"
+    half_minute = with_overrides(cfg, {"run.games": 0, "run.minutes": 0.5})
+    assert stop_reached(half_minute, 5, 7, 29.0) is None
+    assert stop_reached(half_minute, 5, 7, 31.0) == "minutes reached"
+    line = status_line({"games_total": 100, "positions_total": 700, "window_positions": 700, "window_capacity": 1000},
+                       elapsed=31.0, initial_games=0, initial_positions=0, workers=2, snapshot_version=3, learner=None)
     assert "games 100 " in line and "positions 700 " in line and "window 700/1,000" in line
 
 
+def test_game_budget_never_allots_more_games_than_wanted():
+    """--games N: the workers together may start at most N games (none lost), shared between
+    them, and a restarted worker's lost games are given out again."""
+    from selfplay.roles.run import GameBudget
+
+    cfg = with_overrides(load_preset("tictactoe"), {"run.games": 40})
+    b = GameBudget(cfg, 0, 0, worker_count=2, lookahead=64)
+    assert b.limit_for(0) == 20 and b.limit_for(1) == 20  # the 40 games shared out
+    b.report(0, "s0.", finished=20, added_games=20, added_positions=140)
+    assert b.limit_for(0, "s0.") == 20  # worker 1 still holds the other 20: nothing more to start
+    b.report(1, "s0.", finished=5, added_games=4, added_positions=30)  # one of them a duplicate
+    assert b.limit_for(1, "s0.") == 20 and b.limit_for(0, "s0.") == 21  # the duplicate's place goes out again
+    b.report(1, "s0.r1.", finished=0, added_games=0, added_positions=0)  # restarted: its 15 in flight are lost
+    assert b.wanted() == 16 and b.stored_games == 24
+    assert b.limit_for(1, "s0.r1.") == 8 and b.limit_for(0, "s0.") == 28  # 8 + 8 open: the 16 wanted
+    # --positions: the mean game length so far turns the positions still wanted into games
+    pos = GameBudget(with_overrides(cfg, {"run.games": 0, "run.positions": 700}), 10, 70, worker_count=1, lookahead=8)
+    assert pos.wanted() == 90 and pos.limit_for(0) == 90  # (700 - 70) / 7 positions a game
+    unknown = GameBudget(with_overrides(cfg, {"run.games": 0, "run.positions": 700}), 0, 0, worker_count=1,
+                         lookahead=8)
+    assert unknown.wanted() is None and unknown.limit_for(0) == 8  # no game stored yet: a first lookahead
+    free = GameBudget(with_overrides(cfg, {"run.games": 0, "run.minutes": 1.0}), 0, 0, worker_count=1, lookahead=8)
+    assert free.limit_for(0) is None
+
+
 def test_buffer_shard_counters_merge_into_one_buffer():
-    from cluster.actors import merge_buffer_stats
+    from selfplay.roles.buffer import merge_buffer_stats
 
     def shard(pending_games, pending_positions, window):
         # every shard reads the same catalog: its durable counts are the whole run's
@@ -173,7 +191,7 @@ def test_buffer_shard_counters_merge_into_one_buffer():
 
 
 def test_actor_startup_errors_become_one_line():
-    from cluster.actors import startup_error
+    from cluster.driver import startup_error
 
     text = ("The actor died because of an error raised in its creation task, ray::BufferActor.__init__()\n"
             "  File \"store.py\", line 120, in _take_lock\n"
@@ -181,3 +199,21 @@ def test_actor_startup_errors_become_one_line():
     err = startup_error("the replay buffer", RuntimeError(text))
     assert str(err) == ("the replay buffer could not start: run directory '/r' already has an open record "
                         "store named 'buffer0'")
+
+
+def test_resume_into_a_live_run_is_refused_before_anything_is_touched(tmp_path, capsys):
+    import os
+
+    from selfplay.roles.runlock import RunLock
+
+    out = _make_run(tmp_path)
+    before = (out / "run.toml").read_bytes()
+    live = RunLock.acquire(out)  # another `selfplay run` holds the directory
+    try:
+        for extra in ([], ["--in-process"]):
+            code, err = _run(["--out", str(out), "--resume", "--games", "5", *extra], capsys)
+            assert code == 2 and f"in use by pid {os.getpid()}" in err, err
+            assert (out / "run.toml").read_bytes() == before  # not rewritten
+            assert not (out / "metrics.jsonl").exists()
+    finally:
+        live.release()

@@ -1,4 +1,5 @@
-"""The one-process loop, the evaluation tools, and the proof that the loop learns.
+"""The in-process run (the roles that `selfplay run` uses, composed in one process), the
+evaluation tools, and the proof that the run learns.
 
 The slow test trains tic-tac-toe from scratch and checks, against a perfect minimax player,
 that the trained snapshot loses far fewer games than the untrained one. It can fail: a learner
@@ -19,7 +20,7 @@ from selfplay.evaluation import (MinimaxPlayer, MinimaxSolver, PolicyPlayer, Ran
                                  elo_difference, elo_expected_score, play_match)
 from selfplay.evaluators import NetworkEvaluator
 from selfplay.games.registry import make_game
-from selfplay.learner_config import LoopConfig
+from selfplay.loop import LoopConfig
 from selfplay.loop import LocalRun, run_local_loop
 from selfplay.metrics import read_metrics
 from selfplay.network import build_network
@@ -86,7 +87,7 @@ def tiny_config(**run):
 def test_loop_runs_resumes_and_keeps_the_run_directory_consistent(tmp_path):
     run_dir = tmp_path / "run"
     first = run_local_loop(tiny_config(games=32), run_dir, loop=LoopConfig(games_per_phase=16))
-    assert first.games >= 32 and first.stopped_because == "run.games=32"
+    assert first.games == 32 and first.stopped_because == "games reached"  # the game budget holds exactly
     store = SnapshotStore(run_dir)
     v_first = store.latest_version()
     assert v_first >= 2  # the untrained version 1 and at least one trained snapshot
@@ -106,7 +107,8 @@ def test_loop_runs_resumes_and_keeps_the_run_directory_consistent(tmp_path):
     # trained positions never ran ahead of the target reuse ratio
     rows = [r for r in read_metrics(run_dir / "metrics.jsonl") if r["component"] == "learner"]
     assert rows and max(r["reuse_ratio"] for r in rows) <= 2.0 + 1e-9
-    assert {r["component"] for r in read_metrics(run_dir / "metrics.jsonl")} >= {"learner", "snapshots", "worker"}
+    assert {r["component"] for r in read_metrics(run_dir / "metrics.jsonl")} >= {
+        "learner", "snapshots", "worker", "buffer", "snapshot_server", "run"}
 
 
 def test_loop_refuses_a_run_directory_of_another_config(tmp_path):
@@ -126,30 +128,68 @@ def make_game_config(name, **options):
 def test_worker_picks_up_a_users_snapshot_and_refuses_a_foreign_one(tmp_path):
     run = LocalRun(tiny_config(), tmp_path / "run")
     try:
-        assert run.worker_version == 1
+        worker = run.workers[0]
+        assert worker.version == 1
         game = run.game
         mine = build_network(game, run.config.network, seed=99)  # a user's own trainer
         v = run.store.publish(mine, parent_version=1)
-        assert run.pickup_snapshot() and run.worker_version == v
-        assert all(torch.equal(a, b) for a, b in zip(run.worker_net.state_dict().values(),
-                                                     mine.state_dict().values()))
+        assert run.snapshots.refresh() == v and worker.pickup() and worker.version == v
+        assert all(torch.equal(a, b) for a, b in zip(worker.net.state_dict().values(), mine.state_dict().values()))
         run.generate(16)  # positions now record the new version
         assert run.buffer.newest_snapshot == v
-        before = {k: t.clone() for k, t in run.worker_net.state_dict().items()}
+        before = {k: t.clone() for k, t in worker.net.state_dict().items()}
         foreign = build_network(make_game("mnk", m=4, n=4, k=3), run.config.network)
         bad = run.store.publish(foreign)
-        assert not run.pickup_snapshot()
-        assert run.status.events[-1]["event"] == "snapshot_refused" and run.status.events[-1]["version"] == bad
-        assert all(torch.equal(before[k], t) for k, t in run.worker_net.state_dict().items())
+        assert run.snapshots.refresh() == v and not worker.pickup()
+        assert "m': 4" in run.snapshots.info()["refused"][bad]  # refused for another board
+        assert all(torch.equal(before[k], t) for k, t in worker.net.state_dict().items())
         run.generate(16)  # the worker plays on with its previous weights
     finally:
         run.close()
 
 
-def test_loop_refuses_a_ratio_its_stop_condition_can_never_meet(tmp_path):
+def test_a_ratio_its_stop_condition_can_never_meet_is_noted_and_the_data_still_made(tmp_path):
+    notes = []
     cfg = tiny_config(positions=50)  # fewer positions than learner.min_buffer_positions=100
-    with pytest.raises(ConfigError, match="min_buffer_positions"):
-        run_local_loop(cfg, tmp_path / "run")
+    run = LocalRun(cfg, tmp_path / "run", say=notes.append)
+    try:
+        assert run.run_until() == "positions reached"
+    finally:
+        run.close()
+    assert any("min_buffer_positions" in n for n in notes)
+    # before the first game the length of a game is unknown: at most one game per slot (G=16) starts
+    assert 50 <= run.status.positions <= 50 + 16 * run.game.max_moves
+
+
+def test_a_second_run_into_a_live_directory_is_refused_and_a_stale_lock_taken_over(tmp_path):
+    import os
+    import socket
+    import subprocess
+    import sys
+
+    from selfplay.roles.runlock import RunLock
+
+    run = LocalRun(tiny_config(), tmp_path / "run")
+    try:
+        with pytest.raises(RunDirError, match=f"in use by pid {os.getpid()} on host {socket.gethostname()}"):
+            LocalRun(tiny_config(), tmp_path / "run")
+    finally:
+        run.close()
+    # a lock left by a process that died (same host): taken over with a notice
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    pid = int(dead.stdout)
+    (tmp_path / "run" / "run.lock").write_text(json.dumps({"pid": pid, "host": socket.gethostname()}))
+    notes = []
+    lock = RunLock.acquire(tmp_path / "run", say=notes.append)
+    try:
+        assert lock.session == 1  # each opening is a session: game ids never repeat
+        assert notes and f"pid {pid}" in notes[0] and "no longer running" in notes[0]
+    finally:
+        lock.release()
+    # a lock of another host cannot be judged from here: refused, naming the file to delete
+    (tmp_path / "run" / "run.lock").write_text(json.dumps({"pid": 1, "host": "elsewhere"}))
+    with pytest.raises(RunDirError, match="host elsewhere.*delete"):
+        RunLock.acquire(tmp_path / "run")
 
 
 # ---- the proof (short version of scripts/learning_proof.py) --------------------------------
@@ -192,11 +232,11 @@ def test_snapshot_pickup_modes(tmp_path, mode):
     cfg = cfg.model_copy(update={"worker": cfg.worker.model_copy(update={"snapshot_pickup": mode})})
     run = LocalRun(cfg, tmp_path / "run")
     try:
+        worker = run.workers[0]
         v = run.store.publish(build_network(run.game, cfg.network, seed=3), parent_version=1)
-        run.after_training()
-        assert run.worker_version == (v if mode == "between_moves" else 1)
+        run.snapshots.refresh()
         run.generate(1)  # a step that finishes a game is a pickup point in both modes
-        assert run.worker_version == v
+        assert worker.version == v
     finally:
         run.close()
 
@@ -208,11 +248,11 @@ def test_a_diverged_learner_stops_the_loop_and_keeps_the_run_consistent(tmp_path
     seen = {}
 
     def poison(run):
-        if run.learner.step > 0 and "version" not in seen:
+        if run.learner.learner.step > 0 and "version" not in seen:
             seen["version"] = run.store.latest_version()
             seen["games"] = run.status.games
             with torch.no_grad():
-                run.learner_net.policy_fc.weight.fill_(float("inf"))  # a diverged update
+                run.learner.net.policy_fc.weight.fill_(float("inf"))  # a diverged update
 
     with pytest.raises(TrainingDivergedError, match="newest good snapshot is version"):
         run_local_loop(tiny_config(games=200), run_dir, loop=LoopConfig(games_per_phase=16), on_phase=poison)
@@ -240,8 +280,8 @@ def test_reopening_a_run_whose_newest_snapshot_is_corrupt_falls_back_to_the_prev
     weights.write_bytes(bytes(data))
     run = LocalRun(tiny_config(), run_dir)
     try:
-        assert run.worker_version == newest - 1
-        assert run.status.events[0]["event"] == "snapshot_refused" and "checksum" in run.status.events[0]["reason"]
+        assert run.snapshots.version == newest - 1 and run.workers[0].version == newest - 1
+        assert "checksum" in run.snapshots.info()["refused"][newest]
         run.generate(4)  # and it plays
     finally:
-        run.close(publish_final=False)
+        run.close()

@@ -23,7 +23,7 @@ def _catalog(run: RunDir):  # type: ignore[no-untyped-def]
 
     if not run.catalog.exists():
         raise GameNotFoundError(f"run {str(run.root)!r} has no catalog.sqlite yet: no games committed")
-    return Catalog(run.catalog, readonly=True)
+    return Catalog.open_readonly(run.catalog)
 
 
 def find_record(run_path: str | os.PathLike[str] | RunDir, game_id: str) -> GameRecord:
@@ -45,23 +45,11 @@ def find_record(run_path: str | os.PathLike[str] | RunDir, game_id: str) -> Game
 
 
 def newest_records(run_path: str | os.PathLike[str] | RunDir, max_games: int = 2000) -> list[GameRecord]:
-    """Up to ``max_games`` of the most recently committed games, in commit order.
-
-    A shard that fails its checks is skipped by the reader (the store quarantines it on its
-    next recovery)."""
+    """Up to ``max_games`` of the most recently committed games, in commit order (the replay
+    reader's newest-shard selection; a shard that fails its checks is skipped)."""
     from selfplay.replay import reader
 
     run = run_path if isinstance(run_path, RunDir) else RunDir.open(run_path)
     if not run.catalog.exists():
         return []
-    cat = _catalog(run)
-    try:
-        row = cat.con.execute("SELECT coalesce(sum(positions), 0) FROM "
-                              "(SELECT positions FROM games ORDER BY seq DESC LIMIT ?)", (int(max_games),)).fetchone()
-    finally:
-        cat.close()
-    positions = int(row[0])
-    if positions <= 0:
-        return []
-    recs = reader.newest_records(run, positions=positions, on_corrupt="skip")
-    return recs[-max_games:]
+    return reader.newest_records(run, None, on_corrupt="skip", games=int(max_games))

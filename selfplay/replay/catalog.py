@@ -296,3 +296,95 @@ class Catalog:
         dup = self.con.execute("SELECT value FROM counters WHERE name='duplicates_total'").fetchone()
         return CatalogTotals(int(g), int(p), int(shards), int(dup[0]) if dup else 0,
                              int(s) if s is not None else None)
+
+    # ---- aggregate queries (the monitor, readers and the buffer's refill use these) ------------
+    @classmethod
+    def open_readonly(cls, path: str | Path, timeout: float = 5.0) -> "Catalog":
+        """A read-only connection (FormatError if the file is missing or not a catalog)."""
+        return cls(path, readonly=True, timeout=timeout)
+
+    def __enter__(self) -> "Catalog":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def newest_shards(self, positions: int | None = None, part: tuple[int, int] = (0, 1)) -> list[ShardRow]:
+        """The newest shards that together hold at least ``positions`` positions (every shard if
+        None), oldest first. With ``part=(index, count)`` only the shards at positions ``index``,
+        ``index + count`` ... counted from the newest are taken (shard ``index`` of ``count``
+        buffer shards refilling their windows: together they hold the newest positions).
+
+        The one newest-shard selection of the project: the replay window's refill, the reader's
+        ``newest_records`` and the monitor's newest games all use it."""
+        index, count = part
+        if not (count >= 1 and 0 <= index < count):
+            raise ValueError(f"part {part!r} must be (index, count) with 0 <= index < count")
+        chosen: list[ShardRow] = []
+        need = positions
+        q = f"SELECT {', '.join(SHARD_COLUMNS)} FROM shards ORDER BY seq DESC"
+        for pos, r in enumerate(self.con.execute(q).fetchall()):
+            if need is not None and need <= 0:
+                break
+            if pos % count != index:
+                continue
+            row = ShardRow(*r)
+            chosen.append(row)
+            if need is not None:
+                need -= row.positions
+        chosen.reverse()
+        return chosen
+
+    def positions_of_newest_games(self, games: int) -> int:
+        """Positions in the ``games`` most recently committed games."""
+        row = self.con.execute("SELECT coalesce(sum(positions), 0) FROM "
+                               "(SELECT positions FROM games ORDER BY seq DESC LIMIT ?)", (int(games),)).fetchone()
+        return int(row[0])
+
+    def summary(self) -> "CatalogSummary":
+        """Counts, finish-time range and the resignation probe's figures in one scan of ``games``."""
+        r = self.con.execute(
+            "SELECT count(*), coalesce(sum(positions), 0), min(finished_at), max(finished_at), "
+            "min(CASE WHEN started_at > 0 THEN started_at END), "
+            "coalesce(sum(resign_disabled != 0), 0), "
+            "coalesce(sum(resign_disabled != 0 AND resign_would_have >= 0), 0), "
+            # a false positive: the would-have-resigned player did not lose (result: player 0's view)
+            "coalesce(sum(resign_disabled != 0 AND ((resign_would_have = 0 AND result >= 0) OR "
+            "(resign_would_have = 1 AND result <= 0))), 0) FROM games").fetchone()
+        shards = int(self.con.execute("SELECT count(*) FROM shards").fetchone()[0])
+        f = (lambda v: None if v is None else float(v))
+        return CatalogSummary(int(r[0]), int(r[1]), f(r[2]), f(r[3]), f(r[4]), int(r[5]), int(r[6]), int(r[7]), shards)
+
+    def counts_between(self, start: float, end: float) -> tuple[int, int]:
+        """(games, positions) finished in ``(start, end]`` (Unix s)."""
+        r = self.con.execute("SELECT count(*), coalesce(sum(positions), 0) FROM games "
+                             "WHERE finished_at > ? AND finished_at <= ?", (start, end)).fetchone()
+        return int(r[0]), int(r[1])
+
+    def finish_series(self) -> tuple[list[float], list[int]]:
+        """Every game's finish time (Unix s, ascending) and its positions, for plots."""
+        rows = self.con.execute("SELECT finished_at, positions FROM games WHERE finished_at IS NOT NULL "
+                                "ORDER BY finished_at").fetchall()
+        return [float(r[0]) for r in rows], [int(r[1]) for r in rows]
+
+    def game_lengths(self) -> list[int]:
+        """Moves played in every committed game, in commit order."""
+        return [int(r[0]) for r in self.con.execute("SELECT length FROM games ORDER BY seq")]
+
+
+@dataclass
+class CatalogSummary:
+    """What :meth:`Catalog.summary` reads: games and positions committed, first and last finish
+    time and first start time (Unix s, None without games), the resignation probe's games
+    (``resign_disabled_games``; of those ``resign_would_have_games`` had a player who would have
+    resigned, ``resign_false_positives`` of whom did not lose) and the shard count."""
+
+    games: int
+    positions: int
+    first_finished: float | None
+    last_finished: float | None
+    first_started: float | None
+    resign_disabled_games: int
+    resign_would_have_games: int
+    resign_false_positives: int
+    shards: int

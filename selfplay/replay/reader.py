@@ -211,26 +211,23 @@ class RunReader:
 
 
 def newest_records(run_dir: str | os.PathLike[str] | RunDir, positions: int | None,
-                   on_corrupt: Literal["skip", "raise"] = "skip") -> list[GameRecord]:
+                   on_corrupt: Literal["skip", "raise"] = "skip", *, games: int | None = None,
+                   part: tuple[int, int] = (0, 1)) -> list[GameRecord]:
     """The records of the newest shards holding at least ``positions`` positions (all records
-    if None), in commit order. Needs the catalog."""
+    if None; with ``games``, enough shards for the newest ``games`` games and only those games
+    returned), in commit order; ``part`` as in :meth:`Catalog.newest_shards`. Needs the catalog."""
     run = run_dir if isinstance(run_dir, RunDir) else RunDir.open(run_dir)
     if not run.catalog.exists():
         reader = RunReader(run, on_corrupt=on_corrupt)
         recs = list(reader.records())
-        return recs
+        return recs[-games:] if games is not None else recs
     cat = Catalog(run.catalog, readonly=True)
     try:
-        rows = cat.shards()
-        chosen: list[ShardRow] = []
-        need = positions
-        for row in reversed(rows):
-            if need is not None and need <= 0:
-                break
-            chosen.append(row)
-            if need is not None:
-                need -= row.positions
-        chosen.reverse()
+        if games is not None:
+            positions = cat.positions_of_newest_games(games)
+            if positions <= 0:
+                return []
+        chosen = cat.newest_shards(positions, part)
         credited = {row.name: cat.game_offsets(row.name) for row in chosen}
     finally:
         cat.close()
@@ -238,7 +235,7 @@ def newest_records(run_dir: str | os.PathLike[str] | RunDir, positions: int | No
     out: list[GameRecord] = []
     for row in chosen:
         out.extend(reader._read(run.shards / row.name, credited[row.name]))
-    return out
+    return out[-games:] if games is not None else out
 
 
 def read_game(run_dir: str | os.PathLike[str] | RunDir, game_id: str) -> GameRecord:
