@@ -41,7 +41,8 @@ def test_games_batched_into_shards_and_catalogued(tmp_path):
     with RecordStore(tmp_path, max_games=10) as store:
         added, dups = store.add_games(recs)
         assert (len(added), dups) == (25, [])
-        assert store.pending_games == 5
+        assert store.pending_games == 0 and store.journal_games == 5  # durable, not yet sealed
+        assert store.totals().games == 25  # counted at once
     cat = Catalog(tmp_path / "catalog.sqlite", readonly=True)
     t = cat.totals()
     assert (t.games, t.shards, t.duplicates) == (25, 3, 0)

@@ -18,6 +18,7 @@ the writer commits. Read-only users open it with ``Catalog(path, readonly=True)`
 
 from __future__ import annotations
 
+import functools
 import sqlite3
 import time
 from dataclasses import dataclass
@@ -119,8 +120,36 @@ def game_row(rec: Any, shard: str, offset: int, added_at: float) -> tuple:
             int(rec.full_search.sum()), added_at)
 
 
+class CatalogDamagedError(FormatError):
+    """catalog.sqlite is not a readable SQLite database; the shards can rebuild it."""
+
+
+def damaged_message(path: Path, exc: BaseException) -> str:
+    """The one line that tells a user their catalog is damaged and how to rebuild it."""
+    run = path.parent
+    return (f"catalog {str(path)!r} is damaged ({exc}); the shards hold every game: rebuild it "
+            f"with `selfplay repair {run}`")
+
+
+def _damage_to_error(method):  # type: ignore[no-untyped-def]
+    """Turn SQLite's 'not a database' / 'malformed' errors into :class:`CatalogDamagedError`
+    (a locked or full database stays an OperationalError: it is not damage)."""
+    @functools.wraps(method)
+    def wrapper(self, *args, **kwargs):  # type: ignore[no-untyped-def]
+        try:
+            return method(self, *args, **kwargs)
+        except sqlite3.OperationalError:
+            raise
+        except sqlite3.DatabaseError as exc:
+            raise CatalogDamagedError(damaged_message(self.path, exc)) from None
+    return wrapper
+
+
 class Catalog:
-    """Connection to one catalog.sqlite."""
+    """Connection to one catalog.sqlite.
+
+    Every method turns a damaged database into :class:`CatalogDamagedError` (one line naming
+    ``selfplay repair``)."""
 
     def __init__(self, path: str | Path, *, readonly: bool = False, timeout: float = 30.0) -> None:
         self.path = Path(path)
@@ -131,6 +160,7 @@ class Catalog:
                     raise FormatError(f"catalog {str(self.path)!r} does not exist")
                 self.con = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=timeout,
                                            isolation_level=None, check_same_thread=False)
+                self.con.execute("SELECT count(*) FROM sqlite_master").fetchone()  # reads the header
             else:
                 self.con = sqlite3.connect(self.path, timeout=timeout, isolation_level=None,
                                            check_same_thread=False)
@@ -139,8 +169,10 @@ class Catalog:
                 self.con.execute("PRAGMA synchronous=NORMAL")
                 self.con.executescript(_SCHEMA)
                 self._check_version()
-        except sqlite3.DatabaseError as exc:
+        except sqlite3.OperationalError as exc:
             raise FormatError(f"catalog {str(self.path)!r} cannot be opened: {exc}") from exc
+        except sqlite3.DatabaseError as exc:
+            raise CatalogDamagedError(damaged_message(self.path, exc)) from None
 
     def _check_version(self) -> None:
         row = self.con.execute("SELECT value FROM meta WHERE key='catalog_version'").fetchone()
@@ -154,38 +186,108 @@ class Catalog:
         self.con.close()
 
     # ---- writing (one transaction each) ------------------------------------------------------
-    def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0) -> int:
-        """Insert a shard and its games in one transaction; returns how many game rows were new
-        (rows whose game_id is already known are ignored and added to ``duplicates_total``)."""
+    def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0, *,
+                     replace: bool = False) -> int:
+        """Insert a shard and its games in one transaction; returns how many games the catalog
+        credits to the shard afterwards. A row whose game_id is already credited to another
+        shard is ignored and added to ``duplicates_total`` (rows already credited to this shard,
+        e.g. committed while it was a journal, are not duplicates). ``replace`` first forgets
+        every game row credited to the shard (its frames moved)."""
         cur = self.con.cursor()
         cur.execute("BEGIN IMMEDIATE")
         try:
             if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
                 cur.execute("ROLLBACK")  # already indexed (by another writer's recovery)
                 return 0
-            before = self.con.total_changes
+            if replace:
+                cur.execute("DELETE FROM games WHERE shard=?", (shard.name,))
             cur.executemany(
                 f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
                 f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
-            inserted = self.con.total_changes - before
-            ignored = len(games) - inserted
-            positions = int(cur.execute(
-                "SELECT coalesce(sum(positions), 0) FROM games WHERE shard=?",
-                (shard.name,)).fetchone()[0])
-            # the shard row is written even when every game was a duplicate, so recovery does
-            # not index the file again
-            cur.execute(f"INSERT INTO shards ({', '.join(SHARD_COLUMNS)}) "
-                        f"VALUES ({', '.join('?' * len(SHARD_COLUMNS))})",
-                        (shard.name, inserted, positions, shard.bytes, shard.crc32,
-                         shard.snapshot_min, shard.snapshot_max, shard.created_at,
-                         shard.writer, shard.schema_version))
-            self._bump(cur, "duplicates_total", duplicates + ignored)
+            credited, positions = cur.execute(
+                "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
+                (shard.name,)).fetchone()
+            ignored = len(games) - int(credited)
+            self._insert_shard(cur, shard, int(credited), int(positions))
+            self._bump(cur, "duplicates_total", duplicates + (0 if replace else max(0, ignored)))
             cur.execute("COMMIT")
         except BaseException:
             if self.con.in_transaction:
                 cur.execute("ROLLBACK")
             raise
-        return inserted
+        return int(credited)
+
+    @staticmethod
+    def _insert_shard(cur: sqlite3.Cursor, shard: ShardRow, games: int, positions: int) -> None:
+        # the shard row is written even when every game was a duplicate, so recovery does not
+        # index the file again
+        cur.execute(f"INSERT INTO shards ({', '.join(SHARD_COLUMNS)}) "
+                    f"VALUES ({', '.join('?' * len(SHARD_COLUMNS))})",
+                    (shard.name, games, positions, shard.bytes, shard.crc32, shard.snapshot_min,
+                     shard.snapshot_max, shard.created_at, shard.writer, shard.schema_version))
+
+    def commit_games(self, games: Sequence[tuple], duplicates: int = 0) -> list[str]:
+        """Insert game rows (of a journal: their shard is not sealed yet) in one transaction;
+        returns the ids that were new. Rows whose id is already committed are ignored and,
+        with ``duplicates``, added to ``duplicates_total``."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            new: list[str] = []
+            sql = (f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
+                   f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})")
+            for row in games:
+                before = self.con.total_changes
+                cur.execute(sql, row)
+                if self.con.total_changes > before:
+                    new.append(row[0])
+            self._bump(cur, "duplicates_total", duplicates + len(games) - len(new))
+            cur.execute("COMMIT")
+        except BaseException:
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
+            raise
+        return new
+
+    def seal_shard(self, shard: ShardRow) -> int:
+        """Add the ``shards`` row of a sealed journal whose games are already committed; returns
+        the games credited to it (0 if the row was already there)."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
+                cur.execute("ROLLBACK")
+                return 0
+            credited, positions = cur.execute(
+                "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
+                (shard.name,)).fetchone()
+            self._insert_shard(cur, shard, int(credited), int(positions))
+            cur.execute("COMMIT")
+        except BaseException:
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
+            raise
+        return int(credited)
+
+    def unsealed_shard_names(self) -> set[str]:
+        """Shard names that game rows credit but that have no ``shards`` row (open journals,
+        or journals lost with their games)."""
+        return {r[0] for r in self.con.execute(
+            "SELECT DISTINCT shard FROM games WHERE shard NOT IN (SELECT name FROM shards)")}
+
+    def forget_games_of(self, shard: str) -> int:
+        """Delete the game rows credited to ``shard``; returns how many there were."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            cur.execute("DELETE FROM games WHERE shard=?", (shard,))
+            n = cur.rowcount
+            cur.execute("COMMIT")
+        except BaseException:
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
+            raise
+        return int(n)
 
     def add_duplicates(self, n: int) -> None:
         if n:
@@ -200,9 +302,11 @@ class Catalog:
             cur.execute("INSERT INTO counters VALUES (?, ?) ON CONFLICT(name) DO UPDATE SET "
                         "value = value + excluded.value", (name, n))
 
-    def quarantine_shard(self, name: str, reason: str, games_lost: int, games_salvaged: int) -> None:
-        """Forget shard ``name`` and its games (they now live in a salvage shard or are lost),
-        and note why in ``quarantine``."""
+    def quarantine_shard(self, name: str, reason: str, games_lost: int, games_salvaged: int,
+                         salvage: tuple[ShardRow, Sequence[tuple]] | None = None) -> None:
+        """Forget shard ``name`` and its games and note why in ``quarantine``; with ``salvage``
+        (the shard row and game rows of a new shard holding its sound games), commit that
+        shard in the same transaction, so no game is ever uncredited in between."""
         cur = self.con.cursor()
         cur.execute("BEGIN IMMEDIATE")
         try:
@@ -210,9 +314,19 @@ class Catalog:
             cur.execute("DELETE FROM shards WHERE name=?", (name,))
             cur.execute("INSERT OR REPLACE INTO quarantine VALUES (?, ?, ?, ?, ?)",
                         (name, reason, time.time(), games_lost, games_salvaged))
+            if salvage is not None:
+                row, games = salvage
+                cur.executemany(
+                    f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
+                    f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
+                credited, positions = cur.execute(
+                    "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
+                    (row.name,)).fetchone()
+                self._insert_shard(cur, row, int(credited), int(positions))
             cur.execute("COMMIT")
         except BaseException:
-            cur.execute("ROLLBACK")
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
             raise
 
     # ---- reading -----------------------------------------------------------------------------
@@ -269,3 +383,9 @@ class Catalog:
         dup = self.con.execute("SELECT value FROM counters WHERE name='duplicates_total'").fetchone()
         return CatalogTotals(int(g), int(p), int(shards), int(dup[0]) if dup else 0,
                              int(s) if s is not None else None)
+
+
+for _name, _fn in list(vars(Catalog).items()):
+    if callable(_fn) and not _name.startswith("__"):
+        setattr(Catalog, _name, _damage_to_error(_fn) if not isinstance(_fn, staticmethod) else _fn)
+del _name, _fn
