@@ -72,6 +72,7 @@ class SnapshotActor:
         net = build_network(game, config.network, seed=derive_seed(config.run.seed, "network"))
         # every worker's network has these tensors: a snapshot that does not fit is refused here, once
         self.expected_shapes = {k: tuple(v.shape) for k, v in net.state_dict().items()}
+        self.probe_net = net  # and its dtypes and outputs on probe positions (SnapshotStore.load)
         if self.store.latest_version() == 0:
             self.store.publish(net, extra={"phase": "initial"})  # version 1: the initial weights
         self.refresh()
@@ -85,7 +86,7 @@ class SnapshotActor:
                 continue
             try:
                 tensors, info = self.store.load(version, game=self.game_name, game_options=self.game_options,
-                                                expected_shapes=self.expected_shapes)
+                                                expected_shapes=self.expected_shapes, probe_net=self.probe_net)
             except SnapshotError as exc:
                 self.refused[version] = str(exc)
                 continue
@@ -151,7 +152,7 @@ def refill_window(buffer: Any, store: Any, run: RunDir, capacity: int, index: in
         if not path.exists():
             continue
         try:
-            for _, rec in read_shard(path):
+            for _, rec in read_shard(path, damaged=[]):  # a damaged frame is skipped, not the rest
                 buffer.add(rec)
                 added += rec.num_positions
         except SelfplayError:
@@ -189,7 +190,7 @@ class BufferActor:
         self.newest_snapshot = 0
         self._totals = self.store.totals()
         self._totals_at = time.monotonic()
-        self._totals_shards = self.store.shards_written
+        self._totals_shards = self.store.commits
 
     def add_games(self, records: list[Any]) -> dict[str, Any]:
         """Store ``records`` (game ids already stored or waiting are ignored and counted) and add
@@ -231,10 +232,10 @@ class BufferActor:
         # The catalog count is cached for a second, but never across a shard this store wrote:
         # the waiting games it moved into the catalog would drop out of durable + waiting.
         if (fresh or time.monotonic() - self._totals_at > 1.0
-                or self.store.shards_written != self._totals_shards):
+                or self.store.commits != self._totals_shards):
             self._totals = self.store.totals()
             self._totals_at = time.monotonic()
-            self._totals_shards = self.store.shards_written
+            self._totals_shards = self.store.commits
         t = self._totals
         return {
             "games_durable": t.games, "positions_durable": t.positions,

@@ -9,7 +9,9 @@ the file without interleaving lines.
 from __future__ import annotations
 
 import json
+import logging
 import os
+import sys
 import time
 from pathlib import Path
 from typing import Any, Iterator
@@ -22,16 +24,28 @@ class MetricsLog:
         self.path = Path(path)
         self.component = component
         self.source = source or component
+        #: lines that could not be written (disk full, read-only, ...): a run goes on without them
+        self.dropped = 0
 
     def write(self, **fields: Any) -> dict[str, Any]:
         """Append one line with the current time and ``fields``; returns the line as a dict."""
         row = {"t": time.time(), "component": self.component, "source": self.source, **fields}
         line = json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n"
-        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
         try:
-            os.write(fd, line.encode())
-        finally:
-            os.close(fd)
+            fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+            try:
+                data = line.encode()
+                if os.write(fd, data) != len(data):  # a short append: the disk filled mid-line
+                    raise OSError(28, "short write")
+            finally:
+                os.close(fd)
+        except OSError as exc:
+            self.dropped += 1
+            if self.dropped == 1:  # said once; the count goes on in ``dropped``
+                msg = (f"metrics: cannot append to {self.path} ({exc.strerror or exc}); "
+                       f"{self.component} lines are dropped until it can")
+                logging.getLogger(__name__).warning(msg)
+                print(msg, file=sys.stderr)
         return row
 
 
