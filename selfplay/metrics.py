@@ -68,7 +68,7 @@ def read_metrics(path: str | os.PathLike[str]) -> Iterator[dict[str, Any]]:
                 break
             try:
                 row = json.loads(raw)
-            except json.JSONDecodeError:
+            except ValueError:  # not JSON, or not UTF-8 text (a damaged line is skipped)
                 continue
             if isinstance(row, dict):
                 yield row

@@ -34,6 +34,8 @@ _LETTERS = "abcdefghijklmnopqrstuvwxyz"
 MAX_MAIN_LINE_NODES = 100_000
 #: most characters of a number (SZ, KM, HA, FF): Python's int() refuses 4,300 digits anyway
 MAX_NUMBER_CHARS = 32
+#: where a run of plain value text ends: the closing bracket or an escape
+_VALUE_STOP = re.compile(r"[\]\\]")
 
 
 # ---- coordinates --------------------------------------------------------------------------------
@@ -214,7 +216,8 @@ class _Parser:
             if self.i >= n:
                 raise self.error("unterminated property value (missing ']')", start)
             # copy the plain run up to the next ']' or '\\' in one piece
-            stop = min((j for j in (t.find("]", self.i), t.find("\\", self.i)) if j >= 0), default=n)
+            m = _VALUE_STOP.search(t, self.i)
+            stop = m.start() if m else n
             if stop > self.i:
                 out.append(t[self.i:stop])
                 self.i = stop
