@@ -460,7 +460,7 @@ class SnapshotStore:
                 probe.load_state_dict(tensors, strict=True)
         elif probe is None:
             probe = network_for(tensors, str(game), dict(game_options or {}), self.run)
-        if probe is not None:
+        if probe is not None and getattr(probe, "game_name", None):  # a network of a known game
             problem = output_problems(probe)
             if problem:
                 raise SnapshotError(f"refusing to publish: {problem}")

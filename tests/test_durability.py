@@ -157,6 +157,28 @@ def test_a_journal_damaged_in_the_middle_keeps_every_sound_game(tmp_path):
         ["g0", "g1", "g3", "g4", "g5"]
 
 
+def test_a_crash_after_a_journal_was_rewritten_credits_the_new_offsets(tmp_path):
+    """The sound frames of a damaged journal were written into its shard, then the process died
+    before the catalog learnt the new offsets: the next open credits the shard's frames."""
+    with RecordStore(tmp_path, max_age_seconds=600, compress=False) as store:
+        store.ingest(records(4))
+        journal = store._journal.path
+        os.close(store._journal.fd)
+        store._journal = None
+        store._lock_fd, fd = -1, store._lock_fd
+        store.catalog.close()
+        os.close(fd)
+    scan = scan_shard(journal)
+    kept = [rec for i, (_, rec) in enumerate(scan.records) if i != 1]  # frame 1 was damaged
+    from selfplay.replay.shards import write_shard
+    write_shard(tmp_path / "shards" / "main-00000000.plyrec",
+                [codec.encode_frame(codec.encode_record(r), 0) for r in kept], 0)
+    with RecordStore(tmp_path) as store:
+        assert store.recovery.journals_replayed == ["main-00000000.journal"]
+    assert (tmp_path / "quarantine" / "main-00000000.journal").exists()
+    assert sorted(r.game_id for r in RunReader(tmp_path, on_corrupt="raise").records()) == ["g0", "g2", "g3"]
+
+
 def test_another_stopped_writers_journal_is_sealed_but_a_running_ones_is_not(tmp_path):
     live = RecordStore(tmp_path, writer="live", max_age_seconds=600)
     live.ingest(records(2, start=0))

@@ -652,9 +652,18 @@ class RecordStore:
         final = self.run.shards / name
         m = _JOURNAL_RE.match(path.name)
         writer = m.group(1) if m else self.writer
+        if not path.exists():  # another store replayed it while this one waited for its lock
+            return
         if final.exists():
-            # a crash after the sound frames were re-written into the shard: the shard is the copy
+            # a crash after the sound frames were re-written into the shard and before the
+            # journal was moved aside: the shard is the copy; credit its offsets
+            done = scan_shard(final)
+            if done.header_ok and name not in self.catalog.shard_names():
+                rows = [game_row(rec, name, off, time.time()) for off, rec in done.records]
+                self.catalog.commit_shard(self._shard_row(name, rows, done.size, done.crc32, writer),
+                                          rows, replace=True)
             self._move_to_quarantine(path.name, {"reason": f"journal already re-written into {name}"})
+            rep.journals_replayed.append(path.name)
             return
         scan = scan_shard(path)
         if not scan.header_ok:
@@ -699,14 +708,19 @@ class RecordStore:
             self._move_to_quarantine(path.name, {"reason": reasons, "salvaged_into": name,
                                                  "games_salvaged": len(keep)})
             rep.games_lost += max(0, before - len(keep))
-        lo = [r[8] for r in rows if r[8] is not None]
-        hi = [r[9] for r in rows if r[9] is not None]
-        row = ShardRow(name, len(rows), sum(r[5] for r in rows), size, crc,
-                       min(lo) if lo else None, max(hi) if hi else None, time.time(), writer,
-                       codec.SCHEMA_VERSION)
-        self.catalog.commit_shard(row, rows, replace=True)
+        self.catalog.commit_shard(self._shard_row(name, rows, size, crc, writer), rows, replace=True)
         rep.journals_replayed.append(path.name)
         rep.journal_games += len(rows)
+
+    @staticmethod
+    def _shard_row(name: str, rows: list[tuple], size: int, crc: int, writer: str,
+                   created_at: float | None = None) -> ShardRow:
+        """The ``shards`` row of shard ``name`` holding the games ``rows``."""
+        lo = [r[8] for r in rows if r[8] is not None]
+        hi = [r[9] for r in rows if r[9] is not None]
+        return ShardRow(name, len(rows), sum(r[5] for r in rows), size, crc,
+                        min(lo) if lo else None, max(hi) if hi else None,
+                        time.time() if created_at is None else created_at, writer, codec.SCHEMA_VERSION)
 
     @_locked
     def verify(self, full: bool = True) -> RecoveryReport:
@@ -744,13 +758,9 @@ class RecordStore:
     def _index(self, name: str, scan: ShardScan) -> None:
         now = time.time()
         rows = [game_row(rec, name, off, now) for off, rec in scan.records]
-        lo = [r[8] for r in rows if r[8] is not None]
-        hi = [r[9] for r in rows if r[9] is not None]
         m = _SHARD_RE.match(name)
         writer = m.group(1) if m else self.writer
-        row = ShardRow(name, len(rows), sum(r[5] for r in rows), scan.size, scan.crc32,
-                       min(lo) if lo else None, max(hi) if hi else None,
-                       scan.path.stat().st_mtime, writer, codec.SCHEMA_VERSION)
+        row = self._shard_row(name, rows, scan.size, scan.crc32, writer, scan.path.stat().st_mtime)
         self.catalog.commit_shard(row, rows)
         self.commits += 1
 
@@ -779,11 +789,7 @@ class RecordStore:
             for r, fr in zip(salvage, frames):
                 rows.append(game_row(r, salvage_name, off, now))
                 off += len(fr)
-            lo = [x[8] for x in rows if x[8] is not None]
-            hi = [x[9] for x in rows if x[9] is not None]
-            new = (ShardRow(salvage_name, len(rows), sum(x[5] for x in rows), size, crc,
-                            min(lo) if lo else None, max(hi) if hi else None, now, self.writer,
-                            codec.SCHEMA_VERSION), rows)
+            new = (self._shard_row(salvage_name, rows, size, crc, self.writer, now), rows)
         self.catalog.quarantine_shard(name, reason, lost, len(salvage), new)
         self.commits += 1
         if new is not None:
