@@ -44,6 +44,16 @@ def catalog_ids(run) -> set[str]:
         cat.close()
 
 
+def die(store: RecordStore) -> None:
+    """What the end of its process does to a store: files closed, lock released, nothing
+    sealed or flushed."""
+    os.close(store._journal.fd)
+    store._journal = None
+    store._lock_fd, fd = -1, store._lock_fd
+    store.catalog.close()
+    os.close(fd)
+
+
 # ---- the journal ----------------------------------------------------------------------------
 
 def test_an_accepted_game_is_on_disk_and_counted_before_ingest_returns(tmp_path):
@@ -119,11 +129,7 @@ def test_a_torn_last_append_is_cut_and_reported(tmp_path):
         half = codec.encode_frame(codec.encode_record(records(1, start=9)[0]), store.flags)
         with open(journal, "ab") as f:
             f.write(half[: len(half) // 2])
-        os.close(store._journal.fd)  # no clean close: the lock goes with the "process"
-        store._journal = None
-        store._lock_fd, fd = -1, store._lock_fd
-        store.catalog.close()
-        os.close(fd)
+        die(store)  # no clean close: the lock goes with the "process"
     with RecordStore(tmp_path) as store:
         rep = store.recovery
         assert rep.journal_tails_cut == {"main-00000000.journal": len(half) // 2}
@@ -138,11 +144,7 @@ def test_a_journal_damaged_in_the_middle_keeps_every_sound_game(tmp_path):
     with RecordStore(tmp_path, max_age_seconds=600, compress=False) as store:
         store.ingest(records(6))
         journal = store._journal.path
-        os.close(store._journal.fd)
-        store._journal = None
-        store._lock_fd, fd = -1, store._lock_fd
-        store.catalog.close()
-        os.close(fd)
+        die(store)
     data = bytearray(journal.read_bytes())
     scan = scan_shard(journal)
     third = scan.records[2][0]
@@ -163,11 +165,7 @@ def test_a_crash_after_a_journal_was_rewritten_credits_the_new_offsets(tmp_path)
     with RecordStore(tmp_path, max_age_seconds=600, compress=False) as store:
         store.ingest(records(4))
         journal = store._journal.path
-        os.close(store._journal.fd)
-        store._journal = None
-        store._lock_fd, fd = -1, store._lock_fd
-        store.catalog.close()
-        os.close(fd)
+        die(store)
     scan = scan_shard(journal)
     kept = [rec for i, (_, rec) in enumerate(scan.records) if i != 1]  # frame 1 was damaged
     from selfplay.replay.shards import write_shard
@@ -184,9 +182,7 @@ def test_another_stopped_writers_journal_is_sealed_but_a_running_ones_is_not(tmp
     live.ingest(records(2, start=0))
     dead = RecordStore(tmp_path, writer="dead", max_age_seconds=600)
     dead.ingest(records(2, start=10))
-    os.close(dead._journal.fd)  # "dead" stops without sealing
-    dead.catalog.close()
-    os.close(dead._lock_fd)
+    die(dead)  # "dead" stops without sealing
     try:
         with RecordStore(tmp_path, writer="third") as store:
             assert store.recovery.journals_replayed == ["dead-00000000.journal"]

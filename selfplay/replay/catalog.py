@@ -18,12 +18,13 @@ the writer commits. Read-only users open it with ``Catalog(path, readonly=True)`
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import sqlite3
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable, Iterator, Sequence
 
 from selfplay.errors import FormatError
 
@@ -78,6 +79,8 @@ CREATE TABLE IF NOT EXISTS counters (name TEXT PRIMARY KEY, value INTEGER NOT NU
 GAME_COLUMNS = ("game_id", "shard", "frame_offset", "game", "worker", "positions", "length",
                 "result", "snapshot_min", "snapshot_max", "started_at", "finished_at", "resigned",
                 "resign_disabled", "resign_would_have", "full_search_positions", "added_at")
+_INSERT_GAME = (f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
+                f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})")
 SHARD_COLUMNS = ("name", "games", "positions", "bytes", "crc32", "snapshot_min", "snapshot_max",
                  "created_at", "writer", "schema_version")
 
@@ -186,6 +189,28 @@ class Catalog:
         self.con.close()
 
     # ---- writing (one transaction each) ------------------------------------------------------
+    @contextlib.contextmanager
+    def _write(self) -> Iterator[sqlite3.Cursor]:
+        """One write transaction: committed when the block ends, rolled back if it raises."""
+        cur = self.con.cursor()
+        cur.execute("BEGIN IMMEDIATE")
+        try:
+            yield cur
+            cur.execute("COMMIT")
+        except BaseException:
+            if self.con.in_transaction:
+                cur.execute("ROLLBACK")
+            raise
+
+    def _credit_shard(self, cur: sqlite3.Cursor, shard: ShardRow) -> int:
+        """Insert the ``shards`` row of ``shard`` counting the games the catalog credits to it;
+        returns that count."""
+        credited, positions = cur.execute(
+            "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
+            (shard.name,)).fetchone()
+        self._insert_shard(cur, shard, int(credited), int(positions))
+        return int(credited)
+
     def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0, *,
                      replace: bool = False) -> int:
         """Insert a shard and its games in one transaction; returns how many games the catalog
@@ -193,29 +218,16 @@ class Catalog:
         shard is ignored and added to ``duplicates_total`` (rows already credited to this shard,
         e.g. committed while it was a journal, are not duplicates). ``replace`` first forgets
         every game row credited to the shard (its frames moved)."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
+        with self._write() as cur:
             if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
-                cur.execute("ROLLBACK")  # already indexed (by another writer's recovery)
-                return 0
+                return 0  # already indexed (by another writer's recovery)
             if replace:
                 cur.execute("DELETE FROM games WHERE shard=?", (shard.name,))
-            cur.executemany(
-                f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
-                f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
-            credited, positions = cur.execute(
-                "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
-                (shard.name,)).fetchone()
-            ignored = len(games) - int(credited)
-            self._insert_shard(cur, shard, int(credited), int(positions))
-            self._bump(cur, "duplicates_total", duplicates + (0 if replace else max(0, ignored)))
-            cur.execute("COMMIT")
-        except BaseException:
-            if self.con.in_transaction:
-                cur.execute("ROLLBACK")
-            raise
-        return int(credited)
+            cur.executemany(_INSERT_GAME, games)
+            credited = self._credit_shard(cur, shard)
+            ignored = 0 if replace else max(0, len(games) - credited)
+            self._bump(cur, "duplicates_total", duplicates + ignored)
+        return credited
 
     @staticmethod
     def _insert_shard(cur: sqlite3.Cursor, shard: ShardRow, games: int, positions: int) -> None:
@@ -230,44 +242,23 @@ class Catalog:
         """Insert game rows (of a journal: their shard is not sealed yet) in one transaction;
         returns the ids that were new. Rows whose id is already committed are ignored and,
         with ``duplicates``, added to ``duplicates_total``."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
-            new: list[str] = []
-            sql = (f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
-                   f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})")
+        new: list[str] = []
+        with self._write() as cur:
             for row in games:
                 before = self.con.total_changes
-                cur.execute(sql, row)
+                cur.execute(_INSERT_GAME, row)
                 if self.con.total_changes > before:
                     new.append(row[0])
             self._bump(cur, "duplicates_total", duplicates + len(games) - len(new))
-            cur.execute("COMMIT")
-        except BaseException:
-            if self.con.in_transaction:
-                cur.execute("ROLLBACK")
-            raise
         return new
 
     def seal_shard(self, shard: ShardRow) -> int:
         """Add the ``shards`` row of a sealed journal whose games are already committed; returns
         the games credited to it (0 if the row was already there)."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
+        with self._write() as cur:
             if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
-                cur.execute("ROLLBACK")
                 return 0
-            credited, positions = cur.execute(
-                "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
-                (shard.name,)).fetchone()
-            self._insert_shard(cur, shard, int(credited), int(positions))
-            cur.execute("COMMIT")
-        except BaseException:
-            if self.con.in_transaction:
-                cur.execute("ROLLBACK")
-            raise
-        return int(credited)
+            return self._credit_shard(cur, shard)
 
     def unsealed_shard_names(self) -> set[str]:
         """Shard names that game rows credit but that have no ``shards`` row (open journals,
@@ -277,24 +268,14 @@ class Catalog:
 
     def forget_games_of(self, shard: str) -> int:
         """Delete the game rows credited to ``shard``; returns how many there were."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
+        with self._write() as cur:
             cur.execute("DELETE FROM games WHERE shard=?", (shard,))
-            n = cur.rowcount
-            cur.execute("COMMIT")
-        except BaseException:
-            if self.con.in_transaction:
-                cur.execute("ROLLBACK")
-            raise
-        return int(n)
+            return int(cur.rowcount)
 
     def add_duplicates(self, n: int) -> None:
         if n:
-            cur = self.con.cursor()
-            cur.execute("BEGIN IMMEDIATE")
-            self._bump(cur, "duplicates_total", n)
-            cur.execute("COMMIT")
+            with self._write() as cur:
+                self._bump(cur, "duplicates_total", n)
 
     @staticmethod
     def _bump(cur: sqlite3.Cursor, name: str, n: int) -> None:
@@ -307,27 +288,15 @@ class Catalog:
         """Forget shard ``name`` and its games and note why in ``quarantine``; with ``salvage``
         (the shard row and game rows of a new shard holding its sound games), commit that
         shard in the same transaction, so no game is ever uncredited in between."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
+        with self._write() as cur:
             cur.execute("DELETE FROM games WHERE shard=?", (name,))
             cur.execute("DELETE FROM shards WHERE name=?", (name,))
             cur.execute("INSERT OR REPLACE INTO quarantine VALUES (?, ?, ?, ?, ?)",
                         (name, reason, time.time(), games_lost, games_salvaged))
             if salvage is not None:
                 row, games = salvage
-                cur.executemany(
-                    f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
-                    f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
-                credited, positions = cur.execute(
-                    "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
-                    (row.name,)).fetchone()
-                self._insert_shard(cur, row, int(credited), int(positions))
-            cur.execute("COMMIT")
-        except BaseException:
-            if self.con.in_transaction:
-                cur.execute("ROLLBACK")
-            raise
+                cur.executemany(_INSERT_GAME, games)
+                self._credit_shard(cur, row)
 
     # ---- reading -----------------------------------------------------------------------------
     def known_ids(self, ids: Iterable[str]) -> set[str]:

@@ -430,19 +430,12 @@ class RecordStore:
             return self._journal
         name = shard_name(self.writer, self._next_index)
         path = journal_path_of(self.run.shards, name)
-        tmp = path.with_name(f".{path.name}{TEMP_SUFFIX}")
         header = codec.encode_header(self.flags)
         try:
-            with open(tmp, "wb") as f:
-                f.write(header)
-                f.flush()
-                os.fsync(f.fileno())
-            os.replace(tmp, path)
-            fsync_dir(path.parent)
+            atomic_write_bytes(path, header)  # a journal always has its whole header
             fd = os.open(path, os.O_WRONLY)
             os.lseek(fd, 0, os.SEEK_END)
         except OSError as exc:
-            tmp.unlink(missing_ok=True)
             self._failed = str(_write_error(f"cannot start journal {path.name}", exc))
             raise StoreWriteError(self._failed) from None
         self._journal = _Journal(name, path, fd, len(header), zlib.crc32(header))
