@@ -237,6 +237,9 @@ def test_a_lost_catalog_is_rebuilt_from_the_shards(tmp_path):
     with RecordStore(tmp_path) as store:
         assert len(store.recovery.shards_indexed) == 3
         assert store.totals().games == 10
+        # and it says so (issue 12: the rebuild happened silently)
+        assert store.recovery.catalog_rebuilt and store.recovery.games_found == 10
+        assert "rebuilt it from the shards, found 10 games" in store.recovery.lines()[0]
     assert ids_in_run(tmp_path) == [f"g{i}" for i in range(10)]
 
 

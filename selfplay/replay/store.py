@@ -34,6 +34,7 @@ import errno
 import fcntl
 import functools
 import json
+import logging
 import os
 import re
 import sqlite3
@@ -52,6 +53,8 @@ from selfplay.replay.catalog import Catalog, CatalogTotals, ShardRow, game_row
 from selfplay.replay.shards import (JOURNAL_SUFFIX, SHARD_SUFFIX, TEMP_SUFFIX, ShardScan, scan_shard,
                                     write_shard)
 from selfplay.rundir import RunDir, atomic_write_bytes, clean_stale_temp_files, fsync_dir
+
+log = logging.getLogger(__name__)
 
 _WRITER_RE = re.compile(r"^[A-Za-z0-9_.]{1,64}$")
 _SHARD_RE = re.compile(r"^([A-Za-z0-9_.]{1,64})-(\d{8})" + re.escape(SHARD_SUFFIX) + "$")
@@ -90,6 +93,9 @@ class RecoveryReport:
     games_lost: int = 0
     games_forgotten: int = 0
     reasons: dict[str, str] = field(default_factory=dict)
+    #: catalog.sqlite was missing and has been built from the shards and journals on disk
+    catalog_rebuilt: bool = False
+    games_found: int = 0
 
     @property
     def clean(self) -> bool:
@@ -99,6 +105,8 @@ class RecoveryReport:
     def lines(self) -> list[str]:
         """The report as short sentences for a person."""
         out = []
+        if self.catalog_rebuilt:
+            out.append(f"catalog.sqlite was missing: rebuilt it from the shards, found {self.games_found} games")
         if self.temp_files_removed:
             out.append(f"removed {len(self.temp_files_removed)} stale temporary file(s)")
         for name in self.journals_replayed:
@@ -222,11 +230,17 @@ class RecordStore:
         self._metrics: MetricsLog | None = None
         self._run_game = self._declared_game()
         self._game_ok: dict[tuple[str, str], bool] = {}
+        had_catalog = self.run.catalog.exists()
         try:
             self.catalog = Catalog(self.run.catalog)
             try:
                 self._next_index = self._first_free_index()
                 self.recovery = self._recover(verify)
+                if not had_catalog and (self.recovery.shards_indexed or self.recovery.journals_replayed):
+                    self.recovery.catalog_rebuilt = True
+                    self.recovery.games_found = self.catalog.totals().games
+                for line in self.recovery.lines():  # a person reading the run's log learns it
+                    log.warning("record store %s of %s: %s", writer, self.run.root, line)
             except BaseException:
                 self.catalog.close()
                 raise
