@@ -168,7 +168,7 @@ class Catalog:
                 self.con = sqlite3.connect(self.path, timeout=timeout, isolation_level=None,
                                            check_same_thread=False)
                 self.con.execute("PRAGMA journal_mode=WAL")
-                # shards are fsynced and re-indexed on recovery, so NORMAL is enough here
+                # journals and shards are fsynced and re-indexed on recovery, so NORMAL is enough here
                 self.con.execute("PRAGMA synchronous=NORMAL")
                 self.con.executescript(_SCHEMA)
                 self._check_version()

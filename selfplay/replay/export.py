@@ -34,7 +34,8 @@ from selfplay.errors import RunDirError, SelfplayError
 from selfplay.records import GameRecord
 from selfplay.replay import codec
 from selfplay.replay.batch import BatchBuilder
-from selfplay.replay.reader import ReadReport, game_key, make_record_game, newest_records, run_toml_game
+from selfplay.replay.reader import (ReadReport, declared_game_key, game_key, make_record_game, newest_records,
+                                    normalised_game_key)
 from selfplay.rundir import RunDir
 
 
@@ -92,12 +93,11 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
     report = ReadReport()
     records = newest_records(run, last, on_corrupt="skip", report=report)
     skipped, problems = report.games_skipped, report.problems
-    declared = _declared_game(run)
+    declared = declared_game_key(run)
     if declared is not None:  # records of another game (e.g. a copied shard) are left out
         kept = []
         for rec in records:
-            g_key = _record_key(rec)
-            if g_key == declared:
+            if normalised_game_key(rec.game, rec.game_options) == declared:
                 kept.append(rec)
             else:
                 skipped += 1
@@ -170,31 +170,3 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
         shutil.rmtree(tmpdir, ignore_errors=True)
     return ExportSummary(out, n, len(chosen), game.name, game.options(), out.stat().st_size,
                          skipped, problems)
-
-
-_KEYS: dict[tuple[str, str], tuple[str, str] | None] = {}
-
-
-def _record_key(rec: GameRecord) -> tuple[str, str] | None:
-    """The registry-normalised (game, options) of a record; None if it names no known game."""
-    raw = game_key(rec.game, rec.game_options)
-    if raw not in _KEYS:
-        try:
-            g = make_record_game(rec)
-            _KEYS[raw] = game_key(g.name, g.options())
-        except (SelfplayError, TypeError, ValueError):
-            _KEYS[raw] = None
-    return _KEYS[raw]
-
-
-def _declared_game(run: RunDir) -> tuple[str, str] | None:
-    """The registry-normalised game of run.toml; None without a readable [game] table."""
-    try:
-        declared = run_toml_game(run)
-        if declared is None:
-            return None
-        from selfplay.games.registry import make_game
-        dg = make_game(declared[0], **declared[1])
-    except (SelfplayError, TypeError, ValueError):
-        return None
-    return game_key(dg.name, dg.options())

@@ -21,7 +21,7 @@ from typing import Any, Iterator, Literal
 
 import numpy as np
 
-from selfplay.errors import FormatError, RunDirError
+from selfplay.errors import FormatError, RunDirError, SelfplayError
 from selfplay.games.base import Game
 from selfplay.records import GameRecord
 from selfplay.replay.batch import BatchBuilder, concat_batches
@@ -34,6 +34,32 @@ log = logging.getLogger(__name__)
 
 def game_key(name: str, options: dict[str, Any]) -> tuple[str, str]:
     return name, json.dumps(options, sort_keys=True)
+
+
+_NORMALISED: dict[tuple[str, str], tuple[str, str] | None] = {}
+
+
+def normalised_game_key(name: str, options: dict[str, Any]) -> tuple[str, str] | None:
+    """:func:`game_key` of the game the registry makes of ``name`` and ``options`` (so
+    ``tictactoe`` and ``mnk`` with m = n = k = 3 agree); None if it makes none. Cached."""
+    raw = game_key(name, options)
+    if raw not in _NORMALISED:
+        try:
+            from selfplay.games.registry import make_game
+            g = make_game(name, **options)
+            _NORMALISED[raw] = game_key(g.name, g.options())
+        except (SelfplayError, TypeError, ValueError):
+            _NORMALISED[raw] = None
+    return _NORMALISED[raw]
+
+
+def declared_game_key(run: RunDir) -> tuple[str, str] | None:
+    """:func:`normalised_game_key` of the game run.toml declares; None without a readable one."""
+    try:
+        declared = run_toml_game(run)
+    except SelfplayError:
+        return None
+    return None if declared is None else normalised_game_key(*declared)
 
 
 def make_record_game(rec: GameRecord) -> Game:

@@ -50,6 +50,7 @@ from selfplay.metrics import MetricsLog
 from selfplay.records import GameRecord
 from selfplay.replay import codec
 from selfplay.replay.catalog import Catalog, CatalogTotals, ShardRow, game_row
+from selfplay.replay.reader import declared_game_key, normalised_game_key
 from selfplay.replay.shards import (JOURNAL_SUFFIX, SHARD_SUFFIX, TEMP_SUFFIX, ShardScan, scan_shard,
                                     write_shard)
 from selfplay.rundir import RunDir, atomic_write_bytes, clean_stale_temp_files, fsync_dir
@@ -228,8 +229,7 @@ class RecordStore:
         #: catalog count older than a change of this number is stale
         self.commits = 0
         self._metrics: MetricsLog | None = None
-        self._run_game = self._declared_game()
-        self._game_ok: dict[tuple[str, str], bool] = {}
+        self._run_game = declared_game_key(self.run)
         had_catalog = self.run.catalog.exists()
         try:
             self.catalog = Catalog(self.run.catalog)
@@ -290,40 +290,10 @@ class RecordStore:
         self.close()
 
     # ---- the run's game ------------------------------------------------------------------------
-    def _declared_game(self) -> tuple[str, str] | None:
-        """(name, options JSON) of the game run.toml declares, normalised by the game registry;
-        None without a readable run.toml."""
-        from selfplay.replay.reader import game_key, run_toml_game
-        try:
-            declared = run_toml_game(self.run)
-        except SelfplayError:
-            return None
-        if declared is None:
-            return None
-        try:
-            from selfplay.games.registry import make_game
-            g = make_game(declared[0], **declared[1])
-        except (SelfplayError, TypeError, ValueError):
-            return None
-        return game_key(g.name, g.options())
-
     def foreign_game(self, rec: GameRecord) -> str | None:
-        """None if ``rec`` is of the run's game (or the run declares none); otherwise why not."""
-        if self._run_game is None:
-            return None
-        from selfplay.replay.reader import game_key
-        key = game_key(rec.game, rec.game_options)
-        if key not in self._game_ok:
-            same = key == self._run_game
-            if not same:
-                try:
-                    from selfplay.games.registry import make_game
-                    g = make_game(rec.game, **rec.game_options)
-                    same = game_key(g.name, g.options()) == self._run_game
-                except (SelfplayError, TypeError, ValueError):
-                    same = False
-            self._game_ok[key] = same
-        if self._game_ok[key]:
+        """None if ``rec`` is of the game run.toml declares (or the run declares none);
+        otherwise why not."""
+        if self._run_game is None or normalised_game_key(rec.game, rec.game_options) == self._run_game:
             return None
         return (f"game {rec.game} {json.dumps(rec.game_options, sort_keys=True)} differs from "
                 f"run.toml's {self._run_game[0]} {self._run_game[1]}")
