@@ -44,28 +44,13 @@ def catalog_problem(path: Path) -> str | None:
     return None
 
 
-def _live_writers(shards: Path) -> list[str]:
-    import fcntl
-    live = []
-    for lock in sorted(shards.glob(".lock-*")):
-        fd = os.open(lock, os.O_RDWR)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            fcntl.flock(fd, fcntl.LOCK_UN)
-        except OSError:
-            live.append(lock.name.removeprefix(".lock-"))
-        finally:
-            os.close(fd)
-    return live
-
-
 def repair_run(run_path: str) -> dict:
     """Rebuild the catalog of ``run_path`` if it is damaged or missing; returns what was done."""
-    from selfplay.replay.store import RecordStore
+    from selfplay.replay.store import RecordStore, running_writers
     from selfplay.rundir import RunDir, fsync_dir
 
     run = RunDir.open(run_path)
-    live = _live_writers(run.shards) if run.shards.exists() else []
+    live = running_writers(run)
     if live:
         raise RunDirError(f"run {str(run.root)!r} has running writer(s) {', '.join(live)}; stop the "
                           "run before repairing its catalog")

@@ -158,6 +158,30 @@ def journal_path_of(shards_dir: Path, name: str) -> Path:
     return shards_dir / (name.removesuffix(SHARD_SUFFIX) + JOURNAL_SUFFIX)
 
 
+def writer_running(run: RunDir, writer: str) -> bool:
+    """True if a process holds the lock of record store ``writer`` in ``run`` (it is open)."""
+    try:
+        fd = os.open(run.shards / f".lock-{writer}", os.O_RDWR)
+    except OSError:
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return False
+    except OSError:
+        return True
+    finally:
+        os.close(fd)
+
+
+def running_writers(run: RunDir) -> list[str]:
+    """Names of the record stores open on ``run`` right now."""
+    if not run.shards.exists():
+        return []
+    names = sorted(p.name.removeprefix(".lock-") for p in run.shards.glob(".lock-*"))
+    return [n for n in names if writer_running(run, n)]
+
+
 def _write_all(fd: int, data: bytes) -> None:
     view = memoryview(data)
     while view:
@@ -547,21 +571,7 @@ class RecordStore:
         return used + 1
 
     def _writer_is_dead(self, writer: str) -> bool:
-        if writer == self.writer:
-            return True
-        path = self.run.shards / f".lock-{writer}"
-        try:
-            fd = os.open(path, os.O_RDWR)
-        except OSError:
-            return True
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            fcntl.flock(fd, fcntl.LOCK_UN)
-            return True
-        except OSError:
-            return False
-        finally:
-            os.close(fd)
+        return writer == self.writer or not writer_running(self.run, writer)
 
     def _recover(self, verify: str) -> RecoveryReport:
         rep = RecoveryReport()
