@@ -304,3 +304,54 @@ def test_an_atomic_write_that_fails_leaves_no_temp_file(small_disk):
     with pytest.raises(OSError):
         atomic_write_bytes(target, os.urandom(3 * 1024 * 1024))
     assert list(small_disk.iterdir()) == []
+
+
+# ---- the whole run: the driver of `selfplay run` killed ---------------------------------------
+
+@pytest.mark.slow
+def test_kill_9_of_the_run_driver_loses_no_accepted_game(tmp_path):
+    """Issue 12 as reported: `selfplay run` killed with SIGKILL while no shard was due. Every game
+    the catalog counted before the kill is in a shard after the next open (here a plain store
+    opening the run, which replays the buffer's journal once its process is gone)."""
+    from cluster_support import catalog_ids, tiny_config
+
+    from selfplay.config import dump_config
+    from selfplay.replay.store import writer_running
+
+    cfg = tmp_path / "run.toml"
+    cfg.write_text(dump_config(tiny_config(replay__shard_max_age_seconds=600.0, run__learner=False)))
+    run = tmp_path / "run"
+    env = {**os.environ, "PYTHONPATH": REPO, "RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER": "0"}
+    log = open(tmp_path / "driver.log", "wb")
+    proc = subprocess.Popen([sys.executable, "-m", "selfplay.cli", "run", "--config", str(cfg), "--out",
+                             str(run), "--workers", "1"], stdout=log, stderr=subprocess.STDOUT, env=env,
+                            start_new_session=True)
+    seen: list[str] = []
+    try:
+        deadline = time.monotonic() + 240
+        while time.monotonic() < deadline and proc.poll() is None:
+            if (run / "catalog.sqlite").exists():
+                try:
+                    seen = catalog_ids(run)
+                except Exception:  # noqa: BLE001 - the catalog is being created
+                    seen = []
+                if len(seen) >= 40:
+                    break
+            time.sleep(0.5)
+        assert len(seen) >= 40, (tmp_path / "driver.log").read_text()[-2000:]
+        assert not list((run / "shards").glob("*.plyrec"))  # no shard was due yet
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=60)
+        deadline = time.monotonic() + 120  # the buffer actor dies with its driver
+        while time.monotonic() < deadline and writer_running(RunDir(run), "buffer0"):
+            time.sleep(0.5)
+    finally:
+        try:
+            os.killpg(proc.pid, signal.SIGKILL)  # whatever of this run's session is left
+        except ProcessLookupError:
+            pass
+        log.close()
+    with RecordStore(run, writer="check") as store:
+        assert "buffer0-00000000.journal" in store.recovery.journals_replayed
+    on_disk = [r.game_id for r in RunReader(run, on_corrupt="raise").records()]
+    assert set(seen) <= set(on_disk) and len(on_disk) == len(set(on_disk))
