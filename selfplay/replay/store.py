@@ -182,6 +182,12 @@ def running_writers(run: RunDir) -> list[str]:
     return [n for n in names if writer_running(run, n)]
 
 
+def _sync_data(fd: int) -> None:
+    """Make appended bytes durable: fdatasync (the data and the file size it needs) where the
+    system has it, else fsync."""
+    (getattr(os, "fdatasync", None) or os.fsync)(fd)
+
+
 def _write_all(fd: int, data: bytes) -> None:
     view = memoryview(data)
     while view:
@@ -390,7 +396,7 @@ class RecordStore:
         blob = b"".join(frame for _, frame in fresh)
         try:
             _write_all(j.fd, blob)
-            os.fsync(j.fd)
+            _sync_data(j.fd)
         except OSError as exc:
             self._cut_back(j, start)
             self._failed = str(_write_error(f"cannot append to journal {j.path.name}", exc))
