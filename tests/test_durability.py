@@ -258,6 +258,20 @@ def test_a_full_disk_stops_the_store_with_one_line_and_keeps_every_accepted_game
     assert sorted(ids) == sorted(accepted)
 
 
+def test_a_read_only_run_is_refused_in_one_line_and_its_games_stay(small_disk):
+    run = small_disk / "run"
+    with RecordStore(run) as store:
+        store.ingest(records(3))
+    subprocess.run(["mount", "-o", "remount,ro", str(small_disk)], check=True)
+    try:
+        with pytest.raises(StoreWriteError, match="read-only") as info:
+            RecordStore(run, writer="other")
+        assert "\n" not in str(info.value)
+        assert sorted(r.game_id for r in RunReader(run, on_corrupt="raise").records()) == ["g0", "g1", "g2"]
+    finally:
+        subprocess.run(["mount", "-o", "remount,rw", str(small_disk)], check=True)
+
+
 def test_metrics_write_survives_an_unwritable_file(tmp_path, capsys):
     log = MetricsLog(tmp_path / "missing-folder" / "metrics.jsonl", "worker", "w0")
     for _ in range(3):

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import os
 import sqlite3
 import time
 from dataclasses import dataclass
@@ -161,9 +162,7 @@ class Catalog:
             if readonly:
                 if not self.path.exists():
                     raise FormatError(f"catalog {str(self.path)!r} does not exist")
-                self.con = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=timeout,
-                                           isolation_level=None, check_same_thread=False)
-                self.con.execute("SELECT count(*) FROM sqlite_master").fetchone()  # reads the header
+                self.con = self._open_readonly(timeout)
             else:
                 self.con = sqlite3.connect(self.path, timeout=timeout, isolation_level=None,
                                            check_same_thread=False)
@@ -176,6 +175,22 @@ class Catalog:
             raise FormatError(f"catalog {str(self.path)!r} cannot be opened: {exc}") from exc
         except sqlite3.DatabaseError as exc:
             raise CatalogDamagedError(damaged_message(self.path, exc)) from None
+
+    def _open_readonly(self, timeout: float) -> sqlite3.Connection:
+        """A read-only connection. On a read-only file system SQLite cannot make the WAL's shared
+        memory file, so the database is opened as immutable there (nobody can write it)."""
+        uri = f"file:{self.path}?mode=ro"
+        try:
+            con = sqlite3.connect(uri, uri=True, timeout=timeout, isolation_level=None, check_same_thread=False)
+            con.execute("SELECT count(*) FROM sqlite_master").fetchone()  # reads the header
+            return con
+        except sqlite3.OperationalError:
+            if os.access(self.path.parent, os.W_OK):
+                raise
+        con = sqlite3.connect(uri + "&immutable=1", uri=True, timeout=timeout, isolation_level=None,
+                              check_same_thread=False)
+        con.execute("SELECT count(*) FROM sqlite_master").fetchone()
+        return con
 
     def _check_version(self) -> None:
         row = self.con.execute("SELECT value FROM meta WHERE key='catalog_version'").fetchone()

@@ -195,17 +195,20 @@ def _write_all(fd: int, data: bytes) -> None:
         view = view[n:]
 
 
-def _write_error(what: str, exc: OSError) -> StoreWriteError:
+def _write_error(what: str, exc: OSError, kept: bool = True) -> StoreWriteError:
+    """One line for a failed write: what failed, why, and what became of the games."""
     if exc.errno == errno.ENOSPC:
-        why = "the disk is full"
+        why, fix = "the disk is full", "free space"
     elif exc.errno == errno.EROFS:
-        why = "the file system is read-only"
+        why, fix = "the file system is read-only", "make it writable"
     elif exc.errno == errno.EDQUOT:
-        why = "the disk quota is used up"
+        why, fix = "the disk quota is used up", "free space"
     else:
-        why = exc.strerror or str(exc)
-    return StoreWriteError(f"{what}: {why}; games accepted before are kept in the journal — free "
-                           "space and start again (they are sealed when the store next opens)")
+        why, fix = exc.strerror or str(exc), "fix it"
+    if not kept:
+        return StoreWriteError(f"{what}: {why}")
+    return StoreWriteError(f"{what}: {why}; games accepted before are kept in the journal — {fix} and "
+                           "start again (they are sealed when the store next opens)")
 
 
 class RecordStore:
@@ -243,13 +246,15 @@ class RecordStore:
             raise RunDirError("store limits max_games, max_bytes must be >= 1 and max_age_seconds >= 0")
         if verify not in ("size", "crc", "full"):
             raise RunDirError(f"verify={verify!r} must be 'size', 'crc' or 'full'")
-        self.run = run_dir if isinstance(run_dir, RunDir) else RunDir.create(run_dir)
-        if isinstance(run_dir, RunDir):
-            RunDir.create(self.run.root)
-        self.writer = writer
+        root = run_dir.root if isinstance(run_dir, RunDir) else run_dir
+        try:
+            self.run = RunDir.create(root)
+            self.writer = writer
+            self._lock_fd = self._take_lock(writer)
+        except OSError as exc:  # e.g. a read-only or full file system
+            raise _write_error(f"cannot open a record store in {str(root)!r}", exc, kept=False) from None
         self.max_games, self.max_bytes, self.max_age_seconds = max_games, max_bytes, max_age_seconds
         self.flags = codec.FLAG_DEFLATE if compress else 0
-        self._lock_fd = self._take_lock(writer)
         self._mutex = threading.RLock()  # callers on several threads (e.g. a threaded actor)
         self._journal: _Journal | None = None
         self._failed: str | None = None
