@@ -355,8 +355,10 @@ class RecordStore:
         """Store finished games; returns the accepted records (new game ids) and the number of
         duplicates. Every record is validated and encoded before any is written: a bad record
         (or one of another game than run.toml's) raises FormatError and the call adds nothing.
-        The accepted games are appended to the journal, fsynced and committed to the catalog
-        before this returns; a write failure raises :class:`StoreWriteError` and adds nothing."""
+        The accepted games are appended to the journal, synced and committed to the catalog
+        before this returns. A write failure raises :class:`StoreWriteError`: the games of the
+        failing append are not stored (when one call fills several shards, those of the shards
+        before it are, and a retry of the call counts them as duplicates)."""
         self._check_open()
         recs = list(records)
         committed = self.catalog.known_ids({r.game_id for r in recs})
@@ -416,7 +418,7 @@ class RecordStore:
         except sqlite3.OperationalError as exc:
             self._cut_back(j, start)
             self._failed = (f"cannot commit games to the catalog ({exc}); games accepted before are "
-                            "kept in the journal — free space and start again")
+                            "kept in the journal — fix the cause and start again")
             raise StoreWriteError(self._failed) from None
         self.commits += 1
         j.size = offset
