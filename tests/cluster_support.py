@@ -74,7 +74,10 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
         assert len(reported) == len(set(reported)), "a game was reported finished twice"
         missing = set(reported) - set(ids)
         assert not missing, f"{len(missing)} reported games are not in the catalog, e.g. {sorted(missing)[:3]}"
-    on_disk = [rec.game_id for shard in sorted((run / "shards").glob("*.plyrec")) for _, rec in read_shard(shard)]
+    # shards and unsealed journals (a killed buffer's games are durable in its journal until the
+    # next open seals it; a torn last append is skipped)
+    files = sorted((run / "shards").glob("*.plyrec")) + sorted((run / "shards").glob("*.journal"))
+    on_disk = [rec.game_id for shard in files for _, rec in read_shard(shard, damaged=[])]
     assert sorted(on_disk) == sorted(ids), "shard files and catalog disagree"
     if buffer_stats is not None:
         assert buffer_stats["pending_games"] == 0
