@@ -62,9 +62,9 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
                          buffer_restarted: bool = False) -> dict[str, Any]:
     """The checks after every fault: each game reported finished is in the catalog exactly once;
     the shard files and unsealed journals hold exactly the catalog's games; the buffer's counts
-    agree with the catalog; the buffer's logged totals never go down while one buffer lives (a fall would read
-    as a restart to the monitor); snapshot versions only increase (on disk, in the metrics, and
-    per worker)."""
+    agree with the catalog; the buffer's logged totals never go down while one buffer lives (a
+    fall would read as a restart to the monitor); snapshot versions only increase (on disk, in
+    the metrics, and per worker)."""
     from selfplay.replay.shards import read_shard
     from selfplay.snapshots import SnapshotStore
 
