@@ -119,9 +119,10 @@ def _pid_running(pid: int) -> bool:
 
 def clean_stale_temp_files(run: "RunDir", min_age_seconds: float = STALE_TEMP_AGE_SECONDS) -> list[str]:
     """Remove the ``.NAME.tmp-PID`` files a dead process left in the run directory (its root
-    and its direct sub-folders: ``snapshots/``, ``shards/``, ``learner/``, ...): those whose process is not running on this
-    machine and that are older than ``min_age_seconds``. Returns the paths removed (relative to
-    the run directory). Files of a running process, and finished files, are never touched."""
+    and its direct sub-folders: ``snapshots/``, ``shards/``, ``learner/``, ...): those whose
+    process is not running on this machine and that are older than ``min_age_seconds``.
+    Returns the paths removed (relative to the run directory). Files of a running process, and
+    finished files, are never touched."""
     removed: list[str] = []
     now = time.time()
     try:

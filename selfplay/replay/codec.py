@@ -464,7 +464,8 @@ def scan_frames(buf: Any, size: int, flags: int, where: str,
         if claimed > MAX_FRAME_BYTES:
             reason = f"{loc}: claims {claimed} bytes, over the frame limit of {MAX_FRAME_BYTES}"
         elif nxt > size:
-            reason = f"{loc}: claims {claimed} bytes but only {size - offset - FRAME_HEADER.size} remain (truncated)"
+            left = size - offset - FRAME_HEADER.size
+            reason = f"{loc}: claims {claimed} bytes but only {left} remain (truncated)"
         else:
             reason = f"{loc}: CRC32 mismatch (damaged payload)"
         if nxt < size and claimed <= MAX_FRAME_BYTES and sound_frame_length(buf, nxt, size) is not None:
