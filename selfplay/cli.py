@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import sqlite3
 import sys
 from importlib.metadata import entry_points
 from typing import Sequence
@@ -69,6 +70,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args.func(args) or 0)
     except SelfplayError as exc:
         print(f"selfplay {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except sqlite3.DatabaseError as exc:  # a damaged catalog read by code that did not wrap it
+        if isinstance(exc, sqlite3.OperationalError):  # locked or full: not damage
+            raise
+        print(f"selfplay {args.command}: error: a run's catalog.sqlite cannot be read ({exc}); "
+              "rebuild it from the shards with `selfplay repair RUN`", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"selfplay {args.command}: interrupted", file=sys.stderr)

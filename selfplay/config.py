@@ -31,6 +31,7 @@ from typing import Any, Literal, Mapping
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from selfplay.config_model import ConfigModel
 from selfplay.errors import ConfigError, SelfplayError
 from selfplay.learner_config import LearnerConfig
 from selfplay.network_config import NetworkConfig
@@ -40,7 +41,7 @@ from selfplay.search.config import SearchConfig
 # ---- sections owned by this module --------------------------------------------------------------
 
 
-class GameConfig(BaseModel):
+class GameConfig(ConfigModel):
     """Which game is played, and its options."""
 
     model_config = ConfigDict(extra="forbid")
@@ -65,7 +66,7 @@ class GameConfig(BaseModel):
         return self
 
 
-class WorkerConfig(BaseModel):
+class WorkerConfig(ConfigModel):
     """How one self-play worker plays."""
 
     model_config = ConfigDict(extra="forbid")
@@ -97,7 +98,7 @@ class WorkerConfig(BaseModel):
     )
 
 
-class EvaluationConfig(BaseModel):
+class EvaluationConfig(ConfigModel):
     """Rated evaluation games during the run, feeding the Elo ladder (`selfplay ladder`).
 
     Every few snapshots, a bounded match of the newest one against earlier rated snapshots (and
@@ -150,7 +151,7 @@ class EvaluationConfig(BaseModel):
         return v
 
 
-class RunSection(BaseModel):
+class RunSection(ConfigModel):
     """Workers, seed and stop conditions of one run (a resumed run may change it, as it may [evaluation])."""
 
     model_config = ConfigDict(extra="forbid")
@@ -187,7 +188,7 @@ class RunSection(BaseModel):
         return v
 
 
-class RunConfig(BaseModel):
+class RunConfig(ConfigModel):
     """A whole run: every section of the configuration."""
 
     model_config = ConfigDict(extra="forbid")
@@ -211,6 +212,7 @@ class RunConfig(BaseModel):
         data = self.model_dump(mode="json")
         for section in RESUMABLE_SECTIONS:
             data.pop(section)
+        data["replay"].pop("verify_on_open", None)  # how a resume checks its shards, not what they hold
         return data
 
 
@@ -299,11 +301,63 @@ def load_config(path: str | os.PathLike[str]) -> RunConfig:
     return config_from_toml(text, origin=str(p))
 
 
+#: largest config text read (characters): a run config is a few kilobytes
+MAX_CONFIG_CHARS = 1024 * 1024
+#: deepest nesting of tables and arrays accepted (a run config needs 3: section, table, array)
+MAX_CONFIG_DEPTH = 16
+
+
+def _nesting_depth_over(text: str, limit: int) -> bool:
+    """True if brackets or braces outside strings and comments nest deeper than ``limit``
+    (checked before parsing: tomllib recurses once per level)."""
+    depth, i, n = 0, 0, len(text)
+    quote = ""
+    while i < n:
+        c = text[i]
+        if quote:
+            if c == "\\" and quote in ('"', '"""'):
+                i += 2
+                continue
+            if text.startswith(quote, i):
+                i += len(quote)
+                quote = ""
+                continue
+        elif c == "#":
+            j = text.find("\n", i)
+            i = n if j < 0 else j
+            continue
+        elif c in "\"'":
+            quote = c * 3 if text.startswith(c * 3, i) else c
+            i += len(quote)
+            continue
+        elif c in "[{":
+            depth += 1
+            if depth > limit:
+                return True
+        elif c in "]}":
+            depth = max(0, depth - 1)
+        i += 1
+    return False
+
+
 def config_from_toml(text: str, origin: str = "config") -> RunConfig:
+    """Validate TOML text. An empty text, more than :data:`MAX_CONFIG_CHARS` characters or
+    nesting deeper than :data:`MAX_CONFIG_DEPTH` is refused with one line."""
+    if len(text) > MAX_CONFIG_CHARS:
+        raise ConfigError(f"{origin}: {len(text)} characters is more than a run config can be "
+                          f"({MAX_CONFIG_CHARS}); not a config file?")
+    if _nesting_depth_over(text, MAX_CONFIG_DEPTH):
+        raise ConfigError(f"{origin}: tables or arrays nested more than {MAX_CONFIG_DEPTH} deep; "
+                          "a run config nests at most 3")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{origin}: not valid TOML: {exc}") from None
+    except RecursionError:
+        raise ConfigError(f"{origin}: nested too deeply to read") from None
+    if not data:
+        raise ConfigError(f"{origin}: the config is empty; it must name at least its game, e.g. "
+                          "[game] name = \"mnk\" (`selfplay config show tictactoe` prints a full one)")
     return config_from_dict(data, origin)
 
 

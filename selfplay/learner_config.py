@@ -10,8 +10,9 @@ from __future__ import annotations
 
 from typing import Any, ClassVar, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import ConfigDict, Field, ValidationError, model_validator
 
+from selfplay.config_model import ConfigModel
 from selfplay.errors import ConfigError
 
 
@@ -26,7 +27,7 @@ def config_error_from(exc: ValidationError, section: str) -> ConfigError:
     return ConfigError("; ".join(parts))
 
 
-class _Section(BaseModel):
+class _Section(ConfigModel):
     """A config section that refuses unknown fields and reports errors as ConfigError."""
 
     model_config = ConfigDict(extra="forbid", validate_assignment=True, use_attribute_docstrings=True)

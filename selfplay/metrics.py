@@ -9,7 +9,9 @@ the file without interleaving lines.
 from __future__ import annotations
 
 import json
+import logging
 import os
+import sys
 import time
 from pathlib import Path
 from typing import Any, Callable, Iterator
@@ -28,14 +30,24 @@ class MetricsLog:
         self.path = None if callable(target) else Path(target)
         self.component = component
         self.source = source or component
+        #: lines that could not be written (disk full, read-only, ...): a run goes on without them
+        self.dropped = 0
 
     def write(self, **fields: Any) -> dict[str, Any]:
         """Append one line with the current time and ``fields``; returns the line as a dict."""
         row = {"t": time.time(), "component": self.component, "source": self.source, **fields}
         if self.sink is not None:
             self.sink(row)
-        else:
+            return row
+        try:
             append_rows(self.path, [row])
+        except OSError as exc:
+            self.dropped += 1
+            if self.dropped == 1:  # said once; the count goes on in ``dropped``
+                msg = (f"metrics: cannot append to {self.path} ({exc.strerror or exc}); "
+                       f"{self.component} lines are dropped until it can")
+                logging.getLogger(__name__).warning(msg)
+                print(msg, file=sys.stderr)
         return row
 
 
@@ -45,7 +57,9 @@ def append_rows(path: str | os.PathLike[str], rows: list[dict[str, Any]]) -> Non
     fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
     try:
         for row in rows:
-            os.write(fd, (json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n").encode())
+            data = (json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n").encode()
+            if os.write(fd, data) != len(data):  # a short append: the disk filled mid-line
+                raise OSError(28, "short write")
     finally:
         os.close(fd)
 
@@ -69,7 +83,7 @@ def read_metrics(path: str | os.PathLike[str]) -> Iterator[dict[str, Any]]:
                 break
             try:
                 row = json.loads(raw)
-            except json.JSONDecodeError:
+            except ValueError:  # not JSON, or not UTF-8 text (a damaged line is skipped)
                 continue
             if isinstance(row, dict):
                 yield row

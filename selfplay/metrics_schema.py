@@ -96,10 +96,11 @@ WORKER = Component("worker", "the worker id, e.g. `w0000`", "one self-play worke
 
 BUFFER = Component("buffer", "the buffer shard, e.g. `buffer0`", "one replay buffer shard (the buffer role)", (
     _f("games_total", "int", "games",
-       "games the run has stored: committed to the catalog (all shards) plus this shard's accepted games "
-       "waiting for their shard file", True),
+       "games the run has stored: committed to the catalog (all shards; a game is journalled and "
+       "catalogued before the buffer accepts it)", True),
     _f("positions_total", "int", "positions", "positions in those games", True),
-    _f("pending_games", "int", "games", "of those, games waiting for this shard's next shard file", True),
+    _f("pending_games", "int", "games", "games accepted but not yet on disk: always 0 since games are "
+       "journalled before they are accepted (kept for readers of older runs)", True),
     _f("duplicates_total", "int", "games", "retried writes of an already stored game, ignored", True),
     _f("window_positions", "int", "positions", "positions held in this shard's replay window now", True),
     _f("window_capacity", "int", "positions", "size of this shard's replay window", True),

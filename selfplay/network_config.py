@@ -6,10 +6,12 @@ import torch; ``selfplay.network`` re-exports it.
 
 from __future__ import annotations
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import ConfigDict, Field
+
+from selfplay.config_model import ConfigModel
 
 
-class NetworkConfig(BaseModel):
+class NetworkConfig(ConfigModel):
     """Size of the residual tower and its heads."""
 
     model_config = ConfigDict(extra="forbid", frozen=True)

@@ -22,6 +22,7 @@ every check has passed, so a caller that catches the error keeps its previous we
 from __future__ import annotations
 
 import contextlib
+import copy
 import hashlib
 import json
 import os
@@ -36,7 +37,7 @@ import torch
 from safetensors.torch import load as safetensors_load
 from safetensors.torch import save as safetensors_save
 
-from selfplay.errors import SnapshotError
+from selfplay.errors import SelfplayError, SnapshotError
 from selfplay.metrics import MetricsLog
 from selfplay.rundir import RunDir, atomic_write_bytes
 
@@ -208,6 +209,115 @@ def shape_mismatches(tensors: Mapping[str, torch.Tensor], expected: Mapping[str,
     return problems
 
 
+def dtype_mismatches(tensors: Mapping[str, torch.Tensor], expected: Mapping[str, torch.dtype]) -> list[str]:
+    """Tensors whose dtype is not the network's (e.g. int8 or float64 weights for a float32 net)."""
+    return [f"tensor {name} has dtype {str(tensors[name].dtype).removeprefix('torch.')}, the network's is "
+            f"{str(want).removeprefix('torch.')}"
+            for name, want in sorted(expected.items()) if name in tensors and tensors[name].dtype != want]
+
+
+#: positions the output probe runs the network on: the initial position and positions after
+#: 1, 2, ... random legal moves (fixed seed)
+PROBE_POSITIONS = 8
+#: largest policy logit magnitude accepted: softmax stays exact in float32 well past this, and a
+#: trained network is orders of magnitude below it
+MAX_PROBE_LOGIT = 1e6
+
+
+def probe_inputs(game: Any, count: int = PROBE_POSITIONS, seed: int = 0) -> torch.Tensor:
+    """Network inputs float32 (count, C, H, W) of ``count`` positions of ``game``: the initial
+    one and positions reached by random legal moves from it (deterministic for ``seed``)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    state = game.initial_state()
+    planes = []
+    while len(planes) < count:
+        planes.append(game.encode(state))
+        if game.is_terminal(state):
+            state = game.initial_state()
+            continue
+        legal = np.flatnonzero(game.legal_mask(state))
+        state = game.play(state, int(rng.choice(legal)))
+    return torch.from_numpy(np.stack(planes).astype(np.float32))
+
+
+def output_problems(net: torch.nn.Module, game: Any = None) -> str | None:
+    """Run ``net`` on :data:`PROBE_POSITIONS` positions of its game; None if it gives finite
+    policy logits (|logit| <= MAX_PROBE_LOGIT) and finite values in [-1, 1] with no layer
+    overflowing on the way, else a sentence saying what went wrong (the first layer whose
+    output is not finite, e.g. weights of 3e38 that overflow float32). The network's training
+    mode is restored afterwards."""
+    if game is None:
+        from selfplay.games.registry import make_game
+        game = make_game(net.game_name, **dict(getattr(net, "game_options", {})))
+    x = probe_inputs(game)
+    first_bad: list[str] = []
+    hooks = []
+
+    def watch(name: str):  # type: ignore[no-untyped-def]
+        def hook(_module, _inputs, output):  # type: ignore[no-untyped-def]
+            outs = output if isinstance(output, (tuple, list)) else (output,)
+            if not first_bad and any(isinstance(o, torch.Tensor) and o.is_floating_point()
+                                     and not bool(torch.isfinite(o).all()) for o in outs):
+                first_bad.append(name)
+        return hook
+
+    for name, module in net.named_modules():
+        if name:
+            hooks.append(module.register_forward_hook(watch(name)))
+    was_training = net.training
+    try:
+        net.eval()
+        with torch.no_grad():
+            logits, value = net(x)
+    except (RuntimeError, ValueError) as exc:
+        return f"the network fails on the probe positions: {str(exc).splitlines()[0]}"
+    finally:
+        for h in hooks:
+            h.remove()
+        net.train(was_training)
+    if first_bad:
+        return f"layer {first_bad[0]} gives non-finite outputs on the probe positions (overflow)"
+    if not bool(torch.isfinite(logits).all()):
+        return "the policy logits are not finite on the probe positions"
+    top = float(logits.abs().max())
+    if top > MAX_PROBE_LOGIT:
+        return f"a policy logit reaches {top:.3g} on the probe positions (limit {MAX_PROBE_LOGIT:g})"
+    if not bool(torch.isfinite(value).all()) or float(value.abs().max()) > 1.0:
+        return "the value is not a finite number in [-1, 1] on the probe positions"
+    return None
+
+
+def network_for(tensors: Mapping[str, torch.Tensor], game: str, game_options: Mapping[str, Any],
+                run: RunDir | None) -> torch.nn.Module | None:
+    """A network of ``game`` holding ``tensors``, built from the run's run.toml when its
+    network has these tensor names and shapes; None when none can be built. Tensors of another
+    dtype than the network's are refused (SnapshotError naming the tensor)."""
+    if run is None or not run.config.exists():
+        return None
+    try:
+        from selfplay.config import load_config
+        from selfplay.games.registry import make_game
+        from selfplay.network import build_network
+
+        cfg = load_config(run.config)
+        if cfg.game.name != game and make_game(game, **dict(game_options)).name != cfg.game.name:
+            return None
+        net = build_network(make_game(game, **dict(game_options)), cfg.network)
+    except (SelfplayError, TypeError, ValueError):  # no template: the caller decides
+        return None
+    sd = net.state_dict()
+    if shape_mismatches(tensors, {k: tuple(v.shape) for k, v in sd.items()}):
+        return None
+    bad = dtype_mismatches(tensors, {k: v.dtype for k, v in sd.items()})
+    if bad:
+        raise SnapshotError(f"refusing to publish: {'; '.join(bad[:4])}")
+    with torch.no_grad():
+        net.load_state_dict(dict(tensors), strict=True)
+    return net
+
+
 def net_architecture(net: torch.nn.Module) -> dict[str, Any]:
     """Architecture facts of a policy-value network (see :mod:`selfplay.network`)."""
     cfg = getattr(net, "config", None)
@@ -233,8 +343,15 @@ def _same_options(a: Mapping[str, Any], b: Mapping[str, Any]) -> bool:
 class SnapshotStore:
     """Numbered snapshots in ``RUN/snapshots``; see the module docstring for the guarantees."""
 
-    def __init__(self, run_dir: RunDir | str | os.PathLike[str], *, source: str = "store") -> None:
-        self.run = run_dir if isinstance(run_dir, RunDir) else RunDir.create(run_dir)
+    def __init__(self, run_dir: RunDir | str | os.PathLike[str], *, source: str = "store",
+                 create: bool = False) -> None:
+        """``run_dir``: a :class:`RunDir`, or a path that must be a run directory or an empty
+        folder (a mistyped path raises RunDirError instead of growing a run's folders);
+        ``create=True`` makes a new run directory at a path that does not exist yet."""
+        if isinstance(run_dir, RunDir):
+            self.run = run_dir
+        else:
+            self.run = RunDir.create(run_dir) if create else RunDir.open_or_start(run_dir)
         self.dir = self.run.snapshots
         self.dir.mkdir(parents=True, exist_ok=True)
         self._metrics = MetricsLog(self.run.metrics, "snapshots", source)
@@ -306,8 +423,14 @@ class SnapshotStore:
     def publish(self, weights: torch.nn.Module | Mapping[str, torch.Tensor], *, game: str | None = None,
                 game_options: Mapping[str, Any] | None = None, architecture: Mapping[str, Any] | None = None,
                 parent_version: int | None = None, training_steps: int = 0, samples_seen: int = 0,
-                extra: Mapping[str, Any] | None = None) -> int:
+                extra: Mapping[str, Any] | None = None, template: torch.nn.Module | None = None) -> int:
         """Publish ``weights`` (a network, or a name -> tensor dict) as the next version; return it.
+
+        Before anything is written the network is run on a few probe positions
+        (:func:`output_problems`): non-finite or out-of-range outputs are refused. With a dict,
+        the network is ``template`` (whose tensor dtypes the dict must have), else the one
+        run.toml describes when the tensors fit it; with neither, only finiteness is checked
+        here and the workers' load (:meth:`load_into`) probes the outputs.
 
         With a network, ``game``, ``game_options`` and ``architecture`` default to the network's
         own (``net.game_name``, ``net.game_options``, ``net.config``). Tensors that are not finite
@@ -326,6 +449,21 @@ class SnapshotStore:
         for name, t in tensors.items():
             if t.is_floating_point() and not bool(torch.isfinite(t).all()):
                 raise SnapshotError(f"refusing to publish: tensor {name} holds NaN or infinite values")
+        probe = weights if isinstance(weights, torch.nn.Module) else template
+        if probe is not None and probe is not weights:
+            want = {k: v.dtype for k, v in probe.state_dict().items()}
+            bad = dtype_mismatches(tensors, want)
+            if bad:
+                raise SnapshotError(f"refusing to publish: {'; '.join(bad[:4])}")
+            probe = copy.deepcopy(probe)
+            with torch.no_grad():
+                probe.load_state_dict(tensors, strict=True)
+        elif probe is None:
+            probe = network_for(tensors, str(game), dict(game_options or {}), self.run)
+        if probe is not None and getattr(probe, "game_name", None):  # a network of a known game
+            problem = output_problems(probe)
+            if problem:
+                raise SnapshotError(f"refusing to publish: {problem}")
         meta_header = {"game": str(game), "game_options": json.dumps(dict(game_options or {}), sort_keys=True)}
         blob = safetensors_save(tensors, metadata=meta_header)
         digest = hashlib.sha256(blob).hexdigest()
@@ -350,10 +488,16 @@ class SnapshotStore:
     # -- loading --
     def load(self, version: int | None = None, *, game: str | None = None,
              game_options: Mapping[str, Any] | None = None,
-             expected_shapes: Mapping[str, tuple[int, ...]] | None = None) -> tuple[dict[str, torch.Tensor], SnapshotInfo]:
+             expected_shapes: Mapping[str, tuple[int, ...]] | None = None,
+             expected_dtypes: Mapping[str, torch.dtype] | None = None,
+             probe_net: torch.nn.Module | None = None) -> tuple[dict[str, torch.Tensor], SnapshotInfo]:
         """Read and check snapshot ``version`` (default: the newest). Returns (state_dict, info).
 
-        ``game``/``game_options`` and ``expected_shapes`` are checked when given."""
+        ``game``/``game_options``, ``expected_shapes`` and ``expected_dtypes`` are checked when
+        given. With ``probe_net`` (a network of the right architecture; it is not changed) the
+        weights are also loaded into a copy of it and run on probe positions
+        (:func:`output_problems`): a snapshot whose outputs are not finite or out of range is
+        refused with a SnapshotError naming the version."""
         if version is None:
             latest = self.latest()
             if latest is None:
@@ -381,15 +525,44 @@ class SnapshotStore:
             problems = shape_mismatches(tensors, expected_shapes)
             if problems:
                 raise SnapshotError(f"snapshot {version} does not fit this network: {'; '.join(problems[:6])}")
+        if probe_net is not None and expected_dtypes is None:
+            expected_dtypes = {k: v.dtype for k, v in probe_net.state_dict().items()}
+        if expected_dtypes is not None:
+            bad = dtype_mismatches(tensors, expected_dtypes)
+            if bad:
+                raise SnapshotError(f"snapshot {version} ({path.name}) does not fit this network: {'; '.join(bad[:4])}")
+        if probe_net is not None:
+            if probe_net is not None and expected_shapes is None:
+                problems = shape_mismatches(tensors, {k: tuple(v.shape) for k, v in probe_net.state_dict().items()})
+                if problems:
+                    raise SnapshotError(f"snapshot {version} does not fit this network: {'; '.join(problems[:6])}")
+            trial = copy.deepcopy(probe_net)
+            with torch.no_grad():
+                trial.load_state_dict(tensors, strict=True)
+            problem = output_problems(trial)
+            if problem:
+                raise SnapshotError(f"snapshot {version} ({path.name}) is refused: {problem}")
         return tensors, info
 
-    def load_into(self, net: torch.nn.Module, version: int | None = None) -> SnapshotInfo:
-        """Check snapshot ``version`` (default newest) against ``net`` and copy its weights in.
+    def check_version(self, net: torch.nn.Module, version: int | None = None) -> SnapshotInfo:
+        """Every check :meth:`load_into` makes — game, checksum, names, shapes, dtypes and the
+        outputs on probe positions — without changing ``net``. For a worker (whatever its
+        inference backend) to keep a bad version out: SnapshotError names the version."""
+        expected = {k: tuple(v.shape) for k, v in net.state_dict().items()}
+        _, info = self.load(version, game=getattr(net, "game_name", None),
+                            game_options=getattr(net, "game_options", None), expected_shapes=expected,
+                            probe_net=net)
+        return info
+
+    def load_into(self, net: torch.nn.Module, version: int | None = None, *, probe: bool = True) -> SnapshotInfo:
+        """Check snapshot ``version`` (default newest) against ``net`` — names, shapes, dtypes and,
+        with ``probe``, its outputs on probe positions — and copy its weights in.
 
         ``net`` is changed only after every check passed; on SnapshotError it keeps its weights."""
         expected = {k: tuple(v.shape) for k, v in net.state_dict().items()}
         tensors, info = self.load(version, game=getattr(net, "game_name", None),
-                                  game_options=getattr(net, "game_options", None), expected_shapes=expected)
+                                  game_options=getattr(net, "game_options", None), expected_shapes=expected,
+                                  probe_net=net if probe else None)
         with torch.no_grad():
             net.load_state_dict(tensors, strict=True)
         return info

@@ -61,10 +61,10 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
                          buffer_stats: dict[str, Any] | None = None,
                          buffer_restarted: bool = False) -> dict[str, Any]:
     """The checks after every fault: each game reported finished is in the catalog exactly once;
-    the shard files hold exactly the catalog's games; the buffer's counts agree with the
-    catalog; the buffer's logged totals never go down while one buffer lives (a fall would read
-    as a restart to the monitor); snapshot versions only increase (on disk, in the metrics, and
-    per worker)."""
+    the shard files and unsealed journals hold exactly the catalog's games; the buffer's counts
+    agree with the catalog; the buffer's logged totals never go down while one buffer lives (a
+    fall would read as a restart to the monitor); snapshot versions only increase (on disk, in
+    the metrics, and per worker)."""
     from selfplay.replay.shards import read_shard
     from selfplay.snapshots import SnapshotStore
 
@@ -74,7 +74,10 @@ def check_run_consistent(run: Path, reported: list[str] | None = None,
         assert len(reported) == len(set(reported)), "a game was reported finished twice"
         missing = set(reported) - set(ids)
         assert not missing, f"{len(missing)} reported games are not in the catalog, e.g. {sorted(missing)[:3]}"
-    on_disk = [rec.game_id for shard in sorted((run / "shards").glob("*.plyrec")) for _, rec in read_shard(shard)]
+    # shards and unsealed journals (a killed buffer's games are durable in its journal until the
+    # next open seals it; a torn last append is skipped)
+    files = sorted((run / "shards").glob("*.plyrec")) + sorted((run / "shards").glob("*.journal"))
+    on_disk = [rec.game_id for shard in files for _, rec in read_shard(shard, damaged=[])]
     assert sorted(on_disk) == sorted(ids), "shard files and catalog disagree"
     if buffer_stats is not None:
         assert buffer_stats["pending_games"] == 0

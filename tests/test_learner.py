@@ -160,7 +160,7 @@ def make_learner(tmp_path, game, records, **cfg):
     for r in records:
         buf.add(r)
     net = build_network(game, NetworkConfig.tiny(), seed=0)
-    store = SnapshotStore(tmp_path)
+    store = SnapshotStore(tmp_path, create=True)
     config = LearnerConfig(**{"batch_size": 32, "min_buffer_positions": 10, **cfg})
     return Learner(game, net, config, buf, store), buf, store
 

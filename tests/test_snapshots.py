@@ -190,7 +190,7 @@ def test_missing_version_names_what_exists(tmp_path, net):
 
 def test_publish_command_accepts_safetensors_and_weights_only_pt(tmp_path, ttt, net, capsys):
     run = tmp_path / "run"
-    store = SnapshotStore(run)
+    store = SnapshotStore(run, create=True)
     store.publish(net)
     mine = build_network(ttt, NetworkConfig.tiny(), seed=11)
     st = tmp_path / "mine.safetensors"
@@ -209,7 +209,7 @@ def test_publish_command_accepts_safetensors_and_weights_only_pt(tmp_path, ttt, 
 
 def test_publish_command_refuses_wrong_shapes_and_pickled_objects(tmp_path, ttt, net, capsys):
     run = tmp_path / "run"
-    store = SnapshotStore(run)
+    store = SnapshotStore(run, create=True)
     store.publish(net)
     wrong = build_network(ttt, NetworkConfig(blocks=2, channels=16, value_hidden=16))
     st = tmp_path / "wrong.safetensors"
@@ -272,8 +272,8 @@ def test_publish_command_checks_against_run_toml_when_no_snapshot_exists(tmp_pat
 
 def test_publish_command_refuses_a_snapshot_file_of_another_game(tmp_path, ttt, net, capsys):
     run = tmp_path / "run"
-    SnapshotStore(run).publish(net)
-    other = SnapshotStore(tmp_path / "other")
+    SnapshotStore(run, create=True).publish(net)
+    other = SnapshotStore(tmp_path / "other", create=True)
     # same shapes, other game name: only the file's own metadata can tell
     other.publish(net.state_dict(), game="gomoku", game_options={"m": 3, "n": 3, "k": 3})
     path = tmp_path / "other" / "snapshots" / "000001.safetensors"

@@ -41,7 +41,8 @@ def test_games_batched_into_shards_and_catalogued(tmp_path):
     with RecordStore(tmp_path, max_games=10) as store:
         added, dups = store.add_games(recs)
         assert (len(added), dups) == (25, [])
-        assert store.pending_games == 5
+        assert store.pending_games == 0 and store.journal_games == 5  # durable, not yet sealed
+        assert store.totals().games == 25  # counted at once
     cat = Catalog(tmp_path / "catalog.sqlite", readonly=True)
     t = cat.totals()
     assert (t.games, t.shards, t.duplicates) == (25, 3, 0)
@@ -236,6 +237,9 @@ def test_a_lost_catalog_is_rebuilt_from_the_shards(tmp_path):
     with RecordStore(tmp_path) as store:
         assert len(store.recovery.shards_indexed) == 3
         assert store.totals().games == 10
+        # and it says so (issue 12: the rebuild happened silently)
+        assert store.recovery.catalog_rebuilt and store.recovery.games_found == 10
+        assert "rebuilt it from the shards, found 10 games" in store.recovery.lines()[0]
     assert ids_in_run(tmp_path) == [f"g{i}" for i in range(10)]
 
 

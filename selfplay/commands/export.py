@@ -38,4 +38,7 @@ def run(args: argparse.Namespace) -> int:
                    overwrite=args.overwrite, reduced_policies=args.reduced_policies)
     print(f"wrote {s.positions} positions of {s.games} {s.game} game(s) to {s.path} "
           f"({s.bytes / 1e6:.1f} MB)")
+    if s.games_skipped:
+        print(f"left out {s.games_skipped} game(s) (damaged frames or another game); run "
+              f"`selfplay verify {args.run}` to quarantine them. First: {s.problems[0]}")
     return 0

@@ -22,6 +22,21 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=run)
 
 
+def check_out_path(out: str) -> None:
+    """Refuse an output path that is not a writable ``.png`` file name (ConfigError, one line)."""
+    from pathlib import Path
+
+    from selfplay.errors import ConfigError
+
+    path = Path(out)
+    if path.suffix.lower() != ".png":
+        raise ConfigError(f"--out {out!r}: the picture is a PNG, so the file name must end in .png")
+    if path.is_dir():
+        raise ConfigError(f"--out {out!r} is a directory; give a file name ending in .png")
+    if not path.parent.is_dir():
+        raise ConfigError(f"--out {out!r}: the folder {str(path.parent)!r} does not exist")
+
+
 def run(args: argparse.Namespace) -> int:
     from selfplay.errors import ConfigError
     from selfplay.monitor.show import show_position
@@ -30,6 +45,7 @@ def run(args: argparse.Namespace) -> int:
 
     if args.simulations is not None and args.simulations < 1:
         raise ConfigError(f"--simulations {args.simulations} must be at least 1")
+    check_out_path(args.out)
     check_output(args.out, args.overwrite)
     path = show_position(args.run, args.game, args.move, args.out, simulations=args.simulations)
     print(f"wrote {path}")

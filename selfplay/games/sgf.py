@@ -29,6 +29,13 @@ from typing import Any, Sequence
 from selfplay.errors import FormatError, IllegalMoveError
 
 _LETTERS = "abcdefghijklmnopqrstuvwxyz"
+#: most nodes kept on the main line (a record holds at most 100,000 positions); a longer main
+#: line is refused while parsing, so memory stays bounded whatever the file holds
+MAX_MAIN_LINE_NODES = 100_000
+#: most characters of a number (SZ, KM, HA, FF): Python's int() refuses 4,300 digits anyway
+MAX_NUMBER_CHARS = 32
+#: where a run of plain value text ends: the closing bracket or an escape
+_VALUE_STOP = re.compile(r"[\]\\]")
 
 
 # ---- coordinates --------------------------------------------------------------------------------
@@ -151,6 +158,9 @@ class _Parser:
             if ch == ";" and not top[2]:
                 node = self.node()
                 if top[1]:
+                    if len(nodes) >= MAX_MAIN_LINE_NODES:
+                        raise self.error(f"the main line has more than {MAX_MAIN_LINE_NODES} nodes; "
+                                         "not a game record this reader takes", node.pos)
                     nodes.append(node)
             elif ch == "(":
                 child_keep = top[1] and not top[2]
@@ -205,6 +215,13 @@ class _Parser:
         while True:
             if self.i >= n:
                 raise self.error("unterminated property value (missing ']')", start)
+            # copy the plain run up to the next ']' or '\\' in one piece
+            m = _VALUE_STOP.search(t, self.i)
+            stop = m.start() if m else n
+            if stop > self.i:
+                out.append(t[self.i:stop])
+                self.i = stop
+                continue
             ch = t[self.i]
             if ch == "\\":
                 if self.i + 1 >= n:
@@ -227,6 +244,9 @@ class _Parser:
 
 
 def _number(ident: str, value: str, where: str, real: bool) -> float:
+    if len(value.strip()) > MAX_NUMBER_CHARS:
+        raise FormatError(f"SGF: property {ident} holds a number of {len(value.strip())} characters "
+                          f"(at most {MAX_NUMBER_CHARS}) at {where}")
     pattern = r"[+-]?(\d+(\.\d*)?|\.\d+)" if real else r"[+-]?\d+"
     if not re.fullmatch(pattern, value.strip()):
         raise FormatError(f"SGF: property {ident}[{value}] is not a {'real ' if real else ''}number at {where}")

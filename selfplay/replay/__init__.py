@@ -6,7 +6,7 @@ Modules, one concern each:
 - :mod:`~selfplay.replay.codec`    shard header, frames, msgpack encoding of a record, limits
 - :mod:`~selfplay.replay.shards`   write a shard atomically, read / scan one with every check
 - :mod:`~selfplay.replay.catalog`  the SQLite catalog (games, shards, quarantine, counters)
-- :mod:`~selfplay.replay.store`    :class:`RecordStore`: batching, exactly-once ids, recovery
+- :mod:`~selfplay.replay.store`    :class:`RecordStore`: durable journal, shards, exactly-once ids, recovery
 - :mod:`~selfplay.replay.buffer`   :class:`ReplayBuffer`: the window of the newest positions
 - :mod:`~selfplay.replay.batch`    compact positions -> planes, policy, mask, value (+ symmetry)
 - :mod:`~selfplay.replay.reader`   :class:`RunReader`: records and batches of a run, follow mode

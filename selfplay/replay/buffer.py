@@ -83,6 +83,8 @@ class ReplayBuffer:
         self._game_key = (game.name, json.dumps(game.options(), sort_keys=True))
         self._checked: dict[tuple[str, str], bool] = {}
         self._mutex = threading.RLock()
+        #: what the last :meth:`refill_from` skipped (a ReadReport), None before one ran
+        self.refill_report: Any = None
 
     @classmethod
     def from_config(cls, game: Game, config: Any, seed: int | None = None) -> "ReplayBuffer":
@@ -92,14 +94,23 @@ class ReplayBuffer:
 
     def refill_from(self, source: Any) -> int:
         """Fill the window from the newest committed shards of a run (a RecordStore, a RunDir or
-        a path), oldest first; damaged shards are skipped. Returns the positions added."""
-        from selfplay.replay.reader import newest_records
+        a path), oldest first. Damaged frames and records of another game are skipped and
+        described in :attr:`refill_report`. Returns the positions added."""
+        from selfplay.replay.reader import ReadReport, newest_records
         from selfplay.rundir import RunDir
         run = getattr(source, "run", source)
         run = run if isinstance(run, RunDir) else RunDir.open(run)
+        self.refill_report = report = ReadReport()
         if not run.catalog.exists():
             return 0
-        return self.add_many(newest_records(run, self.capacity))
+        added = 0
+        for rec in newest_records(run, self.capacity, report=report):
+            try:
+                added += self.add(rec)
+            except FormatError as exc:
+                report.games_skipped += 1
+                report.problems.append(f"left out of the window: {exc}")
+        return added
 
     # ---- size --------------------------------------------------------------------------------
     def __len__(self) -> int:

@@ -18,11 +18,14 @@ the writer commits. Read-only users open it with ``Catalog(path, readonly=True)`
 
 from __future__ import annotations
 
+import contextlib
+import functools
+import os
 import sqlite3
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable, Iterator, Sequence
 
 from selfplay.errors import FormatError
 
@@ -77,6 +80,8 @@ CREATE TABLE IF NOT EXISTS counters (name TEXT PRIMARY KEY, value INTEGER NOT NU
 GAME_COLUMNS = ("game_id", "shard", "frame_offset", "game", "worker", "positions", "length",
                 "result", "snapshot_min", "snapshot_max", "started_at", "finished_at", "resigned",
                 "resign_disabled", "resign_would_have", "full_search_positions", "added_at")
+_INSERT_GAME = (f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
+                f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})")
 SHARD_COLUMNS = ("name", "games", "positions", "bytes", "crc32", "snapshot_min", "snapshot_max",
                  "created_at", "writer", "schema_version")
 
@@ -133,8 +138,36 @@ def game_row(rec: Any, shard: str, offset: int, added_at: float) -> tuple:
             int(rec.full_search.sum()), added_at)
 
 
+class CatalogDamagedError(FormatError):
+    """catalog.sqlite is not a readable SQLite database; the shards can rebuild it."""
+
+
+def damaged_message(path: Path, exc: BaseException) -> str:
+    """The one line that tells a user their catalog is damaged and how to rebuild it."""
+    run = path.parent
+    return (f"catalog {str(path)!r} is damaged ({exc}); the shards hold every game: rebuild it "
+            f"with `selfplay repair {run}`")
+
+
+def _damage_to_error(method):  # type: ignore[no-untyped-def]
+    """Turn SQLite's 'not a database' / 'malformed' errors into :class:`CatalogDamagedError`
+    (a locked or full database stays an OperationalError: it is not damage)."""
+    @functools.wraps(method)
+    def wrapper(self, *args, **kwargs):  # type: ignore[no-untyped-def]
+        try:
+            return method(self, *args, **kwargs)
+        except sqlite3.OperationalError:
+            raise
+        except sqlite3.DatabaseError as exc:
+            raise CatalogDamagedError(damaged_message(self.path, exc)) from None
+    return wrapper
+
+
 class Catalog:
-    """Connection to one catalog.sqlite."""
+    """Connection to one catalog.sqlite.
+
+    Every method turns a damaged database into :class:`CatalogDamagedError` (one line naming
+    ``selfplay repair``)."""
 
     def __init__(self, path: str | Path, *, readonly: bool = False, timeout: float = 30.0) -> None:
         self.path = Path(path)
@@ -143,18 +176,35 @@ class Catalog:
             if readonly:
                 if not self.path.exists():
                     raise FormatError(f"catalog {str(self.path)!r} does not exist")
-                self.con = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=timeout,
-                                           isolation_level=None, check_same_thread=False)
+                self.con = self._open_readonly(timeout)
             else:
                 self.con = sqlite3.connect(self.path, timeout=timeout, isolation_level=None,
                                            check_same_thread=False)
                 self.con.execute("PRAGMA journal_mode=WAL")
-                # shards are fsynced and re-indexed on recovery, so NORMAL is enough here
+                # journals and shards are fsynced and re-indexed on recovery, so NORMAL is enough here
                 self.con.execute("PRAGMA synchronous=NORMAL")
                 self.con.executescript(_SCHEMA)
                 self._check_version()
-        except sqlite3.DatabaseError as exc:
+        except sqlite3.OperationalError as exc:
             raise FormatError(f"catalog {str(self.path)!r} cannot be opened: {exc}") from exc
+        except sqlite3.DatabaseError as exc:
+            raise CatalogDamagedError(damaged_message(self.path, exc)) from None
+
+    def _open_readonly(self, timeout: float) -> sqlite3.Connection:
+        """A read-only connection. On a read-only file system SQLite cannot make the WAL's shared
+        memory file, so the database is opened as immutable there (nobody can write it)."""
+        uri = f"file:{self.path}?mode=ro"
+        try:
+            con = sqlite3.connect(uri, uri=True, timeout=timeout, isolation_level=None, check_same_thread=False)
+            con.execute("SELECT count(*) FROM sqlite_master").fetchone()  # reads the header
+            return con
+        except sqlite3.OperationalError:
+            if os.access(self.path.parent, os.W_OK):
+                raise
+        con = sqlite3.connect(uri + "&immutable=1", uri=True, timeout=timeout, isolation_level=None,
+                              check_same_thread=False)
+        con.execute("SELECT count(*) FROM sqlite_master").fetchone()
+        return con
 
     def _check_version(self) -> None:
         row = self.con.execute("SELECT value FROM meta WHERE key='catalog_version'").fetchone()
@@ -168,45 +218,93 @@ class Catalog:
         self.con.close()
 
     # ---- writing (one transaction each) ------------------------------------------------------
-    def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0) -> int:
-        """Insert a shard and its games in one transaction; returns how many game rows were new
-        (rows whose game_id is already known are ignored and added to ``duplicates_total``)."""
+    @contextlib.contextmanager
+    def _write(self) -> Iterator[sqlite3.Cursor]:
+        """One write transaction: committed when the block ends, rolled back if it raises."""
         cur = self.con.cursor()
         cur.execute("BEGIN IMMEDIATE")
         try:
-            if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
-                cur.execute("ROLLBACK")  # already indexed (by another writer's recovery)
-                return 0
-            before = self.con.total_changes
-            cur.executemany(
-                f"INSERT OR IGNORE INTO games ({', '.join(GAME_COLUMNS)}) "
-                f"VALUES ({', '.join('?' * len(GAME_COLUMNS))})", games)
-            inserted = self.con.total_changes - before
-            ignored = len(games) - inserted
-            positions = int(cur.execute(
-                "SELECT coalesce(sum(positions), 0) FROM games WHERE shard=?",
-                (shard.name,)).fetchone()[0])
-            # the shard row is written even when every game was a duplicate, so recovery does
-            # not index the file again
-            cur.execute(f"INSERT INTO shards ({', '.join(SHARD_COLUMNS)}) "
-                        f"VALUES ({', '.join('?' * len(SHARD_COLUMNS))})",
-                        (shard.name, inserted, positions, shard.bytes, shard.crc32,
-                         shard.snapshot_min, shard.snapshot_max, shard.created_at,
-                         shard.writer, shard.schema_version))
-            self._bump(cur, "duplicates_total", duplicates + ignored)
+            yield cur
             cur.execute("COMMIT")
         except BaseException:
             if self.con.in_transaction:
                 cur.execute("ROLLBACK")
             raise
-        return inserted
+
+    def _credit_shard(self, cur: sqlite3.Cursor, shard: ShardRow) -> int:
+        """Insert the ``shards`` row of ``shard`` counting the games the catalog credits to it;
+        returns that count."""
+        credited, positions = cur.execute(
+            "SELECT count(*), coalesce(sum(positions), 0) FROM games WHERE shard=?",
+            (shard.name,)).fetchone()
+        self._insert_shard(cur, shard, int(credited), int(positions))
+        return int(credited)
+
+    def commit_shard(self, shard: ShardRow, games: Sequence[tuple], duplicates: int = 0, *,
+                     replace: bool = False) -> int:
+        """Insert a shard and its games in one transaction; returns how many games the catalog
+        credits to the shard afterwards. A row whose game_id is already credited to another
+        shard is ignored and added to ``duplicates_total`` (rows already credited to this shard,
+        e.g. committed while it was a journal, are not duplicates). ``replace`` first forgets
+        every game row credited to the shard (its frames moved)."""
+        with self._write() as cur:
+            if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
+                return 0  # already indexed (by another writer's recovery)
+            if replace:
+                cur.execute("DELETE FROM games WHERE shard=?", (shard.name,))
+            cur.executemany(_INSERT_GAME, games)
+            credited = self._credit_shard(cur, shard)
+            ignored = 0 if replace else max(0, len(games) - credited)
+            self._bump(cur, "duplicates_total", duplicates + ignored)
+        return credited
+
+    @staticmethod
+    def _insert_shard(cur: sqlite3.Cursor, shard: ShardRow, games: int, positions: int) -> None:
+        # the shard row is written even when every game was a duplicate, so recovery does not
+        # index the file again
+        cur.execute(f"INSERT INTO shards ({', '.join(SHARD_COLUMNS)}) "
+                    f"VALUES ({', '.join('?' * len(SHARD_COLUMNS))})",
+                    (shard.name, games, positions, shard.bytes, shard.crc32, shard.snapshot_min,
+                     shard.snapshot_max, shard.created_at, shard.writer, shard.schema_version))
+
+    def commit_games(self, games: Sequence[tuple], duplicates: int = 0) -> list[str]:
+        """Insert game rows (of a journal: their shard is not sealed yet) in one transaction;
+        returns the ids that were new. Rows whose id is already committed are ignored and,
+        with ``duplicates``, added to ``duplicates_total``."""
+        new: list[str] = []
+        with self._write() as cur:
+            for row in games:
+                before = self.con.total_changes
+                cur.execute(_INSERT_GAME, row)
+                if self.con.total_changes > before:
+                    new.append(row[0])
+            self._bump(cur, "duplicates_total", duplicates + len(games) - len(new))
+        return new
+
+    def seal_shard(self, shard: ShardRow) -> int:
+        """Add the ``shards`` row of a sealed journal whose games are already committed; returns
+        the games credited to it (0 if the row was already there)."""
+        with self._write() as cur:
+            if cur.execute("SELECT 1 FROM shards WHERE name=?", (shard.name,)).fetchone():
+                return 0
+            return self._credit_shard(cur, shard)
+
+    def unsealed_shard_names(self) -> set[str]:
+        """Shard names that game rows credit but that have no ``shards`` row (open journals,
+        or journals lost with their games)."""
+        return {r[0] for r in self.con.execute(
+            "SELECT DISTINCT shard FROM games WHERE shard NOT IN (SELECT name FROM shards)")}
+
+    def forget_games_of(self, shard: str) -> int:
+        """Delete the game rows credited to ``shard``; returns how many there were."""
+        with self._write() as cur:
+            cur.execute("DELETE FROM games WHERE shard=?", (shard,))
+            return int(cur.rowcount)
 
     def add_duplicates(self, n: int) -> None:
         if n:
-            cur = self.con.cursor()
-            cur.execute("BEGIN IMMEDIATE")
-            self._bump(cur, "duplicates_total", n)
-            cur.execute("COMMIT")
+            with self._write() as cur:
+                self._bump(cur, "duplicates_total", n)
 
     @staticmethod
     def _bump(cur: sqlite3.Cursor, name: str, n: int) -> None:
@@ -214,20 +312,20 @@ class Catalog:
             cur.execute("INSERT INTO counters VALUES (?, ?) ON CONFLICT(name) DO UPDATE SET "
                         "value = value + excluded.value", (name, n))
 
-    def quarantine_shard(self, name: str, reason: str, games_lost: int, games_salvaged: int) -> None:
-        """Forget shard ``name`` and its games (they now live in a salvage shard or are lost),
-        and note why in ``quarantine``."""
-        cur = self.con.cursor()
-        cur.execute("BEGIN IMMEDIATE")
-        try:
+    def quarantine_shard(self, name: str, reason: str, games_lost: int, games_salvaged: int,
+                         salvage: tuple[ShardRow, Sequence[tuple]] | None = None) -> None:
+        """Forget shard ``name`` and its games and note why in ``quarantine``; with ``salvage``
+        (the shard row and game rows of a new shard holding its sound games), commit that
+        shard in the same transaction, so no game is ever uncredited in between."""
+        with self._write() as cur:
             cur.execute("DELETE FROM games WHERE shard=?", (name,))
             cur.execute("DELETE FROM shards WHERE name=?", (name,))
             cur.execute("INSERT OR REPLACE INTO quarantine VALUES (?, ?, ?, ?, ?)",
                         (name, reason, time.time(), games_lost, games_salvaged))
-            cur.execute("COMMIT")
-        except BaseException:
-            cur.execute("ROLLBACK")
-            raise
+            if salvage is not None:
+                row, games = salvage
+                cur.executemany(_INSERT_GAME, games)
+                self._credit_shard(cur, row)
 
     # ---- reading -----------------------------------------------------------------------------
     def known_ids(self, ids: Iterable[str]) -> set[str]:
@@ -388,3 +486,8 @@ class CatalogSummary:
     resign_would_have_games: int
     resign_false_positives: int
     shards: int
+
+for _name, _fn in list(vars(Catalog).items()):
+    if callable(_fn) and not _name.startswith("__"):
+        setattr(Catalog, _name, _damage_to_error(_fn) if not isinstance(_fn, staticmethod) else _fn)
+del _name, _fn

@@ -16,6 +16,7 @@ the frame and the reason.
 from __future__ import annotations
 
 import math
+import re
 import struct
 import zlib
 from dataclasses import dataclass
@@ -374,3 +375,105 @@ def decode_shard_bytes(data: bytes, where: str = "shard") -> list[GameRecord]:
         loc = f"{where}: frame {fr.index} at byte {fr.offset}"
         out.append(decode_record(unpack_stored(fr.stored, flags, loc), loc))
     return out
+
+
+# ---- tolerant scanning: skip a damaged frame, resynchronise on the next sound one -------------
+
+#: a resynchronisation candidate's payload must be at least this long (a game's msgpack map is
+#: far longer; this keeps runs of zero bytes from reading as empty frames)
+MIN_RESYNC_FRAME_BYTES = 16
+#: first bytes a stored payload can start with: a zlib stream (CMF 0x78, RFC 1950) when the
+#: shard deflates its frames, else a msgpack map (fixmap 0x80-0x8f, map16 0xde, map32 0xdf)
+_FIRST_BYTE = {True: re.compile(rb"\x78", re.DOTALL),
+               False: re.compile(rb"[\x80-\x8f\xde\xdf]", re.DOTALL)}
+
+
+@dataclass
+class Damage:
+    """A damaged stretch of a shard: bytes ``offset`` up to ``end`` hold no sound frame.
+
+    ``index`` is the frame number the damage starts at; ``at_end`` is true when the damage runs
+    to the end of the file (a torn tail, when a writer died mid-append)."""
+
+    index: int
+    offset: int
+    end: int
+    reason: str
+    at_end: bool = False
+
+    @property
+    def bytes(self) -> int:
+        return self.end - self.offset
+
+
+def sound_frame_length(buf: Any, offset: int, size: int) -> int | None:
+    """Length of the sound frame (bounded length, matching CRC32) at ``offset``, else None."""
+    if size - offset < FRAME_HEADER.size:
+        return None
+    length, crc = FRAME_HEADER.unpack_from(buf, offset)
+    start = offset + FRAME_HEADER.size
+    if length > MAX_FRAME_BYTES or length > size - start:
+        return None
+    if zlib.crc32(memoryview(buf)[start:start + length]) != crc:
+        return None
+    return length
+
+
+def _resync(buf: Any, start: int, size: int, flags: int, budget: list[int]) -> int:
+    """Offset of the next sound frame at or after ``start`` (``size`` if none).
+
+    Candidates are the positions whose payload would start with a byte a payload can start with;
+    each costs a CRC of its claimed length, charged to ``budget`` (bytes) so that a long stretch
+    of garbage cannot make the search quadratic."""
+    pattern = _FIRST_BYTE[bool(flags & FLAG_DEFLATE)]
+    for m in pattern.finditer(buf, start + FRAME_HEADER.size):
+        p = m.start() - FRAME_HEADER.size
+        length = int.from_bytes(buf[p:p + 4], "little")
+        if length < MIN_RESYNC_FRAME_BYTES or length > size - m.start() or length > MAX_FRAME_BYTES:
+            continue
+        budget[0] -= length
+        if budget[0] < 0:
+            return size
+        if sound_frame_length(buf, p, size) == length:
+            return p
+    return size
+
+
+def scan_frames(buf: Any, size: int, flags: int, where: str,
+                start: int = HEADER.size) -> Iterator[Frame | Damage]:
+    """Every sound frame of a shard held in ``buf`` (bytes or an mmap) and every damaged stretch
+    between them, in file order. A frame whose CRC fails but whose length leads to a sound frame
+    (or exactly to the end) is skipped alone; otherwise the scan resynchronises on the next
+    position that holds a sound frame. Never raises for damage."""
+    offset, index = start, 0
+    budget = [64 * max(size, 1 << 20)]
+    while offset < size:
+        length = sound_frame_length(buf, offset, size)
+        if length is not None:
+            body = offset + FRAME_HEADER.size
+            yield Frame(index, offset, bytes(memoryview(buf)[body:body + length]))
+            offset = body + length
+            index += 1
+            continue
+        loc = f"{where}: frame {index} at byte {offset}"
+        if size - offset < FRAME_HEADER.size:
+            yield Damage(index, offset, size, f"{loc}: truncated frame header ({size - offset} bytes left)", True)
+            return
+        claimed, _ = FRAME_HEADER.unpack_from(buf, offset)
+        nxt = offset + FRAME_HEADER.size + claimed
+        if claimed > MAX_FRAME_BYTES:
+            reason = f"{loc}: claims {claimed} bytes, over the frame limit of {MAX_FRAME_BYTES}"
+        elif nxt > size:
+            left = size - offset - FRAME_HEADER.size
+            reason = f"{loc}: claims {claimed} bytes but only {left} remain (truncated)"
+        else:
+            reason = f"{loc}: CRC32 mismatch (damaged payload)"
+        if nxt < size and claimed <= MAX_FRAME_BYTES and sound_frame_length(buf, nxt, size) is not None:
+            end = nxt  # the length was right: only this payload is damaged
+        elif nxt == size:
+            end = size
+        else:
+            end = _resync(buf, offset + 1, size, flags, budget)
+        yield Damage(index, offset, end, reason, end >= size)
+        offset = end
+        index += 1

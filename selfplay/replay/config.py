@@ -4,10 +4,12 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import ConfigDict, Field
+
+from selfplay.config_model import ConfigModel
 
 
-class ReplayConfig(BaseModel):
+class ReplayConfig(ConfigModel):
     """Shards, catalog and the in-RAM replay window."""
 
     model_config = ConfigDict(extra="forbid")
@@ -36,9 +38,10 @@ class ReplayConfig(BaseModel):
         description="... or when the oldest waiting game has waited this many seconds")
     compress: bool = Field(
         True, description="deflate each record frame in the shards (3-5x smaller on disk)")
-    verify_on_open: Literal["size", "full"] = Field(
-        "size", description="how a reopened run checks its catalogued shards: 'size' (cheap) or "
-        "'full' (every frame's CRC32 and decoding)",
+    verify_on_open: Literal["size", "crc", "full"] = Field(
+        "crc", description="how a reopened run checks its catalogued shards: 'size' (cheapest), "
+        "'crc' (each file's CRC32 against the catalog's: reads every byte) or 'full' (every "
+        "frame decoded and its game compared with run.toml's). Not part of the run's identity",
     )
 
     def store_options(self) -> dict[str, object]:

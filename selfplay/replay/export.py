@@ -31,7 +31,7 @@ import os
 import shutil
 import tempfile
 import zipfile
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -40,7 +40,8 @@ from selfplay.errors import RunDirError, SelfplayError
 from selfplay.records import GameRecord
 from selfplay.replay import codec
 from selfplay.replay.batch import BatchBuilder
-from selfplay.replay.reader import game_key, make_record_game, newest_records, run_toml_game
+from selfplay.replay.reader import (ReadReport, declared_game_key, game_key, make_record_game, newest_records,
+                                    normalised_game_key)
 from selfplay.overwrite import check_output
 from selfplay.rundir import RunDir
 
@@ -57,6 +58,9 @@ class ExportSummary:
     game: str
     options: dict
     bytes: int
+    #: committed games left out: damaged frames, or records of another game than run.toml's
+    games_skipped: int = 0
+    problems: list[str] = field(default_factory=list)
 
 
 def _select(records: list[GameRecord], last: int | None) -> list[tuple[GameRecord, np.ndarray]]:
@@ -95,11 +99,26 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
         raise RunDirError(f"output {str(out)!r} must end in .npz")
     if not out.parent.exists():
         raise RunDirError(f"output directory {str(out.parent)!r} does not exist")
-    records = newest_records(run, last, on_corrupt="raise")
+    report = ReadReport()
+    records = newest_records(run, last, on_corrupt="skip", report=report)
+    skipped, problems = report.games_skipped, report.problems
+    declared = declared_game_key(run)
+    if declared is not None:  # records of another game (e.g. a copied shard) are left out
+        kept = []
+        for rec in records:
+            if normalised_game_key(rec.game, rec.game_options) == declared:
+                kept.append(rec)
+            else:
+                skipped += 1
+                if len(problems) < 50:
+                    problems.append(f"left out game {rec.game_id!r}: it is {rec.game} {rec.game_options}, "
+                                    f"run.toml declares {declared[0]} {declared[1]}")
+        records = kept
     chosen = _select(records, last)
     if not chosen:
         raise NothingToExportError(f"run {str(run.root)!r} holds no positions to export "
-                                   f"({len(records)} game(s) committed)")
+                                   f"({len(records)} game(s) committed"
+                                   + (f", {skipped} skipped" if skipped else "") + ")")
     game = make_record_game(chosen[0][0])
     key = game_key(game.name, game.options())
     same = {game_key(chosen[0][0].game, chosen[0][0].game_options)}
@@ -112,18 +131,6 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
             raise RunDirError(f"run {str(run.root)!r} mixes games: {rec.game_id!r} is {rec.game} "
                               f"{rec.game_options}, earlier ones {game.name} {game.options()}")
         same.add(rk)
-    declared = run_toml_game(run)
-    if declared is not None:
-        try:
-            from selfplay.games.registry import make_game
-            dg = make_game(declared[0], **declared[1])
-            if game_key(dg.name, dg.options()) != key:
-                raise RunDirError(f"run.toml declares {declared[0]} {declared[1]} but the records are "
-                                  f"{game.name} {game.options()}")
-        except SelfplayError as exc:
-            if isinstance(exc, RunDirError):
-                raise
-            # an unreadable [game] table does not stop an export of self-describing records
 
     builder = BatchBuilder(game)
     n = int(sum(idx.size for _, idx in chosen))
@@ -177,4 +184,5 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
         os.replace(partial, out)
     finally:
         shutil.rmtree(tmpdir, ignore_errors=True)
-    return ExportSummary(out, n, len(chosen), game.name, game.options(), out.stat().st_size)
+    return ExportSummary(out, n, len(chosen), game.name, game.options(), out.stat().st_size,
+                         skipped, problems)

@@ -2,8 +2,9 @@
 
 :class:`RunReader` walks the catalog's shards in commit order and yields the games the catalog
 credits to each (so a game is seen exactly once), optionally following new shards as they land.
-It never writes to the run directory: a damaged shard is skipped with a warning (or raises, with
-``on_corrupt="raise"``) and left for the record store to quarantine on its next recovery.
+It never writes to the run directory: a damaged frame is skipped with a warning and reading goes
+on with the next sound frame (or raises, with ``on_corrupt="raise"``); the shard is left for
+``selfplay verify`` or the record store's next recovery to quarantine.
 """
 
 from __future__ import annotations
@@ -14,12 +15,13 @@ import os
 import threading
 import time
 import tomllib
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterator, Literal
 
 import numpy as np
 
-from selfplay.errors import FormatError, RunDirError
+from selfplay.errors import FormatError, RunDirError, SelfplayError
 from selfplay.games.base import Game
 from selfplay.records import GameRecord
 from selfplay.replay.batch import BatchBuilder, concat_batches
@@ -32,6 +34,32 @@ log = logging.getLogger(__name__)
 
 def game_key(name: str, options: dict[str, Any]) -> tuple[str, str]:
     return name, json.dumps(options, sort_keys=True)
+
+
+_NORMALISED: dict[tuple[str, str], tuple[str, str] | None] = {}
+
+
+def normalised_game_key(name: str, options: dict[str, Any]) -> tuple[str, str] | None:
+    """:func:`game_key` of the game the registry makes of ``name`` and ``options`` (so
+    ``tictactoe`` and ``mnk`` with m = n = k = 3 agree); None if it makes none. Cached."""
+    raw = game_key(name, options)
+    if raw not in _NORMALISED:
+        try:
+            from selfplay.games.registry import make_game
+            g = make_game(name, **options)
+            _NORMALISED[raw] = game_key(g.name, g.options())
+        except (SelfplayError, TypeError, ValueError):
+            _NORMALISED[raw] = None
+    return _NORMALISED[raw]
+
+
+def declared_game_key(run: RunDir) -> tuple[str, str] | None:
+    """:func:`normalised_game_key` of the game run.toml declares; None without a readable one."""
+    try:
+        declared = run_toml_game(run)
+    except SelfplayError:
+        return None
+    return None if declared is None else normalised_game_key(*declared)
 
 
 def make_record_game(rec: GameRecord) -> Game:
@@ -60,7 +88,8 @@ class RunReader:
 
     follow: after the shards present, keep polling for new ones (every ``poll_interval``
         seconds) until ``stop`` is set or no shard has landed for ``idle_timeout`` seconds.
-    on_corrupt: ``"skip"`` (log a warning, note it in :attr:`problems`) or ``"raise"``.
+    on_corrupt: ``"skip"`` (skip the damaged frame and go on with the next one; log a warning,
+        note it in :attr:`problems` and :attr:`games_skipped`) or ``"raise"``.
     part: ``(index, count)`` reads only the shards whose commit position is ``index`` modulo
         ``count`` (to split a run among data-loader processes).
     """
@@ -82,6 +111,8 @@ class RunReader:
             raise RunDirError(f"part={part!r} must be (index, count) with 0 <= index < count")
         self.part = part
         self.problems: list[str] = []
+        #: committed games not read because their frame is damaged (see :attr:`problems`)
+        self.games_skipped = 0
         self._last_rowid = 0
         self._seen_files: set[str] = set()
         self._position = 0  # shards offered so far (for ``part``)
@@ -119,16 +150,30 @@ class RunReader:
         return mine
 
     def _read(self, path: Path, credited: dict[int, str] | None) -> Iterator[GameRecord]:
+        """The credited games of one shard. A damaged frame is skipped (noted in
+        :attr:`problems` and :attr:`games_skipped`) and reading goes on with the next sound
+        frame; with ``on_corrupt="raise"`` the first damage raises FormatError."""
+        damaged: list[Any] | None = None if self.on_corrupt == "raise" else []
+        seen_offsets: set[int] = set()
         try:
-            for off, rec in read_shard(path):
+            for off, rec in read_shard(path, damaged):
+                seen_offsets.add(off)
                 if credited is None or credited.get(off) == rec.game_id:
                     yield rec
         except FormatError as exc:
             if self.on_corrupt == "raise":
                 raise
-            msg = f"skipped the rest of {path.name}: {exc}"
-            self.problems.append(msg)
-            log.warning(msg)
+            self._note(f"skipped {path.name}: {exc}",
+                       len(credited) - len(seen_offsets & set(credited)) if credited else 1)
+            return
+        for d in damaged or []:
+            lost = sum(1 for off in (credited or {}) if d.offset <= off < d.end) if credited else 1
+            self._note(f"skipped a damaged stretch of {path.name} ({lost} game(s)): {d.reason}", lost)
+
+    def _note(self, msg: str, games: int) -> None:
+        self.problems.append(msg)
+        self.games_skipped += games
+        log.warning(msg)
 
     def poll(self) -> list[GameRecord]:
         """Records of the shards that landed since the previous call (never blocks)."""
@@ -210,16 +255,31 @@ class RunReader:
                 yield {k: v[i:i + batch_size] for k, v in merged.items()}
 
 
+@dataclass
+class ReadReport:
+    """Damage a read skipped: ``games_skipped`` committed games and one line per problem."""
+
+    games_skipped: int = 0
+    problems: list[str] = field(default_factory=list)
+
+    def add(self, reader: RunReader) -> None:
+        self.games_skipped += reader.games_skipped
+        self.problems.extend(reader.problems)
+
+
 def newest_records(run_dir: str | os.PathLike[str] | RunDir, positions: int | None,
                    on_corrupt: Literal["skip", "raise"] = "skip", *, games: int | None = None,
-                   part: tuple[int, int] = (0, 1)) -> list[GameRecord]:
+                   part: tuple[int, int] = (0, 1), report: ReadReport | None = None) -> list[GameRecord]:
     """The records of the newest shards holding at least ``positions`` positions (all records
     if None; with ``games``, enough shards for the newest ``games`` games and only those games
-    returned), in commit order; ``part`` as in :meth:`Catalog.newest_shards`. Needs the catalog."""
+    returned), in commit order; ``part`` as in :meth:`Catalog.newest_shards`. A damaged frame
+    is skipped (``on_corrupt="skip"``) and counted in ``report`` when one is given."""
     run = run_dir if isinstance(run_dir, RunDir) else RunDir.open(run_dir)
     if not run.catalog.exists():
         reader = RunReader(run, on_corrupt=on_corrupt)
         recs = list(reader.records())
+        if report is not None:
+            report.add(reader)
         return recs[-games:] if games is not None else recs
     cat = Catalog(run.catalog, readonly=True)
     try:
@@ -235,6 +295,8 @@ def newest_records(run_dir: str | os.PathLike[str] | RunDir, positions: int | No
     out: list[GameRecord] = []
     for row in chosen:
         out.extend(reader._read(run.shards / row.name, credited[row.name]))
+    if report is not None:
+        report.add(reader)
     return out[-games:] if games is not None else out
 
 
@@ -251,7 +313,14 @@ def read_game(run_dir: str | os.PathLike[str] | RunDir, game_id: str) -> GameRec
     if loc is None:
         raise FormatError(f"game {game_id!r} is not in the catalog of {str(run.root)!r}")
     shard, offset = loc
-    for off, rec in read_shard(run.shards / shard):
+    path = run.shards / shard
+    if not path.exists():  # durable but not sealed yet: still in its writer's journal
+        from selfplay.replay.shards import JOURNAL_SUFFIX
+        journal = run.shards / (shard.removesuffix(SHARD_SUFFIX) + JOURNAL_SUFFIX)
+        path = journal if journal.exists() else path
+    damaged: list[Any] = []
+    for off, rec in read_shard(path, damaged):
         if off == offset and rec.game_id == game_id:
             return rec
-    raise FormatError(f"shard {shard} has no frame of game {game_id!r} at byte {offset}")
+    why = f" (damaged: {damaged[0].reason})" if damaged else ""
+    raise FormatError(f"shard {shard} has no sound frame of game {game_id!r} at byte {offset}{why}")

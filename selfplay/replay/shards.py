@@ -6,11 +6,12 @@ never rewritten; a damaged one is moved aside by the store (:mod:`selfplay.repla
 
 from __future__ import annotations
 
+import mmap
 import os
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import BinaryIO, Iterator
+from typing import Any, BinaryIO, Iterator
 
 from selfplay.errors import FormatError
 from selfplay.records import GameRecord
@@ -21,25 +22,38 @@ from selfplay.rundir import fsync_dir
 SHARD_SUFFIX = ".plyrec"
 #: suffix of a shard being written (discarded on recovery)
 TEMP_SUFFIX = ".tmp"
+#: suffix of a writer's open journal ``WRITER-NNNNNNNN.journal``: a shard being appended to,
+#: game by game, that becomes ``WRITER-NNNNNNNN.plyrec`` by rename when it is sealed
+JOURNAL_SUFFIX = ".journal"
 
 
 @dataclass
 class ShardScan:
     """What a full read of one shard found.
 
-    ``records`` are the games decoded before the first problem, with the byte offset of their
-    frame; ``error`` is that problem (None for a sound shard)."""
+    ``records`` are the games of every sound frame, with the byte offset of their frame (the
+    games after a damaged frame are kept); ``damaged`` lists the damaged stretches (a frame
+    whose CRC or decoding failed, or bytes skipped to resynchronise); ``error`` is the first
+    problem (None for a sound shard). A damaged header makes the whole file unreadable:
+    ``header_ok`` is then false and ``records`` empty."""
 
     path: Path
     size: int
     flags: int = 0
     records: list[tuple[int, GameRecord]] = field(default_factory=list)
+    damaged: list[codec.Damage] = field(default_factory=list)
     error: FormatError | None = None
     crc32: int = 0
+    header_ok: bool = True
 
     @property
     def ok(self) -> bool:
         return self.error is None
+
+    @property
+    def torn_tail_only(self) -> bool:
+        """The only damage is one stretch running to the end of the file (a cut append)."""
+        return len(self.damaged) == 1 and self.damaged[0].at_end and self.header_ok
 
 
 def write_shard(final: Path, frames: list[bytes], flags: int, tmp: Path | None = None) -> tuple[int, int]:
@@ -64,46 +78,59 @@ def write_shard(final: Path, frames: list[bytes], flags: int, tmp: Path | None =
     return size, crc
 
 
-class _CrcReader:
-    """File wrapper that keeps the CRC-32 of every byte read."""
+def _map(f: BinaryIO, size: int) -> Any:
+    """The file's bytes, memory-mapped read-only (the page cache holds them, not the heap)."""
+    return mmap.mmap(f.fileno(), size, access=mmap.ACCESS_READ)
 
-    def __init__(self, f: BinaryIO) -> None:
-        self.f = f
-        self.crc = 0
 
-    def read(self, n: int) -> bytes:
-        data = self.f.read(n)
-        self.crc = zlib.crc32(data, self.crc)
-        return data
+def _decoded(fr: codec.Frame, flags: int, where: str) -> GameRecord:
+    loc = f"{where}: frame {fr.index} at byte {fr.offset}"
+    return codec.decode_record(codec.unpack_stored(fr.stored, flags, loc), loc)
 
 
 def scan_shard(path: Path, *, decode: bool = True) -> ShardScan:
-    """Read and check the whole shard at ``path``; never raises FormatError (it is reported in
-    :attr:`ShardScan.error`). ``decode=False`` checks frames and CRCs only. Reads only sizes
-    it has checked against the limits and the file's length."""
+    """Read and check the whole shard at ``path``; never raises FormatError (problems are in
+    :attr:`ShardScan.damaged` and :attr:`ShardScan.error`). A damaged frame is skipped and the
+    scan goes on with the next sound one. ``decode=False`` checks frames and CRCs only. Reads
+    only sizes it has checked against the limits and the file's length."""
     where = f"shard {path.name}"
     scan = ShardScan(path, 0)
     try:
         with open(path, "rb") as raw:
             scan.size = size = os.fstat(raw.fileno()).st_size
-            f = _CrcReader(raw)
-            scan.flags = codec.decode_header(f.read(codec.HEADER.size), where)
-            for fr in codec.iter_frames(f, size, where):  # type: ignore[arg-type]
-                if decode:
-                    loc = f"{where}: frame {fr.index} at byte {fr.offset}"
-                    rec = codec.decode_record(codec.unpack_stored(fr.stored, scan.flags, loc), loc)
-                    scan.records.append((fr.offset, rec))
-            scan.crc32 = f.crc
-    except FormatError as exc:
-        scan.error = exc
+            try:
+                scan.flags = codec.decode_header(raw.read(codec.HEADER.size), where)
+            except FormatError as exc:
+                scan.header_ok = False
+                scan.error = exc
+                scan.damaged.append(codec.Damage(0, 0, size, str(exc), True))
+                return scan
+            with _map(raw, size) as buf:
+                scan.crc32 = zlib.crc32(buf)
+                for item in codec.scan_frames(buf, size, scan.flags, where):
+                    if isinstance(item, codec.Damage):
+                        scan.damaged.append(item)
+                        continue
+                    if decode:
+                        try:
+                            scan.records.append((item.offset, _decoded(item, scan.flags, where)))
+                        except FormatError as exc:
+                            end = item.offset + codec.FRAME_HEADER.size + len(item.stored)
+                            scan.damaged.append(codec.Damage(item.index, item.offset, end, str(exc), end >= size))
+        if scan.damaged:
+            scan.error = FormatError(scan.damaged[0].reason)
     except OSError as exc:
         scan.error = FormatError(f"{where}: cannot be read ({exc})")
+        scan.header_ok = False
     return scan
 
 
-def read_shard(path: Path) -> Iterator[tuple[int, GameRecord]]:
-    """(frame offset, record) of every game in the shard; raises FormatError at the first
-    problem (records before it have been yielded)."""
+def read_shard(path: Path, damaged: list[codec.Damage] | None = None) -> Iterator[tuple[int, GameRecord]]:
+    """(frame offset, record) of every game in the shard.
+
+    Without ``damaged``, raises FormatError at the first problem (the records before it have
+    been yielded). With a list, a damaged frame is appended to it and reading goes on with the
+    next sound frame; only an unreadable header (or file) still raises."""
     where = f"shard {path.name}"
     try:
         raw = open(path, "rb")
@@ -112,6 +139,19 @@ def read_shard(path: Path) -> Iterator[tuple[int, GameRecord]]:
     with raw:
         size = os.fstat(raw.fileno()).st_size
         flags = codec.decode_header(raw.read(codec.HEADER.size), where)
-        for fr in codec.iter_frames(raw, size, where):
-            loc = f"{where}: frame {fr.index} at byte {fr.offset}"
-            yield fr.offset, codec.decode_record(codec.unpack_stored(fr.stored, flags, loc), loc)
+        with _map(raw, size) as buf:
+            for item in codec.scan_frames(buf, size, flags, where):
+                if isinstance(item, codec.Damage):
+                    if damaged is None:
+                        raise FormatError(item.reason)
+                    damaged.append(item)
+                    continue
+                try:
+                    rec = _decoded(item, flags, where)
+                except FormatError as exc:
+                    if damaged is None:
+                        raise
+                    end = item.offset + codec.FRAME_HEADER.size + len(item.stored)
+                    damaged.append(codec.Damage(item.index, item.offset, end, str(exc), end >= size))
+                    continue
+                yield item.offset, rec

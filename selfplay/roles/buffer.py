@@ -53,7 +53,7 @@ class BufferRole:
         self.newest_snapshot = 0
         self._totals = self.store.totals()
         self._totals_at = time.monotonic()
-        self._totals_shards = self.store.shards_written
+        self._totals_shards = self.store.commits
         self._metrics_at = 0.0
         self._closed = False
         self._timer = Every(self.tick_seconds, self.tick, f"buffer{index}") if timer else None
@@ -90,13 +90,12 @@ class BufferRole:
         """Durable counts of the whole catalog (shared by all shards) and this shard's waiting
         games; ``games_total``/``positions_total`` are their sums (what the run has stored)."""
         with self._lock:
-            # The catalog count is cached for a second, but never across a shard this store wrote:
-            # the waiting games it moved into the catalog would drop out of durable + waiting.
+            # The catalog count is cached for a second, but never across a commit of this store.
             if (fresh or time.monotonic() - self._totals_at > 1.0
-                    or self.store.shards_written != self._totals_shards):
+                    or self.store.commits != self._totals_shards):
                 self._totals = self.store.totals()
                 self._totals_at = time.monotonic()
-                self._totals_shards = self.store.shards_written
+                self._totals_shards = self.store.commits
             t = self._totals
             pending_g, pending_p = self.store.pending_games, self.store.pending_positions
             return {

@@ -55,6 +55,7 @@ class SnapshotServerRole:
         net = initial_network(config)
         # every worker's network has these tensors: a snapshot that does not fit is refused here, once
         self.expected_shapes = {k: tuple(v.shape) for k, v in net.state_dict().items()}
+        self.probe_net = net  # and its dtypes and outputs on probe positions (SnapshotStore.load)
         if self.store.latest_version() == 0:
             self.store.publish(net, extra={"phase": "initial"})  # version 1: the one place it is published
         self.refresh()
@@ -70,7 +71,8 @@ class SnapshotServerRole:
                     continue
                 try:
                     tensors, info = self.store.load(version, game=self.game_name, game_options=self.game_options,
-                                                    expected_shapes=self.expected_shapes)
+                                                    expected_shapes=self.expected_shapes,
+                                                    probe_net=self.probe_net)
                 except SnapshotError as exc:
                     self.refused[version] = str(exc)
                     continue

@@ -12,13 +12,14 @@ from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import ConfigDict, Field, ValidationError, model_validator
 
+from selfplay.config_model import ConfigModel
 from selfplay.errors import ConfigError
 from selfplay.games.base import Game
 
 
-class SearchConfig(BaseModel):
+class SearchConfig(ConfigModel):
     """Settings of the guided tree search and of self-play move choice."""
 
     model_config = ConfigDict(extra="forbid", frozen=True)
