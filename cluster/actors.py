@@ -6,6 +6,7 @@ forwards calls to it, nothing else.
 - :class:`BufferActor` (head): one buffer shard (record store + replay window); it also appends
   the metric lines of workers on other nodes to ``RUN/metrics.jsonl``.
 - :class:`LearnerActor` (head): the learner; restarted by Ray, it continues from its checkpoint.
+- :class:`EvaluationActor` (head): the evaluation role, when ``[evaluation] enabled``.
 - :class:`SelfPlayActor` (anywhere): one self-play worker.
 
 Constructor arguments are plain values (the run directory, the config as a dict, actor *names*
@@ -159,6 +160,29 @@ class LearnerActor:
 
     def close(self) -> None:
         self.role.close()
+
+    def where(self) -> dict[str, Any]:
+        return _where()
+
+
+@ray.remote(num_cpus=0)
+class EvaluationActor:
+    """The evaluation role (rated rounds every K snapshots); it reads everything from the run
+    directory, so a restarted actor carries on where the stored results end."""
+
+    def __init__(self, run_root: str, config_data: dict[str, Any]) -> None:
+        from selfplay.roles.evaluation import EvaluationRole
+
+        self.role = EvaluationRole(RunDir(Path(run_root)), _config(config_data))
+
+    def step(self, idle_seconds: float) -> dict[str, Any] | None:
+        """One rated round if one is due (its metric line); else wait ``idle_seconds``, None."""
+        import time
+
+        line = self.role.step()
+        if line is None:
+            time.sleep(idle_seconds)
+        return line
 
     def where(self) -> dict[str, Any]:
         return _where()

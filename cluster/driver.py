@@ -85,6 +85,8 @@ class Driver:
         self.buffer: Any = None
         self.snapshots: Any = None
         self.learner: Any = None
+        self.evaluation: Any = None
+        self.last_eval: dict[str, Any] | None = None
         self.buffer_stats: dict[str, Any] = {"games_total": 0, "positions_total": 0}
         self.learner_status: dict[str, Any] = {}
         self.snapshot_version = 0
@@ -100,7 +102,7 @@ class Driver:
 
     # -- starting ---------------------------------------------------------------------------------
     def start(self) -> None:
-        from cluster.actors import BufferActor, BufferClient, LearnerActor, SnapshotActor
+        from cluster.actors import BufferActor, BufferClient, EvaluationActor, LearnerActor, SnapshotActor
         from cluster.placement import head_options
 
         root = os.fspath(self.run.root.resolve())
@@ -120,6 +122,9 @@ class Driver:
             self.learner = LearnerActor.options(max_restarts=-1, max_task_retries=0, **head_options()).remote(
                 root, self.config_data, buffer_names)
             self.learner_status = self._started("the learner", lambda: self._get(self.learner.status.remote(), 600))
+        if self.config.evaluation.enabled:
+            self.evaluation = EvaluationActor.options(max_restarts=-1, max_task_retries=0, **head_options()).remote(
+                root, self.config_data)
         self.started_at = time.time()
         self.initial_games = int(self.buffer_stats["games_total"])
         self.initial_positions = int(self.buffer_stats["positions_total"])
@@ -133,6 +138,8 @@ class Driver:
         self._top_up()
         if self.learner is not None:
             self._submit_learner()
+        if self.evaluation is not None:
+            self._submit_evaluation()
         self._note_helpers()
         self.say(f"run {self.run.root}: game {self.config.game.name} {self.config.game.options}, "
                  f"{len(self.slots)} worker(s) x {self.config.worker.games_in_parallel} games, "
@@ -203,6 +210,10 @@ class Driver:
         ref = self.learner.train.remote(self.config.worker.report_seconds)
         self.inflight[ref] = ("learner", 0)
 
+    def _submit_evaluation(self) -> None:
+        ref = self.evaluation.step.remote(self.config.worker.report_seconds)
+        self.inflight[ref] = ("evaluation", 0)
+
     def event(self, text: str) -> None:
         self.events.append(text)
         self.say(text)
@@ -228,7 +239,7 @@ class Driver:
         ready, _ = ray.wait(list(self.inflight), num_returns=len(self.inflight), timeout=timeout)
         for ref in ready:
             kind, slot = self.inflight.pop(ref)
-            who = f"worker {slot}" if kind == "worker" else "learner"
+            who = f"worker {slot}" if kind == "worker" else kind
             try:
                 result = ray.get(ref)
             except Exception as exc:  # noqa: BLE001 - sorted out below
@@ -243,6 +254,15 @@ class Driver:
                     self._on_worker(slot, result)
                 if not self.stopping:
                     self._submit_worker(slot)
+            elif kind == "evaluation":
+                if result is not None:
+                    self.last_eval = result
+                    if result.get("elo") is not None:
+                        lo, hi = result.get("elo_low"), result.get("elo_high")
+                        interval = f" [{lo:+.0f}, {hi:+.0f}]" if lo is not None and hi is not None else ""
+                        self.event(f"evaluation: {result.get('player')} rated {result['elo']:+.0f} Elo{interval}")
+                if not self.stopping:
+                    self._submit_evaluation()
             else:
                 if result is not None:
                     self.learner_status = result

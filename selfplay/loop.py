@@ -94,6 +94,7 @@ class LocalRun:
         self.learner: LearnerRole | None = None
         self.buffer: BufferRole | None = None
         self.snapshots: SnapshotServerRole | None = None
+        self.evaluation: Any = None
         try:
             if self.run.config.exists():
                 diff = identity_differences(load_config(self.run.config), config)
@@ -111,6 +112,10 @@ class LocalRun:
             if config.run.learner:
                 self.learner = LearnerRole(config, self.run, sampler=buffer,
                                            generated=lambda: buffer.stats()["positions_total"])
+            if config.evaluation.enabled:
+                from selfplay.roles.evaluation import EvaluationRole
+
+                self.evaluation = EvaluationRole(self.run, config)
             stats = buffer.stats(fresh=True)
             self.initial_games, self.initial_positions = stats["games_total"], stats["positions_total"]
             self.budget = GameBudget(config, self.initial_games, self.initial_positions,
@@ -194,6 +199,8 @@ class LocalRun:
                 return reason
             self.generate(self.loop.games_per_phase)
             self.train()
+            if self.evaluation is not None:
+                self.evaluation.step()  # a bounded rated round when one is due
             self.status.phases += 1
             if on_phase is not None:
                 on_phase(self)

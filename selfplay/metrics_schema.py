@@ -17,7 +17,7 @@ from typing import Any, Mapping
 
 #: the Python types a field's JSON value may have, by the schema's type name
 _TYPES: dict[str, tuple[type, ...]] = {
-    "int": (int,), "float": (int, float), "str": (str,), "bool": (bool,),
+    "int": (int,), "float": (int, float), "str": (str,), "bool": (bool,), "list": (list,),
 }
 
 
@@ -92,6 +92,17 @@ WORKER = Component("worker", "the worker id, e.g. `w0000`", "one self-play worke
     _f("time_share_rules", "float", "ratio", "share of rules + tree + network time spent in the rules", True),
     _f("time_share_tree", "float", "ratio", "share spent in the tree", True),
     _f("time_share_network", "float", "ratio", "share spent in the network", True),
+    _f("inference_backend", "str", "-", "runtime of the forward pass (docs/inference.md)",
+       choices=("torch", "openvino", "onnxruntime")),
+    _f("inference_precision", "str", "-", "precision of the forward pass", choices=("float32", "bfloat16")),
+    _f("inference_bound_evals_per_second", "float", "1/s",
+       "the chosen backend's speed measured by `auto` at the worker's batch size (absent when the "
+       "per-machine cache made the choice)"),
+    _f("snapshot_swaps_total", "int", "versions", "new weights put into use (each compiled off the hot path)"),
+    _f("snapshot_swap_seconds_last", "float", "s", "seconds the newest version took to export and compile"),
+    _f("snapshot_swap_seconds_total", "float", "s", "seconds all versions took to export and compile"),
+    _f("snapshots_refused_total", "int", "versions",
+       "versions whose weights did not fit or failed to compile (the previous one stayed in use)"),
 ))
 
 BUFFER = Component("buffer", "the buffer shard, e.g. `buffer0`", "one replay buffer shard (the buffer role)", (
@@ -171,9 +182,29 @@ EVAL = Component("eval", "who evaluated", "match results (optional)", (
     _f("snapshot_version", "int", "version", "the snapshot evaluated (the Elo plot then uses it as its x axis)"),
     _f("version", "int", "version", "the snapshot evaluated (older writers)"),
     _f("train_seconds", "float", "s", "training time behind the snapshot"),
+    _f("elo_low", "float", "Elo", "lower end of the rating's 95% interval (the evaluation role: Bradley-Terry ladder)"),
+    _f("elo_high", "float", "Elo", "upper end of the rating's 95% interval"),
+    _f("anchor", "str", "-", "the ladder's player fixed at 0 Elo (snapshot 1)"),
+    _f("opponents", "list", "-", "the players the round played (names as in `selfplay ladder`)"),
+    _f("simulations", "int", "simulations", "search simulations per move of the evaluated snapshots"),
+    _f("seconds", "float", "s", "wall time of the round"),
+    _f("errors", "list", "-", "opponents that could not be played, each with the reason"),
+    _f("error", "str", "-", "why a round failed as a whole (opponent `failed`)"),
 ))
 
-COMPONENTS: dict[str, Component] = {c.name: c for c in (WORKER, BUFFER, LEARNER, SNAPSHOTS, SNAPSHOT_SERVER, RUN, EVAL)}
+GATE = Component("gate", "who evaluated", "gating matches (AlphaGo Zero; only with `[evaluation] gate_threshold`)", (
+    _f("candidate", "int", "version", "the new snapshot", True),
+    _f("current", "int", "version", "the snapshot workers use now", True),
+    _f("games", "int", "games", "games of the match", True),
+    _f("wins", "int", "games", "the candidate's wins", True),
+    _f("draws", "int", "games", "draws", True),
+    _f("losses", "int", "games", "the candidate's losses", True),
+    _f("score", "float", "ratio", "the candidate's score, draws counting half", True),
+    _f("threshold", "float", "ratio", "the score the candidate needed", True),
+    _f("passed", "bool", "-", "whether the candidate became the snapshot workers use", True),
+))
+
+COMPONENTS: dict[str, Component] = {c.name: c for c in (WORKER, BUFFER, LEARNER, SNAPSHOTS, SNAPSHOT_SERVER, RUN, EVAL, GATE)}
 
 #: stop reasons of a ``run`` stop line (an error's is ``"error: "`` + one line)
 STOP_REASONS = RUN.field("stop_reason").choices  # type: ignore[union-attr]

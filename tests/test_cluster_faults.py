@@ -252,3 +252,32 @@ def test_buffer_totals_do_not_fall_when_a_shard_is_written(cluster, tmp_path):
     assert first["games_durable"] + first["pending_games"] == 2
     assert second["pending_games"] == 0
     assert second["games_durable"] + second["pending_games"] == 3
+
+
+def test_evaluation_rounds_run_beside_the_workers_on_ray(cluster, worker_nodes, tmp_path):
+    """`[evaluation] enabled` adds the evaluation actor: rated rounds appear in the run's
+    metrics while self-play goes on, and workers report their inference backend."""
+    launcher = _launcher(tmp_path, **{"evaluation.enabled": True, "evaluation.every_versions": 1,
+                                      "evaluation.games": 2, "evaluation.opponents": 1,
+                                      "evaluation.simulations": 4})
+    from selfplay.config import dump_config
+
+    (tmp_path / "run" / "run.toml").write_text(dump_config(launcher.config))  # as `selfplay run` does
+    launcher.start()
+    t0 = time.monotonic()
+
+    def tick(la) -> bool:
+        assert time.monotonic() - t0 < TIME_LIMIT, la.lines[-5:]
+        return la.last_eval is not None and la.last_eval.get("elo") is not None
+
+    try:
+        launcher.loop(tick=tick)
+    finally:
+        stats = _finish(launcher)
+    check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
+    evals = metric_rows(tmp_path / "run", "eval")
+    assert evals and evals[-1]["snapshot_version"] >= 2
+    assert any(line.startswith("evaluation: v") for line in launcher.lines)
+    workers = metric_rows(tmp_path / "run", "worker")
+    assert {w.get("inference_backend") for w in workers} <= {"torch", "openvino", "onnxruntime", None}
+    assert any(w.get("inference_backend") for w in workers)

@@ -133,7 +133,8 @@ def test_worker_picks_up_a_users_snapshot_and_refuses_a_foreign_one(tmp_path):
         game = run.game
         mine = build_network(game, run.config.network, seed=99)  # a user's own trainer
         v = run.store.publish(mine, parent_version=1)
-        assert run.snapshots.refresh() == v and worker.pickup() and worker.version == v
+        assert run.snapshots.refresh() == v and worker.pickup() and worker.version == 1  # compiling
+        assert worker.swap(wait=True) and worker.version == v
         assert all(torch.equal(a, b) for a, b in zip(worker.net.state_dict().values(), mine.state_dict().values()))
         run.generate(16)  # positions now record the new version
         assert run.buffer.newest_snapshot == v
@@ -285,3 +286,26 @@ def test_reopening_a_run_whose_newest_snapshot_is_corrupt_falls_back_to_the_prev
         run.generate(4)  # and it plays
     finally:
         run.close()
+
+
+def test_in_process_run_evaluates_every_k_snapshots_and_rates_them(tmp_path):
+    """Evaluation during a run: the in-process loop plays a bounded rated round when a snapshot
+    is due, and the ladder (Bradley-Terry Elo, snapshot 1 at 0) reads the stored games."""
+    from selfplay.config import with_overrides
+    from selfplay.metrics import read_metrics
+    from selfplay.metrics_schema import line_problems
+
+    cfg = with_overrides(tiny_config(games=96), {"evaluation.enabled": True, "evaluation.every_versions": 1,
+                                                 "evaluation.games": 4, "evaluation.opponents": 1,
+                                                 "evaluation.simulations": 8})
+    run_dir = tmp_path / "run"
+    status = run_local_loop(cfg, run_dir, loop=LoopConfig(games_per_phase=16))
+    assert status.games == 96
+    evals = [r for r in read_metrics(run_dir / "metrics.jsonl") if r["component"] == "eval"]
+    assert evals, "no evaluation round was played"
+    assert all(not line_problems(r) for r in evals)
+    rated = [r for r in evals if r.get("elo") is not None]
+    assert rated and all(r["snapshot_version"] >= 2 and r["games"] >= 4 for r in rated)
+    from selfplay.cli import main
+
+    assert main(["ladder", str(run_dir), "--json"]) == 0

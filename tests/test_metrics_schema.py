@@ -31,8 +31,8 @@ def test_hostile_lines_are_named():
 
 
 def test_every_component_is_written_and_every_line_fits(tmp_path):
-    """An in-process run with the learner writes every component but ``eval``; a match with a
-    metrics log writes that one. Each line fits the schema; each role ends with a final line."""
+    """An in-process run with the learner writes every component but ``eval`` and ``gate``; a
+    match with a metrics log and a gating match write those. Each line fits the schema; each role ends with a final line."""
     from test_loop_learns import tiny_config
 
     from selfplay.evaluation import MinimaxPlayer, RandomPlayer, play_match
@@ -45,6 +45,13 @@ def test_every_component_is_written_and_every_line_fits(tmp_path):
     ttt = make_game("tictactoe")
     play_match(ttt, RandomPlayer(), MinimaxPlayer(ttt), 2, seed=1,
                metrics_log=MetricsLog(run_dir / "metrics.jsonl", "eval", "test"))
+    from selfplay.config import with_overrides
+    from selfplay.roles.evaluation import EvaluationRole
+    from selfplay.snapshots import SnapshotStore
+
+    gated = with_overrides(tiny_config(), {"evaluation.gate_threshold": 0.55, "evaluation.gate_games": 2,
+                                           "evaluation.simulations": 4})
+    EvaluationRole(run_dir, gated).gate(SnapshotStore(run_dir).latest_version(), 1)  # writes a gate line
     rows = list(read_metrics(run_dir / "metrics.jsonl"))
     assert {r["component"] for r in rows} == set(COMPONENTS)
     for r in rows:
@@ -64,4 +71,4 @@ def test_every_field_has_a_type_unit_and_meaning(name):
     comp = COMPONENTS[name]
     assert comp.fields and comp.about and comp.source
     for f in comp.fields:
-        assert f.type in ("int", "float", "str", "bool") and f.unit and f.meaning, f
+        assert f.type in ("int", "float", "str", "bool", "list") and f.unit and f.meaning, f

@@ -59,9 +59,12 @@ class SelfPlayRole:
         self.game = make_game(config.game.name, **config.game.options)
         self.net = build_network(self.game, config.network, seed=network_seed(config.run.seed))
         self.version = 0
-        self.pickup()
+        self.notices: list[str] = []
+        self._preparing = 0  # the version being compiled in the background (0: none)
+        self.pickup()  # the first snapshot is loaded before the evaluator is built
+        self.evaluator = self._evaluator()
         self.worker = SelfPlayWorker(
-            self.game, self._evaluator(), config.search, games_in_parallel=config.worker.games_in_parallel,
+            self.game, self.evaluator, config.search, games_in_parallel=config.worker.games_in_parallel,
             worker_id=self.worker_id, seed=worker_seed(config.run.seed, session, slot, incarnation),
             snapshot_version=self.version, run_tag=self.tag, game_limit=game_limit)
         self.metrics = MetricsLog(metrics, "worker", self.worker_id)
@@ -72,32 +75,59 @@ class SelfPlayRole:
         self.duplicates_total = 0
 
     def _evaluator(self) -> Any:
-        """The worker's evaluator for its current network (the one place it is built)."""
+        """The worker's evaluator (the one place it is built): the network on the backend
+        ``[worker] inference`` names ("auto" measures them at this worker's batch size)."""
         from selfplay.evaluators import make_evaluator
 
+        batch = self.config.worker.games_in_parallel * self.config.search.leaves_per_game
         return make_evaluator(self.net, self.game, self.config.search.rollout_mix_lambda,
-                              threads=self.config.worker.threads)
+                              threads=self.config.worker.threads, inference=self.config.worker.inference,
+                              batch_hint=batch, say=self._say)
+
+    def _say(self, line: str) -> None:
+        """A notice of the evaluator (the backend chosen, a backend that cannot run here): kept
+        for the caller and printed once, by the run's first worker."""
+        self.notices.append(line)
+        if self.slot == 0:
+            print(line, flush=True)
 
     # ---- snapshots ---------------------------------------------------------------------------
     def pickup(self) -> bool:
-        """Load a newer snapshot if one is served; True if the network changed. Weights that do
-        not fit leave the network as it was."""
+        """Fetch a newer snapshot if one is served. Before the evaluator exists its weights are
+        loaded at once; afterwards the evaluator compiles them in the background and
+        :meth:`swap` puts them into use between steps. True if a newer version was taken up.
+        Weights that do not fit leave the network as it was."""
         import numpy as np
         import torch
 
         self._last_poll = time.monotonic()
-        version, held = self.weights(self.version)
-        if held is None or version <= self.version:
+        known = max(self.version, self._preparing)
+        version, held = self.weights(known)
+        if held is None or version <= known:
             return False
         try:
             arrays = self.fetch(held)
             state = {k: torch.from_numpy(np.array(v)) for k, v in arrays.items()}
-            self.net.load_state_dict(state, strict=True)
+            if not hasattr(self, "evaluator"):
+                self.net.load_state_dict(state, strict=True)
+                self.version = version
+                return True
         except RuntimeError:
             return False  # the server checked the shapes; anything else: keep playing what we have
+        if not self.evaluator.prepare(state, version):
+            self._preparing = version  # refused (recorded in evaluator.swaps.refused): not retried
+            return False
+        self._preparing = version
+        return True
+
+    def swap(self, wait: bool = False) -> bool:
+        """Put a snapshot compiled in the background into use; True if the version changed."""
+        version = self.evaluator.swap_if_ready(wait=wait)
+        if version is None:
+            return False
         self.version = version
-        if hasattr(self, "worker"):
-            self.worker.set_evaluator(self._evaluator(), version)
+        self.net = self.evaluator.net
+        self.worker.set_evaluator(self.evaluator, version)
         return True
 
     # ---- playing -----------------------------------------------------------------------------
@@ -116,6 +146,8 @@ class SelfPlayRole:
             finished.extend(done)
             if time.monotonic() - self._last_poll >= poll and (done or not between_games):
                 self.pickup()
+            if self._preparing > self.version and (done or not between_games):
+                self.swap()
         if not self.worker.games_in_flight and not finished:
             time.sleep(min(seconds, 0.1))  # nothing allowed to start: do not spin the caller
         added: list[str] = []
@@ -142,7 +174,18 @@ class SelfPlayRole:
         s.update(games_total=self.games_total, positions_total=self.positions_total,
                  duplicates_total=self.duplicates_total, games_started_total=self.worker.games_started,
                  snapshot_version=self.version)
+        describe = getattr(self.evaluator, "describe", None)
+        if describe is not None:
+            d = describe()
+            if d.get("inference_bound_evals_per_second") is None:
+                d.pop("inference_bound_evals_per_second", None)
+            s.update(d, snapshots_refused_total=len(self.evaluator_swaps().refused))
         return s
+
+    def evaluator_swaps(self) -> Any:
+        """The evaluator's :class:`selfplay.evaluators.SwapStats`."""
+        ev = self.evaluator
+        return getattr(getattr(ev, "network", ev), "swaps")
 
     def _write_line(self, **extra: Any) -> None:
         self._metrics_at = time.monotonic()
