@@ -20,7 +20,7 @@ Plots (each a PNG in the output folder; a plot with nothing to show says why in 
 - ``resign_false_positives.png`` false-positive rate of resignation over time, with the 5 % bound
   that AlphaGo Zero (Silver et al. 2017) kept it under; says so when resignation is off
 - ``elo.png``              Elo from the run's ``eval`` lines, with its interval when given,
-  by snapshot version (or over time)
+  by snapshot version and over time
 
 Everything is read from the run directory; the record-based plots use the newest
 ``max_games`` committed games.
@@ -255,7 +255,7 @@ class ReportBuilder:
         self._plot("policy_entropy.png", "Policy entropy of the visit distributions", self.draw_policy_entropy,
                    size=(11, 4.5), panels=2)
         self._plot("resign_false_positives.png", "Resignation false positives", self.draw_resign)
-        self._plot("elo.png", "Elo", self.draw_elo)
+        self._plot("elo.png", "Elo", self.draw_elo, size=(12, 4.5), panels=2)
         self.write_html()
         return self.plots
 
@@ -549,7 +549,8 @@ class ReportBuilder:
         ax.grid(alpha=0.3)
         return note or None
 
-    def draw_elo(self, ax: Any) -> str | None:
+    def draw_elo(self, axes: Any) -> str | None:
+        """Elo against snapshot version (left, when the lines name one) and against time (right)."""
         rows = [r for r in self.rows_of("eval") if _finite(r.get("elo"))]
         if not rows:
             raise Empty("no eval lines in metrics.jsonl; `selfplay ladder` or a match writes them",
@@ -558,21 +559,24 @@ class ReportBuilder:
         for r in rows:
             by_opp.setdefault(str(r.get("opponent", r.get("source", "?"))), []).append(r)
         use_version = all(_finite(r.get("snapshot_version")) for r in rows)
-        for opp, rs in sorted(by_opp.items()):
-            xs = np.array([r["snapshot_version"] for r in rs]) if use_version else \
-                _rel_minutes([r["t"] for r in rs], self.t0)
-            ys = np.array([r["elo"] for r in rs], dtype=float)
-            lo = np.array([r["elo_low"] if _finite(r.get("elo_low")) else r["elo"] for r in rs], dtype=float)
-            hi = np.array([r["elo_high"] if _finite(r.get("elo_high")) else r["elo"] for r in rs], dtype=float)
-            ax.errorbar(xs, ys, yerr=[np.maximum(0, ys - lo), np.maximum(0, hi - ys)], marker="o",
-                        capsize=3, label=ELO_LABELS.get(opp, f"vs {opp}"))
-        ax.axhline(0, color="0.6", linewidth=0.8)
-        ax.set_xlabel("snapshot version" if use_version else "minutes since start")
-        if use_version:
-            ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-        ax.set_ylabel("Elo")
-        _legend_outside(ax)
-        ax.grid(alpha=0.3)
+        panels = list(axes) if isinstance(axes, list) else [axes]
+        for i, ax in enumerate(panels):
+            by_version = use_version and i == 0
+            for opp, rs in sorted(by_opp.items()):
+                xs = np.array([r["snapshot_version"] for r in rs]) if by_version else \
+                    _rel_minutes([r["t"] for r in rs], self.t0)
+                ys = np.array([r["elo"] for r in rs], dtype=float)
+                lo = np.array([r["elo_low"] if _finite(r.get("elo_low")) else r["elo"] for r in rs], dtype=float)
+                hi = np.array([r["elo_high"] if _finite(r.get("elo_high")) else r["elo"] for r in rs], dtype=float)
+                ax.errorbar(xs, ys, yerr=[np.maximum(0, ys - lo), np.maximum(0, hi - ys)], marker="o",
+                            capsize=3, label=ELO_LABELS.get(opp, f"vs {opp}"))
+            ax.axhline(0, color="0.6", linewidth=0.8)
+            ax.set_xlabel("snapshot version" if by_version else "minutes since start")
+            if by_version:
+                ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+            ax.set_ylabel("Elo (95% interval)")
+            ax.grid(alpha=0.3)
+        _legend_outside(panels[-1])
         return f"{len(rows)} evaluation(s)"
 
     # ---- the page ---------------------------------------------------------------------------------
