@@ -59,11 +59,7 @@ class BatchBuilder:
         mask = np.unpackbits(legal_packed, axis=1, count=a).view(bool)
         cols = np.asarray(pol_cols, dtype=np.int64)
         if symmetry is not None and self.num_symmetries > 1 and np.any(k):
-            out = np.empty_like(boards)
-            for s in np.unique(k):
-                sel = k == s
-                out[sel] = self.game.transform_boards(boards[sel], int(s))
-            boards = out
+            boards = self._transform(boards, k)
             cols = self.perms[k[pol_rows], cols]
             moved = np.empty_like(mask)
             np.put_along_axis(moved, self.perms[k], mask, axis=1)
@@ -86,6 +82,14 @@ class BatchBuilder:
             **area,
         }
 
+    def _transform(self, arrays: np.ndarray, k: np.ndarray) -> np.ndarray:
+        """``arrays[i]`` (board on its last two axes) under symmetry ``k[i]``, for every i."""
+        out = np.empty_like(arrays)
+        for s in np.unique(k):
+            sel = k == s
+            out[sel] = self.game.transform_boards(arrays[sel], int(s))
+        return out
+
     def _area(self, to_play: np.ndarray, k: np.ndarray | None, own: np.ndarray | None,
               margin: np.ndarray | None, weight: np.ndarray | None) -> dict[str, np.ndarray]:
         """Area targets from the mover's view: player 0's view times +1 / -1 by the mover."""
@@ -97,11 +101,7 @@ class BatchBuilder:
         sign = np.where(np.asarray(to_play) == 0, 1, -1).astype(np.int8)
         own = np.asarray(own, dtype=np.int8) * sign.reshape(-1, *([1] * len(self.compact_shape)))
         if k is not None and self.num_symmetries > 1 and np.any(k):
-            moved = np.empty_like(own)
-            for s in np.unique(k):
-                sel = k == s
-                moved[sel] = self.game.transform_boards(own[sel], int(s))
-            own = moved
+            own = self._transform(own, k)
         return {"ownership": np.ascontiguousarray(own),
                 "score_margin": (np.asarray(margin, dtype=np.float32) * sign).astype(np.float32),
                 "ownership_weight": np.asarray(weight, dtype=np.float32)}
