@@ -17,6 +17,7 @@ from pathlib import Path
 
 import msgpack
 import numpy as np
+import torch
 import pytest
 
 from selfplay.errors import FormatError
@@ -432,3 +433,20 @@ def test_buffer_samples_the_area_under_the_same_symmetry_as_the_board():
         assert batch["ownership_weight"][i] == (1.0 if rec.final_area_scored else 0.0)
         checked += 1
     assert checked > 200
+
+
+def test_dataset_batches_carry_the_area_as_tensors(tmp_path):
+    from selfplay.replay.dataset import ReplayDataset
+    game = GoGame(size=5, komi=0.5)
+    recs = _go_records(game, 3, 3)
+    with RecordStore(tmp_path / "run", max_games=2) as store:
+        store.add_games(recs)
+    n = 0
+    for batch in ReplayDataset(tmp_path / "run", batch_size=16, augment=False):
+        rows = slice(n, n + batch["value"].shape[0])
+        want = np.concatenate([np.where(r.to_play == 0, 1, -1)[:, None, None] * r.final_ownership[None]
+                               for r in recs])[rows]
+        np.testing.assert_array_equal(batch["ownership"].numpy(), want)
+        assert batch["score_margin"].dtype == torch.float32 and batch["ownership_weight"].shape == batch["value"].shape
+        n += batch["value"].shape[0]
+    assert n == sum(r.num_positions for r in recs)
