@@ -17,6 +17,16 @@ neural networks and tree search"; Williams 1992)::
 
 on the move ``a`` actually played, every position counting.
 
+Optional area terms (games scored by area, a network with ``area_heads``; Wu 2019,
+"Accelerating Self-Play Learning in Go", ownership and score targets)::
+
+    + w_o * mean_points CE((1 + o) / 2, (1 + tanh(u)) / 2)  +  w_s * (s - m / (H W))^2
+
+averaged over the positions whose game was scored on its final area (``ownership_weight`` 1),
+with ``o`` the final owner of each point and ``m`` the final score margin, both from the side
+to move, ``u`` the ownership head's logit and ``s`` the score head; ``w_o`` =
+``ownership_loss_weight``, ``w_s`` = ``score_loss_weight`` (both 0, i.e. off, by default).
+
 The *sample reuse ratio* is samples trained / positions generated. The learner never trains
 ahead of ``target_reuse_ratio``: step n is taken only while
 ``samples_trained + batch_size <= ratio * positions_generated``. When the ratio holds it back it
@@ -89,6 +99,8 @@ class LossParts:
     loss_value: float
     loss_l2: float
     policy_positions: int
+    loss_ownership: float = 0.0
+    loss_score: float = 0.0
 
 
 def compute_loss(net: torch.nn.Module, batch: Mapping[str, np.ndarray], config: LearnerConfig
@@ -104,7 +116,18 @@ def compute_loss(net: torch.nn.Module, batch: Mapping[str, np.ndarray], config: 
     # a row without any legal move (never produced by self-play) is treated as all-legal so the
     # log-softmax stays finite; its target is zero, so it adds nothing
     mask = mask | ~mask.any(dim=1, keepdim=True)
-    logits, v = net(x)
+    use_area = config.ownership_loss_weight > 0 or config.score_loss_weight > 0
+    if use_area:
+        if not getattr(net, "has_area_heads", False):
+            raise ConfigError("learner.ownership_loss_weight / score_loss_weight need a network with "
+                              "area heads: set [network] area_heads = true")
+        if "ownership" not in batch:
+            raise ConfigError("learner.ownership_loss_weight / score_loss_weight need ownership targets, "
+                              "which only games scored by area (Go) have")
+        out = net.forward_with_area(x)
+        logits, v = out["policy"], out["value"]
+    else:
+        logits, v = net(x)
     logp = torch.log_softmax(logits.masked_fill(~mask, float("-inf")), dim=1)
     logp = torch.where(mask, logp, torch.zeros_like(logp))
     loss_value = F.mse_loss(v.float(), z)
@@ -129,8 +152,30 @@ def compute_loss(net: torch.nn.Module, batch: Mapping[str, np.ndarray], config: 
     else:
         loss_l2 = torch.zeros(())
     total = loss_policy + config.value_loss_weight * loss_value + loss_l2
-    return total, {"loss_policy": loss_policy, "loss_value": loss_value, "loss_l2": loss_l2,
-                   "policy_positions": n_full}
+    parts = {"loss_policy": loss_policy, "loss_value": loss_value, "loss_l2": loss_l2,
+             "policy_positions": n_full}
+    if use_area:
+        loss_own, loss_score = area_losses(out, batch)
+        total = total + config.ownership_loss_weight * loss_own + config.score_loss_weight * loss_score
+        parts.update(loss_ownership=loss_own, loss_score=loss_score)
+    return total, parts
+
+
+def area_losses(out: Mapping[str, torch.Tensor], batch: Mapping[str, np.ndarray]
+                ) -> tuple[torch.Tensor, torch.Tensor]:
+    """(ownership loss, score loss) of the area heads' outputs ``out`` against the batch's
+    ``ownership`` (B, H, W) and ``score_margin`` (B,) (mover's view), averaged over the rows whose
+    ``ownership_weight`` is 1 (zero when none is)."""
+    own = torch.as_tensor(np.asarray(batch["ownership"]), dtype=torch.float32)
+    margin = torch.as_tensor(np.asarray(batch["score_margin"]), dtype=torch.float32)
+    w = torch.as_tensor(np.asarray(batch["ownership_weight"]), dtype=torch.float32)
+    n = w.sum().clamp(min=1.0)
+    # (1 + tanh(u)) / 2 = sigmoid(2u): the cross-entropy of a logistic with logit 2u
+    ce = F.binary_cross_entropy_with_logits(2.0 * out["ownership_logit"].float(), (1.0 + own) / 2.0,
+                                            reduction="none").flatten(1).mean(dim=1)
+    points = float(own[0].numel()) if own.ndim > 1 and own.shape[0] else 1.0
+    se = (out["score"].float() - margin / points) ** 2
+    return (ce * w).sum() / n, (se * w).sum() / n
 
 
 def build_optimizer(net: torch.nn.Module, config: LearnerConfig) -> torch.optim.Optimizer:
@@ -222,7 +267,8 @@ class Learner:
         else:
             self.pretrain_steps += 1
         return LossParts(float(total.detach()), values["loss_policy"], values["loss_value"],
-                         values["loss_l2"], int(values["policy_positions"]))
+                         values["loss_l2"], int(values["policy_positions"]),
+                         values.get("loss_ownership", 0.0), values.get("loss_score", 0.0))
 
     def _sample(self, buffer: Any, *, need_policy: bool) -> dict[str, np.ndarray]:
         kw = {"policy_targets_only": True} if need_policy else {}
@@ -465,7 +511,9 @@ class Learner:
                    loss_l2=parts.loss_l2, samples_trained_total=self.samples_trained_total,
                    reuse_ratio=self.reuse_ratio, learning_rate=self.optimizer.param_groups[0]["lr"],
                    snapshot_version=self.snapshot_version, phase=phase)
-        self.history.append({"t": now, **{k: v for k, v in row.items() if k != "phase"}})
+        area = ({"loss_ownership": parts.loss_ownership, "loss_score": parts.loss_score}
+                if self.config.ownership_loss_weight > 0 or self.config.score_loss_weight > 0 else {})
+        self.history.append({"t": now, **{k: v for k, v in row.items() if k != "phase"}, **area})
         if dt >= 2.0 or total_steps <= 1 or total_steps % self.config.steps_per_snapshot == 0:
             self.metrics.write(steps_per_second=sps, pretrain_steps=self.pretrain_steps, **row)
             self._last_metrics_t = now

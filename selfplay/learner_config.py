@@ -73,6 +73,17 @@ class LearnerConfig(_Section):
     value_loss_weight: float = Field(1.0, ge=0.0)
     """Weight of the squared value error in the total loss (1 in the AlphaZero papers)."""
 
+    ownership_loss_weight: float = Field(0.0, ge=0.0, le=100.0)
+    """Weight of the ownership loss (0: off). Needs ``[network] area_heads`` and a game scored
+    by area (Go): the cross-entropy between the final owner of each point and the ownership
+    head's prediction, both from the side to move's view, averaged over the points and over the
+    positions whose game was scored on its area (Wu 2019's auxiliary ownership target)."""
+
+    score_loss_weight: float = Field(0.0, ge=0.0, le=100.0)
+    """Weight of the score loss (0: off). Needs ``[network] area_heads``: the squared error
+    between the score head and the final score margin from the side to move's view divided by
+    the number of points, averaged over the positions whose game was scored on its area."""
+
     pg_baseline: bool = False
     """Policy-gradient objective only: subtract the network's own (detached) value from the
     outcome as a variance-reducing baseline, (z - v(s)) instead of z."""

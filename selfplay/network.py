@@ -9,6 +9,14 @@ action) and a value head (1x1 convolution, a hidden fully connected layer, one t
 Input: float32 planes ``(B, C, H, W)`` from :meth:`selfplay.games.base.Game.planes_from_compact`.
 Output: ``(policy_logits (B, A), value (B,))``; the value is in [-1, 1] from the side to move's
 view (+1: the player to move wins).
+
+Optional auxiliary heads (``[network] area_heads``, off by default), used only in training
+(:meth:`PolicyValueNet.forward_with_area`; search and inference see the same two outputs): an
+ownership head, a 1x1 convolution giving one logit per point whose tanh predicts the final
+area owner from the side to move's view, and a score head, a linear layer on the tower's global
+average pool predicting the final score margin from the side to move's view divided by the
+number of points. Ownership and score targets as auxiliary training signals: D. J. Wu 2019,
+"Accelerating Self-Play Learning in Go".
 """
 
 from __future__ import annotations
@@ -64,14 +72,32 @@ class PolicyValueNet(nn.Module):
         self.value_conv = nn.Sequential(nn.Conv2d(ch, vc, 1, bias=False), nn.BatchNorm2d(vc), nn.ReLU())
         self.value_fc1 = nn.Linear(vc * h * w, config.value_hidden)
         self.value_fc2 = nn.Linear(config.value_hidden, 1)
+        self.has_area_heads = bool(config.area_heads)
+        if self.has_area_heads:
+            self.ownership_conv = nn.Conv2d(ch, 1, 1)
+            self.score_fc = nn.Linear(ch, 1)
 
-    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """``x`` float32 (B, C, H, W) -> (policy logits (B, A), value (B,) in [-1, 1], side to move)."""
-        t = self.tower(self.stem(x))
+    def _policy_value(self, t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         p = self.policy_fc(self.policy_conv(t).flatten(1))
         v = torch.relu(self.value_fc1(self.value_conv(t).flatten(1)))
         v = torch.tanh(self.value_fc2(v)).squeeze(1)
         return p, v
+
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """``x`` float32 (B, C, H, W) -> (policy logits (B, A), value (B,) in [-1, 1], side to move)."""
+        return self._policy_value(self.tower(self.stem(x)))
+
+    def forward_with_area(self, x: torch.Tensor) -> dict[str, torch.Tensor]:
+        """All outputs for training: ``policy`` logits (B, A), ``value`` (B,), and with the area
+        heads ``ownership_logit`` (B, H, W) (tanh of it: the predicted final owner of each point,
+        +1 the side to move) and ``score`` (B,) (predicted final margin of the side to move,
+        divided by H*W points). Raises ValueError for a net built without the area heads."""
+        if not self.has_area_heads:
+            raise ValueError("this network has no area heads ([network] area_heads = false)")
+        t = self.tower(self.stem(x))
+        p, v = self._policy_value(t)
+        return {"policy": p, "value": v, "ownership_logit": self.ownership_conv(t).squeeze(1),
+                "score": self.score_fc(t.mean(dim=(2, 3))).squeeze(1)}
 
     def metadata(self) -> dict[str, Any]:
         """Plain JSON-able description of the architecture and the game it fits."""

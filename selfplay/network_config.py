@@ -21,6 +21,10 @@ class NetworkConfig(ConfigModel):
     policy_channels: int = Field(2, ge=1, le=64, description="Channels of the policy head's 1x1 convolution (2 in AlphaGo Zero).")
     value_channels: int = Field(1, ge=1, le=64, description="Channels of the value head's 1x1 convolution (1 in AlphaGo Zero).")
     value_hidden: int = Field(64, ge=1, le=4096, description="Width of the value head's hidden fully connected layer (256 in AlphaGo Zero).")
+    area_heads: bool = Field(False, description=(
+        "Add two auxiliary heads trained from the final area of games scored by area (Go): an ownership "
+        "head (1x1 convolution, tanh per point) and a score-margin head (global average pool, one linear "
+        "output), as auxiliary targets in Wu 2019. Off: the network has exactly the tensors it had without them."))
 
     @classmethod
     def tiny(cls) -> "NetworkConfig":

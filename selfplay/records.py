@@ -12,9 +12,12 @@ position (the *mover*), in [-1, 1]; ``result`` is from player 0's view.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from selfplay.games.base import FinalArea
 
 
 @dataclass
@@ -36,6 +39,15 @@ class GameRecord:
     started_at, finished_at: Unix time in seconds.
     num_actions: the game's number of actions A (0 = not given; the replay codec then asks the
         game registry). :class:`GameRecordBuilder` fills it from the legal mask's length.
+    final_ownership: int8 ``compact_shape`` or None: area of the game's last position from
+        player 0's view (+1 player 0's, -1 player 1's, 0 nobody's; Go: Tromp–Taylor area).
+        None for games without a notion of area and for records written before the field.
+    final_margin: float or None: player 0's area minus player 1's minus komi, in points, of the
+        same position; None exactly when ``final_ownership`` is.
+    final_area_scored: True when the game ended under its rules and was scored on that
+        position (the result is the margin's sign); False when the game ended otherwise
+        (resignation, or a move cap that does not score): the area is then that of the
+        position at the end, not a final result.
 
     Per-position columns (length T = number of positions = number of moves played)
     ------------------------------------------------------------------------------
@@ -80,6 +92,9 @@ class GameRecord:
     finished_at: float = 0.0
     extra: dict[str, Any] = field(default_factory=dict)
     num_actions: int = 0
+    final_ownership: np.ndarray | None = None
+    final_margin: float | None = None
+    final_area_scored: bool = False
 
     @property
     def num_positions(self) -> int:
@@ -134,8 +149,11 @@ class GameRecordBuilder:
         self._snapshot.append(int(snapshot))
 
     def finish(self, result: int, finished_at: float, *, resigned: bool = False,
-               resign_disabled: bool = False, resign_would_have: int = -1) -> GameRecord:
-        """``result`` from player 0's view (+1, 0, -1)."""
+               resign_disabled: bool = False, resign_would_have: int = -1,
+               final_area: FinalArea | None = None, final_area_scored: bool = False) -> GameRecord:
+        """``result`` from player 0's view (+1, 0, -1). ``final_area``: the area of the game's
+        last position (:meth:`selfplay.games.base.Game.final_area`), None for games without
+        one; ``final_area_scored``: the result was scored on it (see :class:`GameRecord`)."""
         to_play = np.array(self._to_play, dtype=np.int8)
         lengths = [len(a) for a in self._pol_actions]
         offsets = np.zeros(len(lengths) + 1, dtype=np.int32)
@@ -163,4 +181,7 @@ class GameRecordBuilder:
             started_at=self.started_at,
             finished_at=finished_at,
             num_actions=self._num_actions,
+            final_ownership=None if final_area is None else np.asarray(final_area.ownership, dtype=np.int8),
+            final_margin=None if final_area is None else float(final_area.margin),
+            final_area_scored=final_area is not None and bool(final_area_scored),
         )

@@ -191,8 +191,12 @@ class SelfPlayWorker:
 
     def _finish(self, slot: int, result: int, *, resigned: bool = False, capped: bool = False) -> None:
         g = self._games[slot]
+        # the area of the last position (Go): the scored result when the rules ended the game,
+        # the position at resignation (flagged as not scored) otherwise
         record = g.builder.finish(result, self.clock(), resigned=resigned, resign_disabled=g.resign_disabled,
-                                  resign_would_have=g.resign_would_have)
+                                  resign_would_have=g.resign_would_have,
+                                  final_area=self.game.final_area(g.state),
+                                  final_area_scored=not (resigned or capped))
         if capped:
             record.extra["move_cap"] = True
         self.games_total += 1

@@ -23,11 +23,25 @@ To add a game: subclass :class:`Game`, implement the abstract methods, and regis
 from __future__ import annotations
 
 import abc
+from dataclasses import dataclass
 from typing import Any, Generic, Sequence, TypeVar
 
 import numpy as np
 
 State = TypeVar("State")
+
+
+@dataclass(frozen=True)
+class FinalArea:
+    """Area of a position, from player 0's view.
+
+    ownership: int8 ``board_shape``: +1 the point counts for player 0, -1 for player 1, 0 for
+        nobody (Go: Tromp–Taylor area, stones plus empty regions reaching only one colour).
+    margin: player 0's area minus player 1's minus komi, in points.
+    """
+
+    ownership: np.ndarray
+    margin: float
 
 
 class Game(abc.ABC, Generic[State]):
@@ -110,6 +124,11 @@ class Game(abc.ABC, Generic[State]):
     @abc.abstractmethod
     def zobrist(self, state: State) -> int:
         """Stable 64-bit Zobrist hash of the position (board and side to move)."""
+
+    def final_area(self, state: State) -> "FinalArea | None":
+        """Who owns each point of ``state`` and the score margin, for games scored by area
+        (Go); None for games without a notion of area (the default)."""
+        return None
 
     # ---- encoding ----------------------------------------------------------------------------
     @abc.abstractmethod

@@ -30,7 +30,7 @@ import numpy as np
 
 from selfplay.errors import ConfigError, IllegalMoveError
 from selfplay.games import go_kernel as K
-from selfplay.games.base import Game, dihedral, dihedral_point_permutation
+from selfplay.games.base import FinalArea, Game, dihedral, dihedral_point_permutation
 from selfplay.games.registry import register_game
 
 #: column letters of the letter-number style (I is skipped, as on most boards and in GTP)
@@ -286,6 +286,14 @@ class GoGame(Game[GoState]):
         """Black's area minus White's area minus komi (positive: Black ahead)."""
         b, w = self.score(state)
         return b - w - self.komi
+
+    def final_area(self, state: GoState) -> FinalArea:
+        """Tromp–Taylor area of ``state`` per point (+1 Black, -1 White, 0 neither) and
+        :meth:`score_margin`; the ownership sums to black area minus white area."""
+        owner = K.area_owner(state.board, self._nbr).reshape(self.size, self.size)
+        b = int(np.count_nonzero(owner == 1))
+        w = int(np.count_nonzero(owner == -1))
+        return FinalArea(owner, b - w - self.komi)
 
     def outcome(self, state: GoState) -> float:
         m = self.score_margin(state)

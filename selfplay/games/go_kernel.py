@@ -422,20 +422,20 @@ def all_groups_have_liberties(board, grp, nwords):
 
 
 @njit(cache=True)
-def area_score(board, nbr):
-    """Tromp–Taylor area: (black, white) = stones of each colour plus the empty points that
-    reach only that colour."""
+def area_owner(board, nbr):
+    """Tromp–Taylor area owner of every point: int8 (n,), +1 a black stone or an empty point
+    reaching only black, -1 the same for white, 0 an empty point reaching both colours or none."""
     n = board.shape[0]
-    black = 0
-    white = 0
+    owner = np.zeros(n, dtype=np.int8)
     seen = np.zeros(n, dtype=np.bool_)
     stack = np.empty(n, dtype=np.int64)
+    region = np.empty(n, dtype=np.int64)
     for p in range(n):
         c = board[p]
         if c == 1:
-            black += 1
+            owner[p] = 1
         elif c == 2:
-            white += 1
+            owner[p] = -1
         elif not seen[p]:
             reach = 0
             size = 0
@@ -446,6 +446,7 @@ def area_score(board, nbr):
             while top > 0:
                 top -= 1
                 s = stack[top]
+                region[size] = s
                 size += 1
                 for k in range(4):
                     q = nbr[s, k]
@@ -459,10 +460,25 @@ def area_score(board, nbr):
                             top += 1
                     else:
                         reach |= v
-            if reach == 1:
-                black += size
-            elif reach == 2:
-                white += size
+            if reach == 1 or reach == 2:
+                mark = 1 if reach == 1 else -1
+                for i in range(size):
+                    owner[region[i]] = mark
+    return owner
+
+
+@njit(cache=True)
+def area_score(board, nbr):
+    """Tromp–Taylor area: (black, white) = stones of each colour plus the empty points that
+    reach only that colour (the points :func:`area_owner` marks +1 and -1)."""
+    owner = area_owner(board, nbr)
+    black = 0
+    white = 0
+    for p in range(owner.shape[0]):
+        if owner[p] == 1:
+            black += 1
+        elif owner[p] == -1:
+            white += 1
     return black, white
 
 

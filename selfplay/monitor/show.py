@@ -217,7 +217,8 @@ def _network_config_from_tensors(tensors: dict[str, Any]) -> Any:
         return NetworkConfig(blocks=blocks, channels=channels,
                              policy_channels=int(tensors["policy_conv.0.weight"].shape[0]),
                              value_channels=int(tensors["value_conv.0.weight"].shape[0]),
-                             value_hidden=int(tensors["value_fc1.weight"].shape[0]))
+                             value_hidden=int(tensors["value_fc1.weight"].shape[0]),
+                             area_heads="ownership_conv.weight" in tensors)
     except (KeyError, IndexError) as exc:
         raise SnapshotError(f"snapshot weights do not look like the project's policy-value network ({exc})") from exc
 

@@ -5,7 +5,9 @@ the compact board (int8), side to move, packed legal mask, outcome, full-search 
 how many predecessor boards of the same game are available for history planes (the
 predecessor of position ``seq`` is ``seq - 1`` when it belongs to the same game), and where the
 position's policy entries start in a second ring of (int16 action, float16 probability) pairs.
-For 9x9 Go that is 111 bytes per position plus 4 bytes per policy entry.
+For 9x9 Go that is 111 bytes per position plus 4 bytes per policy entry. For a game scored by
+area (Go) each position also keeps the global number of its game (8 bytes), and a third ring
+keeps each game's final ownership, score margin and weight once (81 + 8 bytes per game on 9x9).
 
 Sampling is uniform over the window, or linearly tilted toward recent positions
 (``recency_weight``: the newest position is ``1 + recency_weight`` times as likely as the oldest).
@@ -73,6 +75,13 @@ class ReplayBuffer:
         ecap = min(self._max_entries, cap * max(1, min(initial_entries_per_position, self.num_actions)))
         self._e_action = np.zeros(ecap, dtype=np.int16)
         self._e_prob = np.zeros(ecap, dtype=np.float16)
+        self.has_area = self.builder.has_area
+        gcap = min(cap, 64) if self.has_area else 0
+        self._game_of = np.zeros(cap if self.has_area else 0, dtype=np.int64)  # global game number
+        self._g_own = np.zeros((gcap, *self.compact_shape), dtype=np.int8)  # player 0's view
+        self._g_margin = np.zeros(gcap, dtype=np.float32)
+        self._g_weight = np.zeros(gcap, dtype=np.float32)
+        self._next_game = 0
         self._next_seq = 0
         self._oldest_seq = 0
         self._next_entry = 0
@@ -127,7 +136,8 @@ class ReplayBuffer:
         """Bytes of RAM held by the ring arrays (as allocated)."""
         arrays = (self._boards, self._to_play, self._legal, self._outcome, self._full,
                   self._snapshot, self._action, self._hist_avail, self._pol_start, self._pol_count,
-                  self._e_action, self._e_prob)
+                  self._e_action, self._e_prob, self._game_of, self._g_own, self._g_margin,
+                  self._g_weight)
         return int(sum(a.nbytes for a in arrays))
 
     def max_nbytes(self) -> int:
@@ -198,6 +208,8 @@ class ReplayBuffer:
         starts = self._next_entry + np.cumsum(counts) - counts
         self._put(self._pol_start, seq0, starts)
         self._put(self._pol_count, seq0, counts.astype(np.uint16))
+        if self.has_area:
+            self._put_area(rec, seq0, n_new)
         ecap = self._e_action.shape[0]
         self._put(self._e_action, self._next_entry, acts, ecap)
         self._put(self._e_prob, self._next_entry, probs.astype(np.float16), ecap)
@@ -208,6 +220,34 @@ class ReplayBuffer:
         top = int(snap.max())
         self.newest_snapshot = top if self.newest_snapshot is None else max(self.newest_snapshot, top)
         return n_new
+
+    def _put_area(self, rec: GameRecord, seq0: int, n_new: int) -> None:
+        """Store the game's final area once in the game ring; its positions point to it."""
+        gseq = self._next_game
+        oldest = int(self._game_of[self._oldest_seq % self.capacity]) if self._oldest_seq < seq0 else gseq
+        gcap = self._g_own.shape[0]
+        if gseq - oldest + 1 > gcap:
+            new = gcap
+            while new < gseq - oldest + 1:
+                new *= 2
+            seqs = np.arange(oldest, gseq)
+            own = np.zeros((new, *self.compact_shape), dtype=np.int8)
+            margin = np.zeros(new, dtype=np.float32)
+            weight = np.zeros(new, dtype=np.float32)
+            own[seqs % new] = self._g_own[seqs % gcap]
+            margin[seqs % new] = self._g_margin[seqs % gcap]
+            weight[seqs % new] = self._g_weight[seqs % gcap]
+            self._g_own, self._g_margin, self._g_weight = own, margin, weight
+            gcap = new
+        g = gseq % gcap
+        if rec.final_ownership is None or rec.final_margin is None:
+            self._g_own[g], self._g_margin[g], self._g_weight[g] = 0, 0.0, 0.0
+        else:
+            self._g_own[g] = rec.final_ownership
+            self._g_margin[g] = rec.final_margin
+            self._g_weight[g] = 1.0 if rec.final_area_scored else 0.0
+        self._put(self._game_of, seq0, np.full(n_new, gseq, dtype=np.int64))
+        self._next_game += 1
 
     def _check_record(self, rec: GameRecord) -> None:
         key = (rec.game, json.dumps(rec.game_options, sort_keys=True))
@@ -231,6 +271,10 @@ class ReplayBuffer:
         if t and rec.legal.shape[1] != self._legal.shape[1]:
             raise FormatError(f"game {rec.game_id!r} has legal rows of {rec.legal.shape[1]} bytes, "
                               f"expected {self._legal.shape[1]} for {self.num_actions} actions")
+        own = rec.final_ownership
+        if self.has_area and own is not None and tuple(np.shape(own)) != self.compact_shape:
+            raise FormatError(f"game {rec.game_id!r} has a final ownership of shape {tuple(np.shape(own))}, "
+                              f"expected {self.compact_shape}")
 
     def _put(self, arr: np.ndarray, seq: int, values: np.ndarray, size: int | None = None) -> None:
         size = arr.shape[0] if size is None else size
@@ -272,7 +316,9 @@ class ReplayBuffer:
         summing to 1 (zero for a position stored without a policy target); ``value`` float32
         (B,) final outcome from the mover's view; ``mask`` bool (B, A) legal moves;
         ``full_search`` bool (B,); ``snapshot`` int32 (B,); ``symmetry`` int8 (B,); ``action``
-        int64 (B,) the move played, transformed by the same symmetry.
+        int64 (B,) the move played, transformed by the same symmetry. For a game scored by area
+        (Go) also ``ownership`` int8 (B, H, W), ``score_margin`` float32 (B,) (both from the
+        mover's view, the board under the same symmetry) and ``ownership_weight`` float32 (B,).
         ``policy_targets_only`` draws only full-search positions with a policy target."""
         if batch_size < 1:
             raise ConfigError(f"batch_size={batch_size} must be >= 1")
@@ -339,9 +385,14 @@ class ReplayBuffer:
         sym = None
         if self.augment and self.builder.num_symmetries > 1:
             sym = self.rng.integers(self.builder.num_symmetries, size=b)
+        area: tuple[np.ndarray | None, ...] = (None, None, None)
+        if self.has_area:
+            g = self._game_of[slots] % self._g_own.shape[0]
+            area = (self._g_own[g], self._g_margin[g], self._g_weight[g])
         out = self.builder.build(hist, self._to_play[slots], self._legal[slots], rows,
                                  self._e_action[entry], self._e_prob[entry].astype(np.float64),
-                                 self._outcome[slots], self._full[slots], self._snapshot[slots], sym)
+                                 self._outcome[slots], self._full[slots], self._snapshot[slots], sym,
+                                 *area)
         # the move played, under the same symmetry as the board (int64 (B,))
         out["action"] = self.builder.perms[out["symmetry"].astype(np.int64), self._action[slots].astype(np.int64)]
         return out

@@ -65,6 +65,11 @@ ARRAY_DTYPES: dict[str, str] = {
     "outcomes": "|i1",
     "snapshot": "<i4",
 }
+#: optional per-game area fields (games scored by area, e.g. Go), all three or none
+FINAL_AREA_FIELDS = ("final_ownership", "final_margin", "final_area_scored")
+FINAL_OWNERSHIP_DTYPE = "|i1"
+#: bound of |final_margin|: a board's cells plus the largest komi a game accepts
+MAX_FINAL_MARGIN = MAX_BOARD_CELLS + 1000
 _STR_FIELDS = ("game_id", "game", "worker_id")
 _MAP_FIELDS = ("game_options", "search", "extra")
 
@@ -136,6 +141,12 @@ def encode_record(rec: GameRecord, num_actions: int | None = None) -> bytes:
     }
     for name, dtype in ARRAY_DTYPES.items():
         doc[name] = _array(getattr(rec, name), dtype)
+    if rec.final_ownership is not None:
+        if rec.final_margin is None:
+            raise FormatError(f"record {rec.game_id!r} has a final ownership but no final margin")
+        doc["final_ownership"] = _array(rec.final_ownership, FINAL_OWNERSHIP_DTYPE)
+        doc["final_margin"] = float(rec.final_margin)
+        doc["final_area_scored"] = bool(rec.final_area_scored)
     if rec.num_positions == 0:  # an empty game: give its legal rows their width
         doc["legal"] = _array(np.zeros((0, packed_width(a)), dtype=np.uint8), ARRAY_DTYPES["legal"])
     try:
@@ -208,6 +219,41 @@ def _decode_array(doc: dict[str, Any], name: str, shape: tuple[int, ...], where:
     if len(data) != expected:
         raise FormatError(f"{where}: array {name!r} holds {len(data)} bytes, its shape {shape} needs {expected}")
     return np.frombuffer(data, dtype=dt).reshape(shape)
+
+
+def _decode_final_area(doc: dict[str, Any], compact: tuple[int, ...], result: int,
+                       where: str) -> tuple[np.ndarray | None, float | None, bool]:
+    """The optional area fields: (ownership int8 ``compact``, margin, scored) or (None, None, False)."""
+    present = [f for f in FINAL_AREA_FIELDS if f in doc]
+    if not present:
+        return None, None, False
+    if len(present) != len(FINAL_AREA_FIELDS):
+        missing = [f for f in FINAL_AREA_FIELDS if f not in doc]
+        raise FormatError(f"{where}: field {present[0]!r} without {missing[0]!r} (the final area "
+                          f"fields come together)")
+    spec = _field(doc, "final_ownership", dict, where)
+    if spec.get("dtype") != FINAL_OWNERSHIP_DTYPE:
+        raise FormatError(f"{where}: array 'final_ownership' has dtype {spec.get('dtype')!r}, "
+                          f"expected {FINAL_OWNERSHIP_DTYPE!r}")
+    got = spec.get("shape")
+    if not isinstance(got, list) or tuple(got) != compact:
+        raise FormatError(f"{where}: array 'final_ownership' has shape {got!r}, expected the "
+                          f"board shape {compact}")
+    data = spec.get("data")
+    if not isinstance(data, bytes) or len(data) != math.prod(compact):
+        raise FormatError(f"{where}: array 'final_ownership' must hold {math.prod(compact)} bytes")
+    own = np.frombuffer(data, dtype=np.int8).reshape(compact)
+    if own.size and (own.min() < -1 or own.max() > 1):
+        raise FormatError(f"{where}: final_ownership holds a value other than -1, 0 or 1")
+    margin = _field(doc, "final_margin", (float, int), where)
+    if not (math.isfinite(margin) and abs(margin) <= MAX_FINAL_MARGIN):
+        raise FormatError(f"{where}: final_margin {margin!r} is not a finite number of at most "
+                          f"{MAX_FINAL_MARGIN} points")
+    scored = _field(doc, "final_area_scored", bool, where)
+    if scored and (margin > 0) - (margin < 0) != result:
+        raise FormatError(f"{where}: the game was scored on its final area, but final_margin "
+                          f"{margin} disagrees with result {result}")
+    return own, float(margin), scored
 
 
 def decode_record(payload: bytes, where: str = "record") -> GameRecord:
@@ -289,6 +335,7 @@ def decode_record(payload: bytes, where: str = "record") -> GameRecord:
             raise FormatError(f"{where}: a policy action is outside 0..{a - 1}")
         if not np.all(np.isfinite(pol_weights)) or pol_weights.min() < 0:
             raise FormatError(f"{where}: a policy weight is negative or not finite")
+    own, margin, scored = _decode_final_area(doc, tuple(bshape[1:]), result, where)
 
     return GameRecord(
         game_id=gid, game=doc["game"], game_options=doc["game_options"], worker_id=doc["worker_id"],
@@ -297,7 +344,8 @@ def decode_record(payload: bytes, where: str = "record") -> GameRecord:
         policy_weights=pol_weights, root_values=root_values, full_search=full, outcomes=outcomes,
         snapshot=snapshot, resigned=doc["resigned"], resign_disabled=doc["resign_disabled"],
         resign_would_have=doc["resign_would_have"], started_at=float(doc["started_at"]),
-        finished_at=float(doc["finished_at"]), extra=doc["extra"], num_actions=a)
+        finished_at=float(doc["finished_at"]), extra=doc["extra"], num_actions=a,
+        final_ownership=own, final_margin=margin, final_area_scored=scored)
 
 
 # ---- frames ------------------------------------------------------------------------------------

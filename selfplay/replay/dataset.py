@@ -12,7 +12,9 @@ Two ways to read:
 
 Batches are dicts of tensors: ``planes`` float32 (B, C, H, W), ``policy`` float32 (B, A),
 ``value`` float32 (B,), ``mask`` bool (B, A), ``full_search`` bool (B,), ``snapshot`` int32
-(B,), ``symmetry`` int8 (B,). Use ``DataLoader(dataset, batch_size=None)``.
+(B,), ``symmetry`` int8 (B,); for games scored by area (Go) also ``ownership`` int8 (B, H, W),
+``score_margin`` float32 (B,) (final area and margin from the mover's view) and
+``ownership_weight`` float32 (B,). Use ``DataLoader(dataset, batch_size=None)``.
 """
 
 from __future__ import annotations

@@ -16,6 +16,11 @@ for N positions in commit order:
   where no search ran (imported games);
 - ``snapshot`` int32 (N,) snapshot version that played the move (-1: not a network's move);
 - ``full_search`` bool (N,) the move had the full search budget;
+- for games scored by area (Go) only: ``ownership`` int8 (N, H, W) the final Tromp–Taylor
+  area from the mover's view (+1 the mover's, -1 the opponent's, 0 nobody's), ``score_margin``
+  float32 (N,) the final score margin (area difference minus komi) from the mover's view, and
+  ``ownership_weight`` float32 (N,) 1 where the game was scored on that area, 0 where it was
+  not (resigned games, records without the area): multiply those losses by it;
 - ``move_number`` int32 (N,) position index within its game; ``game_index`` int32 (N,) index
   into ``game_ids`` (G,); ``info`` a JSON string: game, options, shapes, record schema version.
 
@@ -143,6 +148,9 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
         "full_search": (np.bool_, (n,)), "move_number": (np.int32, (n,)),
         "game_index": (np.int32, (n,)),
     }
+    if builder.has_area:  # games scored by area (Go)
+        specs.update({"ownership": (np.int8, (n, *game.compact_shape)), "score_margin": (np.float32, (n,)),
+                      "ownership_weight": (np.float32, (n,))})
     tmpdir = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
     try:
         arrays = {k: np.lib.format.open_memmap(tmpdir / f"{k}.npy", mode="w+", dtype=dt, shape=shape)
@@ -153,7 +161,8 @@ def export_npz(run_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
                 part = idx[lo:lo + chunk_positions]
                 b = builder.from_record(rec, None, part)
                 sl = slice(pos, pos + part.size)
-                for k in ("planes", "value", "mask", "snapshot", "full_search"):
+                for k in ("planes", "value", "mask", "snapshot", "full_search",
+                          *(("ownership", "score_margin", "ownership_weight") if builder.has_area else ())):
                     arrays[k][sl] = b[k]
                 full = np.asarray(b["full_search"], dtype=bool)
                 target = full & (np.asarray(b["policy"]).sum(axis=1) > 0)

@@ -43,8 +43,9 @@ def random_record(game: Game, rng: np.random.Generator, game_id: str, *,
                        float(rng.uniform(-1, 1)), bool(rng.random() < full_search_share), snapshot)
         state = game.play(state, action)
         moves += 1
-    result = int(game.outcome(state)) if game.is_terminal(state) else 0
-    return b.finish(result, finished_at)
+    terminal = game.is_terminal(state)
+    result = int(game.outcome(state)) if terminal else 0
+    return b.finish(result, finished_at, final_area=game.final_area(state), final_area_scored=terminal)
 
 
 def with_id(rec: GameRecord, game_id: str, **changes: Any) -> GameRecord:
