@@ -515,6 +515,6 @@ class Learner:
                 if self.config.ownership_loss_weight > 0 or self.config.score_loss_weight > 0 else {})
         self.history.append({"t": now, **{k: v for k, v in row.items() if k != "phase"}, **area})
         if dt >= 2.0 or total_steps <= 1 or total_steps % self.config.steps_per_snapshot == 0:
-            self.metrics.write(steps_per_second=sps, pretrain_steps=self.pretrain_steps, **row)
+            self.metrics.write(steps_per_second=sps, pretrain_steps=self.pretrain_steps, **row, **area)
             self._last_metrics_t = now
             self._last_metrics_step = total_steps

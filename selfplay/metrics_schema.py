@@ -131,6 +131,9 @@ LEARNER = Component("learner", "`learner`", "the learner role", (
     _f("loss_policy", "float", "nats", "cross-entropy of the policy against the visit distribution"),
     _f("loss_value", "float", "-", "squared error of the value against the outcome"),
     _f("loss_l2", "float", "-", "L2 weight penalty"),
+    _f("loss_ownership", "float", "nats", "ownership head's cross-entropy against the final area (Go, "
+       "only with `[network] area_heads` and a learner weight)"),
+    _f("loss_score", "float", "-", "score head's squared error against the final margin (same condition)"),
     _f("learning_rate", "float", "-", "current learning rate"),
     _f("phase", "str", "-", "`pretrain` or `selfplay`", choices=("pretrain", "selfplay")),
     _f("resumed_from", "str", "-", "where the learner started from: `checkpoint`, `snapshot` or `fresh`",
