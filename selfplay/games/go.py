@@ -24,7 +24,7 @@ kernel in :mod:`selfplay.games.go_kernel`; no per-move flood fill.
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+from typing import Any, Iterable, Sequence
 
 import numpy as np
 
@@ -63,19 +63,20 @@ def _splitmix64(seed: int, count: int) -> list[int]:
 class GoState:
     """One Go position with everything the rules need; never changed after creation.
 
-    ``board`` int8 (N,), ``groups`` int64 group table and ``seen`` sorted int64 keys of every
-    board position so far (see :mod:`selfplay.games.go_kernel`); ``key`` the board's Zobrist
-    key, ``prev_key`` the key of the position before the last move; ``player`` 0 (Black) or
-    1 (White) to move; ``passes`` consecutive passes just played; ``moves`` moves played;
-    ``boards`` the last few boards (current first) for the network's history planes."""
+    ``history`` int8 (H, N): the current board first, then the boards before it (zero rows
+    before the game's start; H = the game's ``history`` option), what the network's history
+    planes are built from; ``board`` is ``history[0]``. ``groups`` int64 group table and ``seen``
+    sorted int64 keys of every board position so far (see :mod:`selfplay.games.go_kernel`);
+    ``key`` the board's Zobrist key, ``prev_key`` the key of the position before the last move;
+    ``player`` 0 (Black) or 1 (White) to move; ``passes`` consecutive passes just played;
+    ``moves`` moves played."""
 
-    __slots__ = ("board", "groups", "seen", "key", "prev_key", "player", "passes", "moves",
-                 "boards")
+    __slots__ = ("history", "board", "groups", "seen", "key", "prev_key", "player", "passes", "moves")
 
-    def __init__(self, board: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
-                 prev_key: int, player: int, passes: int, moves: int,
-                 boards: tuple[np.ndarray, ...]) -> None:
-        self.board = board
+    def __init__(self, history: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
+                 prev_key: int, player: int, passes: int, moves: int) -> None:
+        self.history = history
+        self.board = history[0]
         self.groups = groups
         self.seen = seen
         self.key = key
@@ -83,7 +84,6 @@ class GoState:
         self.player = player
         self.passes = passes
         self.moves = moves
-        self.boards = boards
 
     def __repr__(self) -> str:
         return (f"GoState(moves={self.moves}, to_play={'BW'[self.player]}, passes={self.passes}, "
@@ -159,8 +159,8 @@ class GoGame(Game[GoState]):
         self._no_position = _splitmix64(0x0B5E55ED, 1)[0]
         empty = np.zeros(n, dtype=np.int8)
         groups, _ = K.build_groups(empty, nbr, zob, self._nwords)
-        self._initial = GoState(empty, groups, np.zeros(1, dtype=np.int64), 0,
-                                self._no_position, 0, 0, 0, (empty,))
+        self._initial = GoState(np.zeros((history, n), dtype=np.int8), groups, np.zeros(1, dtype=np.int64), 0,
+                                self._no_position, 0, 0, 0)
 
     # ---- shape facts ---------------------------------------------------------------------------
     @property
@@ -224,8 +224,10 @@ class GoGame(Game[GoState]):
             raise IllegalMoveError("setup stones leave a group without liberties")
         if to_play not in (0, 1):
             raise IllegalMoveError(f"to_play={to_play!r} must be 0 (Black) or 1 (White)")
-        return GoState(board, groups, np.array([key], dtype=np.int64), int(key),
-                       self._no_position, int(to_play), 0, 0, (board,))
+        history = np.zeros((self.history, self._n), dtype=np.int8)
+        history[0] = board
+        return GoState(history, groups, np.array([key], dtype=np.int64), int(key),
+                       self._no_position, int(to_play), 0, 0)
 
     def to_play(self, state: GoState) -> int:
         return state.player
@@ -247,6 +249,15 @@ class GoGame(Game[GoState]):
         return out
 
     def play(self, state: GoState, action: int) -> GoState:
+        return self._play(state, action, False)[0]
+
+    def play_with_mask(self, state: GoState, action: int) -> tuple[GoState, np.ndarray]:
+        """:meth:`play` and the new position's legal mask from one compiled call."""
+        new, mask = self._play(state, action, True)
+        return new, (mask if mask is not None else self.legal_mask(new))
+
+    def _play(self, state: GoState, action: int, with_mask: bool) -> tuple[GoState, np.ndarray | None]:
+        """The new state and, when ``with_mask`` and the kernel computed it, its legal mask."""
         try:
             a = int(action)
         except (TypeError, ValueError):
@@ -254,27 +265,33 @@ class GoGame(Game[GoState]):
         if state.passes >= 2 or state.moves >= self._max_moves:
             raise IllegalMoveError(
                 f"the game is over; move {self._safe_text(a)} by {'BW'[state.player]} cannot be played")
-        h = self.history
         if a == self._pass:
-            boards = (state.board,) + state.boards[:h - 1]
-            return GoState(state.board, state.groups, state.seen, state.key, state.key,
-                           1 - state.player, state.passes + 1, state.moves + 1, boards)
+            history = np.empty_like(state.history)
+            history[0] = state.board
+            history[1:] = state.history[:-1]
+            return GoState(history, state.groups, state.seen, state.key, state.key,
+                           1 - state.player, state.passes + 1, state.moves + 1), None
         if not 0 <= a < self._n:
             raise IllegalMoveError(
                 f"action {a} is off the {self.size}x{self.size} board (points 0..{self._n - 1}, "
                 f"pass {self._n})")
-        st, key, board, groups, seen = K.play_copy(
-            state.board, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
-            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords)
+        # the new position is terminal (so its mask all False) only at the move cap
+        with_mask = with_mask and state.moves + 1 < self._max_moves
+        history = np.empty_like(state.history)
+        groups = np.empty_like(state.groups)
+        seen = np.empty(state.seen.shape[0] + 1, dtype=np.int64)
+        mask = np.empty(self._n + 1 if with_mask else 0, dtype=np.bool_)
+        st, key, grew = K.play_history(
+            state.history, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
+            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, history, groups, seen, mask)
         if st != K.OK:
             reason = _STATUS_TEXT[st]
             if st == K.REPEAT and not self.superko:
                 reason = "it retakes a ko at once (recreates the previous board position)"
             raise IllegalMoveError(
                 f"move {self.action_to_text(a)} by {'BW'[state.player]} is illegal: {reason}")
-        boards = (board,) + state.boards[:h - 1]
-        return GoState(board, groups, seen, int(key), state.key, 1 - state.player, 0,
-                       state.moves + 1, boards)
+        return (GoState(history, groups, seen if grew else state.seen, int(key), state.key, 1 - state.player, 0,
+                        state.moves + 1), mask if with_mask else None)
 
     def score(self, state: GoState) -> tuple[int, int]:
         """Tromp–Taylor area (black, white): stones plus empty points reaching only that
@@ -317,10 +334,10 @@ class GoGame(Game[GoState]):
         return state.board.reshape(self.size, self.size).copy()
 
     def compact_history(self, state: GoState) -> np.ndarray:
-        out = np.zeros((self.history, self.size, self.size), dtype=np.int8)
-        for i, b in enumerate(state.boards):
-            out[i] = b.reshape(self.size, self.size)
-        return out
+        return state.history.reshape(self.history, self.size, self.size).copy()
+
+    def compact_histories(self, states: Sequence[GoState]) -> np.ndarray:
+        return np.stack([s.history for s in states]).reshape(len(states), self.history, self.size, self.size)
 
     def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
         """Planes 2i and 2i+1: the side to move's and the opponent's stones on board i (0 is

@@ -375,6 +375,53 @@ def play_copy(board, grp, seen, key, prev_key, color, p, allow_suicide, superko,
     return OK, nk, nb, ng, _insert_sorted(seen, nk)
 
 
+@njit(cache=True)
+def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
+                 nwords, out_hist, out_grp, out_seen, out_mask):
+    """:func:`play_copy` on a position kept with its history, into arrays the caller allocated
+    (allocating them here and handing them back to Python cost more than the move itself).
+
+    ``hist`` int8 (H, N): the current board first, then the boards before it (zero rows before
+    the game's start). ``out_hist`` (H, N) receives the new board first and the older boards
+    shifted down, ``out_grp`` the new group table, ``out_seen`` (len(seen) + 1,) the sorted keys
+    with the new one; with a non-empty ``out_mask`` (N + 1,) the legal mask of the new position
+    for the opponent (pass legal). Returns (status, key, keys_grew): ``keys_grew`` False when
+    the new key was already in ``seen`` (then ``out_seen`` is unused: the set is ``seen``).
+    On a non-OK status the outputs mean nothing."""
+    if hist[0, p] != 0:
+        return OCCUPIED, key, False
+    out_hist[1:] = hist[:-1]
+    out_hist[0] = hist[0]
+    board = out_hist[0]
+    out_grp[:] = grp
+    st, nk, _ = play_inplace(board, out_grp, key, color, p, allow_suicide, nbr, zob, nwords)
+    if st != OK:
+        return st, key, False
+    n = seen.shape[0]
+    if _repeats(nk, seen, n, prev_key, superko):
+        return REPEAT, key, False
+    lo, hi = 0, n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if seen[mid] < nk:
+            lo = mid + 1
+        else:
+            hi = mid
+    grew = not (lo < n and seen[lo] == nk)
+    if grew:
+        out_seen[:lo] = seen[:lo]
+        out_seen[lo] = nk
+        out_seen[lo + 1:] = seen[lo:]
+        keys = out_seen
+    else:
+        keys = seen
+    if out_mask.shape[0] > 0:
+        legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
+                     out_mask)
+        out_mask[hist.shape[1]] = True
+    return OK, nk, grew
+
+
 # ---- whole-board helpers (setup positions, legality of a position, scoring) ---------------------
 
 @njit(cache=True)

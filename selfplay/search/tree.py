@@ -158,8 +158,9 @@ class BatchedSearch:
         self._no_force = np.full(slots, -1, dtype=np.int64)
 
     # ---- node helpers ----------------------------------------------------------------------
-    def _describe_state(self, node: int, state: Any) -> np.ndarray | None:
-        """Fill a node's scalars from its state; return its legal mask if it needs evaluation."""
+    def _describe_state(self, node: int, state: Any, mask: np.ndarray | None = None) -> np.ndarray | None:
+        """Fill a node's scalars from its state; return its legal mask (``mask`` if given, else
+        the game's) if it needs evaluation."""
         g = self.game
         self.states[node] = state
         tp = g.to_play(state)
@@ -174,7 +175,7 @@ class BatchedSearch:
             return None
         self.terminal[node] = False
         self.pending[node] = True
-        return g.legal_mask(state)
+        return g.legal_mask(state) if mask is None else mask
 
     def _clear_rows(self, nodes: np.ndarray) -> None:
         self.N[nodes] = 0.0
@@ -309,7 +310,7 @@ class BatchedSearch:
         mask_nodes: list[int] = []
         masks: list[np.ndarray] = []
         for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
-            mask = self._describe_state(node, game.play(states[par], act))
+            mask = self._describe_state(node, *game.play_with_mask(states[par], act))
             if mask is not None:
                 mask_nodes.append(node)
                 masks.append(mask)
