@@ -193,3 +193,18 @@ def test_same_seed_plays_the_games_the_numpy_search_played(case):
     first, expected = RECORDED[case]
     assert records[0].actions.tolist() == first
     assert digest.hexdigest()[:32] == expected
+
+
+def test_go_planes_equal_the_plane_definition():
+    # The compiled plane builder against the definition in GoGame.planes_from_compact's docstring.
+    go = make_game("go", size=9, history=3)
+    rng = np.random.default_rng(4)
+    boards = rng.integers(0, 3, (20, 3, 9, 9)).astype(np.int8)
+    to_play = rng.integers(0, 2, 20).astype(np.int8)
+    own = (to_play + 1)[:, None, None, None]
+    expected = np.concatenate([
+        np.stack([boards == own, (boards != 0) & (boards != own)], axis=2).reshape(20, 6, 9, 9),
+        np.broadcast_to((to_play == 0)[:, None, None, None], (20, 1, 9, 9)),
+        np.ones((20, 1, 9, 9), bool)], axis=1).astype(np.float32)
+    np.testing.assert_array_equal(go.planes_from_compact(boards, to_play), expected)
+    np.testing.assert_array_equal(go.planes_from_compact(boards.astype(np.int64), to_play.astype(np.int64)), expected)

@@ -348,12 +348,8 @@ class GoGame(Game[GoState]):
         if boards.shape[1:] != (h, self.size, self.size):
             raise ValueError(f"boards of shape {boards.shape} do not fit go {self.size}x{self.size} "
                              f"with history {h}")
-        own = (to_play + 1)[:, None, None, None]
         planes = np.empty((n, 2 * h + 2, self.size, self.size), dtype=np.float32)
-        planes[:, 0:2 * h:2] = boards == own
-        planes[:, 1:2 * h:2] = (boards != 0) & (boards != own)
-        planes[:, 2 * h] = (to_play == 0)[:, None, None]
-        planes[:, 2 * h + 1] = 1.0
+        K.history_planes(np.ascontiguousarray(boards, dtype=np.int8), np.ascontiguousarray(to_play), planes)
         return planes
 
     # ---- symmetry ------------------------------------------------------------------------------

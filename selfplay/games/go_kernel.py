@@ -422,6 +422,28 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
     return OK, nk, grew
 
 
+@njit(cache=True)
+def history_planes(boards, to_play, out):
+    """Network input planes from compact boards int8 (n, H, rows, cols) and the side to move
+    (n,), into float32 ``out`` (n, 2H + 2, rows, cols): planes 2i / 2i+1 the mover's / the
+    opponent's stones on board i, plane 2H ones when Black (player 0) is to move, plane 2H+1
+    ones."""
+    n, h, rows, cols = boards.shape
+    for i in range(n):
+        own = to_play[i] + 1
+        black = np.float32(1.0) if to_play[i] == 0 else np.float32(0.0)
+        for j in range(h):
+            for r in range(rows):
+                for c in range(cols):
+                    v = boards[i, j, r, c]
+                    out[i, 2 * j, r, c] = np.float32(1.0) if v == own else np.float32(0.0)
+                    out[i, 2 * j + 1, r, c] = np.float32(1.0) if v != 0 and v != own else np.float32(0.0)
+        for r in range(rows):
+            for c in range(cols):
+                out[i, 2 * h, r, c] = black
+                out[i, 2 * h + 1, r, c] = np.float32(1.0)
+
+
 # ---- whole-board helpers (setup positions, legality of a position, scoring) ---------------------
 
 @njit(cache=True)
