@@ -134,6 +134,11 @@ def test_play_with_mask_and_compact_histories_equal_the_one_state_methods(name, 
             new, mask = game.play_with_mask(state, a)
             plain = game.play(state, a)
             np.testing.assert_array_equal(mask, game.legal_mask(plain))
+            out = np.ones(game.num_actions, dtype=bool)     # stale contents must be overwritten
+            again, written = game.play_with_mask(state, a, out)
+            assert written is out
+            np.testing.assert_array_equal(out, mask)
+            assert game.zobrist(again) == game.zobrist(plain)
             np.testing.assert_array_equal(game.compact_history(new), game.compact_history(plain))
             assert game.zobrist(new) == game.zobrist(plain) and game.to_play(new) == game.to_play(plain)
             assert game.is_terminal(new) == game.is_terminal(plain)

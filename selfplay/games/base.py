@@ -95,11 +95,16 @@ class Game(abc.ABC, Generic[State]):
     def play(self, state: State, action: int) -> State:
         """Return the state after ``action``; raise IllegalMoveError if it is not legal."""
 
-    def play_with_mask(self, state: State, action: int) -> tuple[State, np.ndarray]:
-        """``play(state, action)`` and the new state's ``legal_mask``; a game may compute both in
-        one call (the search expands every new node this way)."""
+    def play_with_mask(self, state: State, action: int, out: np.ndarray | None = None) -> tuple[State, np.ndarray]:
+        """``play(state, action)`` and the new state's ``legal_mask`` (written into ``out``, a
+        bool (num_actions,) array, when given); a game may compute both in one call (the search
+        expands every new node this way)."""
         new = self.play(state, action)
-        return new, self.legal_mask(new)
+        mask = self.legal_mask(new)
+        if out is None:
+            return new, mask
+        out[:] = mask
+        return new, out
 
     @abc.abstractmethod
     def is_terminal(self, state: State) -> bool:

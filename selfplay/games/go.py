@@ -155,6 +155,7 @@ class GoGame(Game[GoState]):
         zob[2] = keys[n:2 * n]
         self._zob = zob
         self._side_key = keys[2 * n]
+        self._no_mask = np.zeros(0, dtype=np.bool_)  # "no mask wanted" for the play kernel
         # "previous position" of a state that has none (setup): a key no board will have
         self._no_position = _splitmix64(0x0B5E55ED, 1)[0]
         empty = np.zeros(n, dtype=np.int8)
@@ -249,15 +250,19 @@ class GoGame(Game[GoState]):
         return out
 
     def play(self, state: GoState, action: int) -> GoState:
-        return self._play(state, action, False)[0]
+        return self._play(state, action, None)[0]
 
-    def play_with_mask(self, state: GoState, action: int) -> tuple[GoState, np.ndarray]:
-        """:meth:`play` and the new position's legal mask from one compiled call."""
-        new, mask = self._play(state, action, True)
-        return new, (mask if mask is not None else self.legal_mask(new))
+    def play_with_mask(self, state: GoState, action: int, out: np.ndarray | None = None) -> tuple[GoState, np.ndarray]:
+        """:meth:`play` and the new position's legal mask (into ``out`` when given) from one
+        compiled call."""
+        mask = np.empty(self._n + 1, dtype=np.bool_) if out is None else out
+        new, done = self._play(state, action, mask)
+        if not done:
+            mask[:] = self.legal_mask(new)
+        return new, mask
 
-    def _play(self, state: GoState, action: int, with_mask: bool) -> tuple[GoState, np.ndarray | None]:
-        """The new state and, when ``with_mask`` and the kernel computed it, its legal mask."""
+    def _play(self, state: GoState, action: int, mask: np.ndarray | None) -> tuple[GoState, bool]:
+        """The new state, and True when ``mask`` (if given) was filled with its legal mask."""
         try:
             a = int(action)
         except (TypeError, ValueError):
@@ -270,17 +275,18 @@ class GoGame(Game[GoState]):
             history[0] = state.board
             history[1:] = state.history[:-1]
             return GoState(history, state.groups, state.seen, state.key, state.key,
-                           1 - state.player, state.passes + 1, state.moves + 1), None
+                           1 - state.player, state.passes + 1, state.moves + 1), False
         if not 0 <= a < self._n:
             raise IllegalMoveError(
                 f"action {a} is off the {self.size}x{self.size} board (points 0..{self._n - 1}, "
                 f"pass {self._n})")
         # the new position is terminal (so its mask all False) only at the move cap
-        with_mask = with_mask and state.moves + 1 < self._max_moves
+        with_mask = mask is not None and state.moves + 1 < self._max_moves
         history = np.empty_like(state.history)
         groups = np.empty_like(state.groups)
         seen = np.empty(state.seen.shape[0] + 1, dtype=np.int64)
-        mask = np.empty(self._n + 1 if with_mask else 0, dtype=np.bool_)
+        if not with_mask:
+            mask = self._no_mask
         st, key, grew = K.play_history(
             state.history, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
             self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, history, groups, seen, mask)
@@ -291,7 +297,7 @@ class GoGame(Game[GoState]):
             raise IllegalMoveError(
                 f"move {self.action_to_text(a)} by {'BW'[state.player]} is illegal: {reason}")
         return (GoState(history, groups, seen if grew else state.seen, int(key), state.key, 1 - state.player, 0,
-                        state.moves + 1), mask if with_mask else None)
+                        state.moves + 1), with_mask)
 
     def score(self, state: GoState) -> tuple[int, int]:
         """Tromp–Taylor area (black, white): stones plus empty points reaching only that

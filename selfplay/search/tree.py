@@ -298,7 +298,6 @@ class BatchedSearch:
         new = np.flatnonzero(self._path_leaf[lo:hi] < 0) + lo
         if not new.size:
             return
-        t0 = time.perf_counter()
         new = new[np.argsort(self._path_len[new], kind="stable")]
         last = self._path_start[new] + self._path_len[new] - 1
         parents = self._edge_node[last]
@@ -306,21 +305,19 @@ class BatchedSearch:
         slots = self._path_slot[new]
         created = self.base[slots] + self.count[slots]
         self.count[slots] += 1
-        game, states = self.game, self.states
-        mask_nodes: list[int] = []
-        masks: list[np.ndarray] = []
-        for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
-            mask = self._describe_state(node, *game.play_with_mask(states[par], act))
-            if mask is not None:
-                mask_nodes.append(node)
-                masks.append(mask)
-                rnd.eval_nodes.append(node)
-                rnd.eval_slots.append(s)
-        rnd.rules_seconds += time.perf_counter() - t0
         self._clear_rows(created)
         self.child[parents, actions] = created
-        if masks:
-            self.legal[mask_nodes] = np.stack(masks)
+        game, states, legal = self.game, self.states, self.legal
+        t0 = time.perf_counter()
+        for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
+            # the game writes the child's legal mask straight into its row
+            child, mask = game.play_with_mask(states[par], act, legal[node])
+            if self._describe_state(node, child, mask) is not None:
+                rnd.eval_nodes.append(node)
+                rnd.eval_slots.append(s)
+            else:
+                legal[node] = False
+        rnd.rules_seconds += time.perf_counter() - t0
         self._path_leaf[new] = created
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
