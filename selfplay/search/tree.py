@@ -6,26 +6,40 @@ masked):
 
 - ``P[i]`` priors, ``N[i]`` edge visit counts, ``W[i]`` summed backed-up values of each edge from
   the view of the player to move at node ``i``, ``child[i]`` the child node id (-1 = not created),
-  ``legal[i]`` the legal-move mask;
-- scalars ``to_play[i]``, ``terminal[i]``, ``value[i]`` (network value, or the exact result for a
-  terminal node, from the view of the player to move at ``i``) and ``pending[i]`` (waiting for
-  evaluation in the current round);
+  ``legal[i]`` the legal-move mask, ``Q[i]`` = W / N where visited, the first-play-urgency value
+  where not and -inf where illegal (kept up to date, so PUCT needs no division), and for the
+  Gumbel rule ``logP[i]`` the log priors;
+- scalars ``visits[i]`` (the sum of ``N[i]``), ``to_play[i]``, ``terminal[i]``, ``value[i]``
+  (network value, or the exact result for a terminal node, from the view of the player to move
+  at ``i``) and ``pending[i]`` (waiting for evaluation in the current round);
 - the game state itself, in a Python list (states are immutable; ``game.play`` returns new ones).
 
-Children are created lazily, when a simulation first takes their edge.
+Children are created lazily, when a simulation first takes their edge. Per slot (numpy arrays
+over the slots): ``base`` (first row of its region), ``count`` (rows used), ``root``, and the
+search state (``searching``, ``budget_left``, ...).
 
-A round. Every searching slot descends from its root ``leaves_per_game`` times. Descent is
-vectorised across slots: at each depth one PUCT (or Gumbel non-root) selection over the rows of
-all the nodes the slots are at. A descent stops at a new edge (the child is created: one
-``game.play``), a terminal node or a node already waiting for evaluation (a collision: it gets
-the same evaluation). With several leaves per slot, each finished descent puts a virtual loss on
-its edges so the next descent of the same slot looks elsewhere. All waiting leaves of all slots
-go to the evaluator in ONE batched call, then every path is backed up at once (``np.add.at``),
-the value negated on the way up wherever the player to move differs from the leaf's.
+A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
+
+1. ``_descend`` — one compiled call (:func:`selfplay.search.kernels.descend`) walks from the root
+   of every slot that may simulate now, choosing with the root search's forced action at the
+   root (Gumbel) and the below-root rule elsewhere, and stops at a new edge, a terminal node or a
+   node already waiting for evaluation (a collision: it shares that evaluation). With
+   ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and the step runs
+   once per leaf;
+2. ``_expand`` — the children at new edges are created (one ``game.play_with_mask`` each, the
+   rules' only per-node Python call), shallowest first;
+3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call;
+4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
+   along its path, negated wherever the player to move differs from the leaf's, and removes the
+   virtual losses.
+
+What happens at the root — noise, forced actions, when a search is complete, the policy target —
+belongs to the root search (:class:`selfplay.search.root.RootSearch`; PUCT in
+:mod:`selfplay.search.puct`, Gumbel in :mod:`selfplay.search.gumbel`).
 
 Reuse. After a move the chosen child's subtree is copied to the front of the slot's region
-(breadth first, child ids remapped) and becomes the new root; the rest is dropped. A subtree that
-would not leave room for a full search is dropped too.
+(compiled: in ascending node order, child ids remapped) and becomes the new root; the rest is
+dropped. A subtree that would not leave room for a full search is dropped too.
 """
 
 from __future__ import annotations
