@@ -109,9 +109,10 @@ def _contains(seen, n, key):
     return False
 
 
-@njit(cache=True)
-def _insert_sorted(seen, key):
-    """New sorted array with ``key`` added (``seen`` itself when already present)."""
+@njit(cache=True, inline="always")
+def _insert_into(seen, key, out):
+    """Write the sorted ``seen`` with ``key`` added into ``out`` (length len(seen) + 1); return
+    False, leaving ``out`` untouched, when ``key`` is already in ``seen``."""
     n = seen.shape[0]
     lo, hi = 0, n
     while lo < hi:
@@ -121,12 +122,18 @@ def _insert_sorted(seen, key):
         else:
             hi = mid
     if lo < n and seen[lo] == key:
-        return seen
-    out = np.empty(n + 1, dtype=np.int64)
+        return False
     out[:lo] = seen[:lo]
     out[lo] = key
     out[lo + 1:] = seen[lo:]
-    return out
+    return True
+
+
+@njit(cache=True)
+def _insert_sorted(seen, key):
+    """New sorted array with ``key`` added (``seen`` itself when already present)."""
+    out = np.empty(seen.shape[0] + 1, dtype=np.int64)
+    return out if _insert_into(seen, key, out) else seen
 
 
 # ---- group surgery ------------------------------------------------------------------------------
@@ -397,24 +404,10 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
     st, nk, _ = play_inplace(board, out_grp, key, color, p, allow_suicide, nbr, zob, nwords)
     if st != OK:
         return st, key, False
-    n = seen.shape[0]
-    if _repeats(nk, seen, n, prev_key, superko):
+    if _repeats(nk, seen, seen.shape[0], prev_key, superko):
         return REPEAT, key, False
-    lo, hi = 0, n
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if seen[mid] < nk:
-            lo = mid + 1
-        else:
-            hi = mid
-    grew = not (lo < n and seen[lo] == nk)
-    if grew:
-        out_seen[:lo] = seen[:lo]
-        out_seen[lo] = nk
-        out_seen[lo + 1:] = seen[lo:]
-        keys = out_seen
-    else:
-        keys = seen
+    grew = _insert_into(seen, nk, out_seen)
+    keys = out_seen if grew else seen
     if out_mask.shape[0] > 0:
         legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
                      out_mask)
