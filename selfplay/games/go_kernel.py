@@ -129,13 +129,6 @@ def _insert_into(seen, key, out):
     return True
 
 
-@njit(cache=True)
-def _insert_sorted(seen, key):
-    """New sorted array with ``key`` added (``seen`` itself when already present)."""
-    out = np.empty(seen.shape[0] + 1, dtype=np.int64)
-    return out if _insert_into(seen, key, out) else seen
-
-
 # ---- group surgery ------------------------------------------------------------------------------
 
 @njit(cache=True)
@@ -366,27 +359,11 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
 
 
 @njit(cache=True)
-def play_copy(board, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
-              nwords):
-    """Play a ``color`` stone at ``p`` on copies. Returns (status, key, board, grp, seen); on a
-    non-OK status the inputs are returned unchanged."""
-    if board[p] != 0:
-        return OCCUPIED, key, board, grp, seen
-    nb = board.copy()
-    ng = grp.copy()
-    st, nk, _ = play_inplace(nb, ng, key, color, p, allow_suicide, nbr, zob, nwords)
-    if st != OK:
-        return st, key, board, grp, seen
-    if _repeats(nk, seen, seen.shape[0], prev_key, superko):
-        return REPEAT, key, board, grp, seen
-    return OK, nk, nb, ng, _insert_sorted(seen, nk)
-
-
-@njit(cache=True)
 def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
                  nwords, out_hist, out_grp, out_seen, out_mask):
-    """:func:`play_copy` on a position kept with its history, into arrays the caller allocated
-    (allocating them here and handing them back to Python cost more than the move itself).
+    """Play a ``color`` stone at ``p`` on a position kept with its history, into arrays the
+    caller allocated (allocating them here and handing them back to Python cost more than the
+    move itself).
 
     ``hist`` int8 (H, N): the current board first, then the boards before it (zero rows before
     the game's start). ``out_hist`` (H, N) receives the new board first and the older boards
