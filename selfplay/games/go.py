@@ -71,12 +71,11 @@ class GoState:
     ``player`` 0 (Black) or 1 (White) to move; ``passes`` consecutive passes just played;
     ``moves`` moves played."""
 
-    __slots__ = ("history", "board", "groups", "seen", "key", "prev_key", "player", "passes", "moves")
+    __slots__ = ("history", "groups", "seen", "key", "prev_key", "player", "passes", "moves")
 
     def __init__(self, history: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
                  prev_key: int, player: int, passes: int, moves: int) -> None:
         self.history = history
-        self.board = history[0]
         self.groups = groups
         self.seen = seen
         self.key = key
@@ -84,6 +83,12 @@ class GoState:
         self.player = player
         self.passes = passes
         self.moves = moves
+
+    @property
+    def board(self) -> np.ndarray:
+        """int8 (N,): the current board, ``history[0]`` (a view made on each access; the search's
+        hot path reads the history array directly)."""
+        return self.history[0]
 
     def __repr__(self) -> str:
         return (f"GoState(moves={self.moves}, to_play={'BW'[self.player]}, passes={self.passes}, "
