@@ -22,7 +22,7 @@ from numba import njit
 
 from selfplay.search.root import RULE_GUMBEL, RULE_PUCT
 
-__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "descend", "move_rows", "subtree_order", "puct_pick_rows",
+__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "attach_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
            "gumbel_pick_rows"]
 
 _ONE = np.float32(1.0)
@@ -190,6 +190,38 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
                 N[node, a] = np.rint(N[node, a])
                 visits[node] = np.rint(visits[node])
             Q[node, a] = W[node, a] / N[node, a]
+
+
+@njit(cache=True)
+def attach_children(created, parents, actions, P, N, W, visits, legal, child):
+    """Make node ``created[j]`` the child of ``parents[j]`` through ``actions[j]``, its rows
+    cleared (no priors, visits, values, children or legal moves yet)."""
+    for j in range(created.size):
+        node = created[j]
+        for a in range(P.shape[1]):
+            P[node, a] = 0.0
+            N[node, a] = 0.0
+            W[node, a] = 0.0
+            legal[node, a] = False
+            child[node, a] = -1
+        visits[node] = 0.0
+        child[parents[j], actions[j]] = node
+
+
+@njit(cache=True)
+def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, Q, legal, pending):
+    """Write an evaluation into the tree: priors and value of each node; Q = value - penalty
+    (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending."""
+    penalty = np.float32(unvisited_value_penalty)
+    for i in range(nodes.size):
+        node = nodes[i]
+        v = values[i]
+        value[node] = v
+        q = v - penalty
+        for a in range(P.shape[1]):
+            P[node, a] = priors[i, a]
+            Q[node, a] = q if legal[node, a] else -np.inf
+        pending[node] = False
 
 
 @njit(cache=True)

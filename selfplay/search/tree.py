@@ -319,8 +319,8 @@ class BatchedSearch:
         slots = self._path_slot[new]
         created = self.base[slots] + self.count[slots]
         self.count[slots] += 1
-        self._clear_rows(created)
-        self.child[parents, actions] = created
+        kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
+                                self.child)
         game, states, legal = self.game, self.states, self.legal
         t0 = time.perf_counter()
         for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
@@ -345,13 +345,13 @@ class BatchedSearch:
         priors, values = evaluator.evaluate(batch)
         t_net = time.perf_counter() - t0
         _check_evaluation(evaluator, priors, values, nodes.size, self.A)
-        self.P[nodes] = priors
-        self.value[nodes] = values
-        self.Q[nodes] = np.where(self.legal[nodes], (values - self.config.unvisited_value_penalty)[:, None],
-                                 -np.inf).astype(np.float32)
+        # the evaluator's contract is float32; anything else is rounded to it here
+        kernels.store_evaluations(nodes, np.ascontiguousarray(priors, dtype=np.float32),
+                                  np.ascontiguousarray(values, dtype=np.float32), self.config.unvisited_value_penalty,
+                                  self.P, self.value, self.Q, self.legal, self.pending)
         if self._rule == RULE_GUMBEL:
+            # numpy's float32 log, as the formula's reference computes it
             self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
-        self.pending[nodes] = False
         self.times.evals += nodes.size
         self.times.batches += 1
         return t_net
