@@ -161,6 +161,7 @@ class BatchedSearch:
         self.times = SearchTimes()
         self._leaves = config.leaves_per_game
         self._vl = float(config.virtual_loss) if config.leaves_per_game > 1 else 0.0
+        self._max_moves = game.max_moves
         # edge and path buffers of one round: a path never has more edges than its tree has nodes
         paths = self._leaves * slots
         self._edge_node = np.zeros(paths * C, dtype=np.int64)
@@ -172,24 +173,28 @@ class BatchedSearch:
         self._no_force = np.full(slots, -1, dtype=np.int64)
 
     # ---- node helpers ----------------------------------------------------------------------
-    def _describe_state(self, node: int, state: Any, mask: np.ndarray | None = None) -> np.ndarray | None:
-        """Fill a node's scalars from its state; return its legal mask (``mask`` if given, else
-        the game's) if it needs evaluation."""
+    def _terminal_value(self, state: Any, mover: int) -> float | None:
+        """None when ``state`` needs evaluation; else its exact value for ``mover``: the game's
+        result, or 0 (a draw) at the move cap when the rules do not end the game there."""
         g = self.game
-        self.states[node] = state
-        tp = g.to_play(state)
-        self.to_play[node] = tp
         if g.is_terminal(state):
-            self.terminal[node] = True
-            self.value[node] = g.value_for_mover(state, tp)
+            return g.value_for_mover(state, mover)
+        if g.move_count(state) >= self._max_moves:
+            return 0.0
+        return None
+
+    def _describe_state(self, node: int, state: Any) -> np.ndarray | None:
+        """Fill a node's scalars from its state; return its legal mask if it needs evaluation."""
+        self.states[node] = state
+        tp = self.game.to_play(state)
+        self.to_play[node] = tp
+        exact = self._terminal_value(state, tp)
+        self.terminal[node] = exact is not None
+        if exact is not None:
+            self.value[node] = exact
             return None
-        if g.move_count(state) >= g.max_moves:
-            self.terminal[node] = True
-            self.value[node] = 0.0
-            return None
-        self.terminal[node] = False
         self.pending[node] = True
-        return g.legal_mask(state) if mask is None else mask
+        return self.game.legal_mask(state)
 
     def _clear_rows(self, nodes: np.ndarray) -> None:
         self.N[nodes] = 0.0
@@ -321,17 +326,33 @@ class BatchedSearch:
         self.count[slots] += 1
         kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
                                 self.child)
-        game, states, legal = self.game, self.states, self.legal
+        play, to_play = self.game.play_with_mask, self.game.to_play
+        states, legal = self.states, self.legal
+        movers: list[int] = []
+        exact: list[tuple[int, float]] = []
         t0 = time.perf_counter()
         for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
             # the game writes the child's legal mask straight into its row
-            child, mask = game.play_with_mask(states[par], act, legal[node])
-            if self._describe_state(node, child, mask) is not None:
+            child, _ = play(states[par], act, legal[node])
+            states[node] = child
+            mover = to_play(child)
+            movers.append(mover)
+            value = self._terminal_value(child, mover)
+            if value is None:
                 rnd.eval_nodes.append(node)
                 rnd.eval_slots.append(s)
             else:
-                legal[node] = False
+                exact.append((node, value))
         rnd.rules_seconds += time.perf_counter() - t0
+        self.to_play[created] = movers
+        self.terminal[created] = False
+        self.pending[created] = True
+        if exact:
+            done = np.array([n for n, _ in exact], dtype=np.int64)
+            self.terminal[done] = True
+            self.pending[done] = False
+            self.value[done] = [v for _, v in exact]
+            legal[done] = False
         self._path_leaf[new] = created
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
