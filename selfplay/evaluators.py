@@ -53,7 +53,7 @@ class LeafBatch:
 
     def histories(self) -> np.ndarray:
         """int8 (N, history_length, *compact_shape): the network's compact input boards."""
-        return np.stack([self.game.compact_history(s) for s in self.states])
+        return self.game.compact_histories(self.states)
 
     def planes(self) -> np.ndarray:
         """float32 (N, *input_shape): the network input."""

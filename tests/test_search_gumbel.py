@@ -165,7 +165,7 @@ def test_sequential_halving_matches_the_paper(outcomes, n, m, seed):
     chosen, N, spent = paper_sequential_halving(g, logits, outcomes, n, m_eff, 50.0, 1.0)
     assert res.chosen == chosen
     np.testing.assert_array_equal(res.visits, np.array(N, dtype=np.float32))
-    assert bs.slots[0].phase_visits == spent
+    assert bs.variant.phase_visits[0] == spent
     assert sum(spent) == n == res.visits.sum()
 
 

@@ -247,8 +247,8 @@ def test_tree_bookkeeping_stays_consistent_across_rounds_and_reuse(algorithm):
     for _ in range(6):
         w.step()
         tree = w._tree
-        for sl in tree.slots:
-            nodes = np.arange(sl.base, sl.base + sl.count)
+        for base, count in zip(tree.base.tolist(), tree.count.tolist()):
+            nodes = np.arange(base, base + count)
             N, W, Q = tree.N[nodes], tree.W[nodes], tree.Q[nodes]
             assert np.all(N == np.round(N)) and np.all(N >= 0)
             np.testing.assert_allclose(tree.visits[nodes], N.sum(axis=1))
@@ -259,7 +259,7 @@ def test_tree_bookkeeping_stays_consistent_across_rounds_and_reuse(algorithm):
             ch = tree.child[nodes]
             for i, a in zip(*np.nonzero(ch >= 0)):
                 c = ch[i, a]
-                assert sl.base <= c < sl.base + sl.count
+                assert base <= c < base + count
                 if tree.terminal[c]:
                     assert tree.visits[c] == 0
                 else:   # every simulation through the edge either stopped at c or went on below it

@@ -109,6 +109,17 @@ class Game(abc.ABC, Generic[State]):
     def play(self, state: State, action: int) -> State:
         """Return the state after ``action``; raise IllegalMoveError if it is not legal."""
 
+    def play_with_mask(self, state: State, action: int, out: np.ndarray | None = None) -> tuple[State, np.ndarray]:
+        """``play(state, action)`` and the new state's ``legal_mask`` (written into ``out``, a
+        bool (num_actions,) array, when given); a game may compute both in one call (the search
+        expands every new node this way)."""
+        new = self.play(state, action)
+        mask = self.legal_mask(new)
+        if out is None:
+            return new, mask
+        out[:] = mask
+        return new, out
+
     @abc.abstractmethod
     def is_terminal(self, state: State) -> bool:
         """True when the game is over."""
@@ -141,6 +152,11 @@ class Game(abc.ABC, Generic[State]):
         out = np.zeros((self.history_length, *self.compact_shape), dtype=np.int8)
         out[0] = self.compact(state)
         return out
+
+    def compact_histories(self, states: Sequence[State]) -> np.ndarray:
+        """:meth:`compact_history` of many states stacked: int8 (len(states), history_length,
+        *compact_shape). Games may override it with a faster batched form."""
+        return np.stack([self.compact_history(s) for s in states])
 
     @abc.abstractmethod
     def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:

@@ -24,7 +24,7 @@ kernel in :mod:`selfplay.games.go_kernel`; no per-move flood fill.
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+from typing import Any, Iterable, Sequence
 
 import numpy as np
 
@@ -63,19 +63,19 @@ def _splitmix64(seed: int, count: int) -> list[int]:
 class GoState:
     """One Go position with everything the rules need; never changed after creation.
 
-    ``board`` int8 (N,), ``groups`` int64 group table and ``seen`` sorted int64 keys of every
-    board position so far (see :mod:`selfplay.games.go_kernel`); ``key`` the board's Zobrist
-    key, ``prev_key`` the key of the position before the last move; ``player`` 0 (Black) or
-    1 (White) to move; ``passes`` consecutive passes just played; ``moves`` moves played;
-    ``boards`` the last few boards (current first) for the network's history planes."""
+    ``history`` int8 (H, N): the current board first, then the boards before it (zero rows
+    before the game's start; H = the game's ``history`` option), what the network's history
+    planes are built from; ``board`` is ``history[0]``. ``groups`` int64 group table and ``seen``
+    sorted int64 keys of every board position so far (see :mod:`selfplay.games.go_kernel`);
+    ``key`` the board's Zobrist key, ``prev_key`` the key of the position before the last move;
+    ``player`` 0 (Black) or 1 (White) to move; ``passes`` consecutive passes just played;
+    ``moves`` moves played."""
 
-    __slots__ = ("board", "groups", "seen", "key", "prev_key", "player", "passes", "moves",
-                 "boards")
+    __slots__ = ("history", "groups", "seen", "key", "prev_key", "player", "passes", "moves")
 
-    def __init__(self, board: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
-                 prev_key: int, player: int, passes: int, moves: int,
-                 boards: tuple[np.ndarray, ...]) -> None:
-        self.board = board
+    def __init__(self, history: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
+                 prev_key: int, player: int, passes: int, moves: int) -> None:
+        self.history = history
         self.groups = groups
         self.seen = seen
         self.key = key
@@ -83,7 +83,12 @@ class GoState:
         self.player = player
         self.passes = passes
         self.moves = moves
-        self.boards = boards
+
+    @property
+    def board(self) -> np.ndarray:
+        """int8 (N,): the current board, ``history[0]`` (a view made on each access; the search's
+        hot path reads the history array directly)."""
+        return self.history[0]
 
     def __repr__(self) -> str:
         return (f"GoState(moves={self.moves}, to_play={'BW'[self.player]}, passes={self.passes}, "
@@ -155,12 +160,13 @@ class GoGame(Game[GoState]):
         zob[2] = keys[n:2 * n]
         self._zob = zob
         self._side_key = keys[2 * n]
+        self._no_mask = np.zeros(0, dtype=np.bool_)  # "no mask wanted" for the play kernel
         # "previous position" of a state that has none (setup): a key no board will have
         self._no_position = _splitmix64(0x0B5E55ED, 1)[0]
         empty = np.zeros(n, dtype=np.int8)
         groups, _ = K.build_groups(empty, nbr, zob, self._nwords)
-        self._initial = GoState(empty, groups, np.zeros(1, dtype=np.int64), 0,
-                                self._no_position, 0, 0, 0, (empty,))
+        self._initial = GoState(np.zeros((history, n), dtype=np.int8), groups, np.zeros(1, dtype=np.int64), 0,
+                                self._no_position, 0, 0, 0)
 
     # ---- shape facts ---------------------------------------------------------------------------
     @property
@@ -224,8 +230,10 @@ class GoGame(Game[GoState]):
             raise IllegalMoveError("setup stones leave a group without liberties")
         if to_play not in (0, 1):
             raise IllegalMoveError(f"to_play={to_play!r} must be 0 (Black) or 1 (White)")
-        return GoState(board, groups, np.array([key], dtype=np.int64), int(key),
-                       self._no_position, int(to_play), 0, 0, (board,))
+        history = np.zeros((self.history, self._n), dtype=np.int8)
+        history[0] = board
+        return GoState(history, groups, np.array([key], dtype=np.int64), int(key),
+                       self._no_position, int(to_play), 0, 0)
 
     def to_play(self, state: GoState) -> int:
         return state.player
@@ -247,6 +255,19 @@ class GoGame(Game[GoState]):
         return out
 
     def play(self, state: GoState, action: int) -> GoState:
+        return self._play(state, action, None)[0]
+
+    def play_with_mask(self, state: GoState, action: int, out: np.ndarray | None = None) -> tuple[GoState, np.ndarray]:
+        """:meth:`play` and the new position's legal mask (into ``out`` when given) from one
+        compiled call."""
+        mask = np.empty(self._n + 1, dtype=np.bool_) if out is None else out
+        new, done = self._play(state, action, mask)
+        if not done:
+            mask[:] = self.legal_mask(new)
+        return new, mask
+
+    def _play(self, state: GoState, action: int, mask: np.ndarray | None) -> tuple[GoState, bool]:
+        """The new state, and True when ``mask`` (if given) was filled with its legal mask."""
         try:
             a = int(action)
         except (TypeError, ValueError):
@@ -254,27 +275,34 @@ class GoGame(Game[GoState]):
         if state.passes >= 2 or state.moves >= self._max_moves:
             raise IllegalMoveError(
                 f"the game is over; move {self._safe_text(a)} by {'BW'[state.player]} cannot be played")
-        h = self.history
         if a == self._pass:
-            boards = (state.board,) + state.boards[:h - 1]
-            return GoState(state.board, state.groups, state.seen, state.key, state.key,
-                           1 - state.player, state.passes + 1, state.moves + 1, boards)
+            history = np.empty_like(state.history)
+            history[0] = state.board
+            history[1:] = state.history[:-1]
+            return GoState(history, state.groups, state.seen, state.key, state.key,
+                           1 - state.player, state.passes + 1, state.moves + 1), False
         if not 0 <= a < self._n:
             raise IllegalMoveError(
                 f"action {a} is off the {self.size}x{self.size} board (points 0..{self._n - 1}, "
                 f"pass {self._n})")
-        st, key, board, groups, seen = K.play_copy(
-            state.board, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
-            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords)
+        # the new position is terminal (so its mask all False) only at the move cap
+        with_mask = mask is not None and state.moves + 1 < self._max_moves
+        history = np.empty_like(state.history)
+        groups = np.empty_like(state.groups)
+        seen = np.empty(state.seen.shape[0] + 1, dtype=np.int64)
+        if not with_mask:
+            mask = self._no_mask
+        st, key, grew = K.play_history(
+            state.history, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
+            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, history, groups, seen, mask)
         if st != K.OK:
             reason = _STATUS_TEXT[st]
             if st == K.REPEAT and not self.superko:
                 reason = "it retakes a ko at once (recreates the previous board position)"
             raise IllegalMoveError(
                 f"move {self.action_to_text(a)} by {'BW'[state.player]} is illegal: {reason}")
-        boards = (board,) + state.boards[:h - 1]
-        return GoState(board, groups, seen, int(key), state.key, 1 - state.player, 0,
-                       state.moves + 1, boards)
+        return (GoState(history, groups, seen if grew else state.seen, int(key), state.key, 1 - state.player, 0,
+                        state.moves + 1), with_mask)
 
     def score(self, state: GoState) -> tuple[int, int]:
         """Tromp–Taylor area (black, white): stones plus empty points reaching only that
@@ -325,10 +353,13 @@ class GoGame(Game[GoState]):
         return state.board.reshape(self.size, self.size).copy()
 
     def compact_history(self, state: GoState) -> np.ndarray:
-        out = np.zeros((self.history, self.size, self.size), dtype=np.int8)
-        for i, b in enumerate(state.boards):
-            out[i] = b.reshape(self.size, self.size)
-        return out
+        return state.history.reshape(self.history, self.size, self.size).copy()
+
+    def compact_histories(self, states: Sequence[GoState]) -> np.ndarray:
+        if not states:
+            return np.zeros((0, self.history, self.size, self.size), dtype=np.int8)
+        # concatenate, not stack: stack adds an axis to every array first (several times slower)
+        return np.concatenate([s.history for s in states]).reshape(len(states), self.history, self.size, self.size)
 
     def planes_from_compact(self, boards: np.ndarray, to_play: np.ndarray) -> np.ndarray:
         """Planes 2i and 2i+1: the side to move's and the opponent's stones on board i (0 is
@@ -339,12 +370,8 @@ class GoGame(Game[GoState]):
         if boards.shape[1:] != (h, self.size, self.size):
             raise ValueError(f"boards of shape {boards.shape} do not fit go {self.size}x{self.size} "
                              f"with history {h}")
-        own = (to_play + 1)[:, None, None, None]
         planes = np.empty((n, 2 * h + 2, self.size, self.size), dtype=np.float32)
-        planes[:, 0:2 * h:2] = boards == own
-        planes[:, 1:2 * h:2] = (boards != 0) & (boards != own)
-        planes[:, 2 * h] = (to_play == 0)[:, None, None]
-        planes[:, 2 * h + 1] = 1.0
+        K.history_planes(np.ascontiguousarray(boards, dtype=np.int8), np.ascontiguousarray(to_play), planes)
         return planes
 
     # ---- symmetry ------------------------------------------------------------------------------

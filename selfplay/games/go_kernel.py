@@ -109,9 +109,10 @@ def _contains(seen, n, key):
     return False
 
 
-@njit(cache=True)
-def _insert_sorted(seen, key):
-    """New sorted array with ``key`` added (``seen`` itself when already present)."""
+@njit(cache=True, inline="always")
+def _insert_into(seen, key, out):
+    """Write the sorted ``seen`` with ``key`` added into ``out`` (length len(seen) + 1); return
+    False, leaving ``out`` untouched, when ``key`` is already in ``seen``."""
     n = seen.shape[0]
     lo, hi = 0, n
     while lo < hi:
@@ -121,12 +122,11 @@ def _insert_sorted(seen, key):
         else:
             hi = mid
     if lo < n and seen[lo] == key:
-        return seen
-    out = np.empty(n + 1, dtype=np.int64)
+        return False
     out[:lo] = seen[:lo]
     out[lo] = key
     out[lo + 1:] = seen[lo:]
-    return out
+    return True
 
 
 # ---- group surgery ------------------------------------------------------------------------------
@@ -359,20 +359,59 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
 
 
 @njit(cache=True)
-def play_copy(board, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
-              nwords):
-    """Play a ``color`` stone at ``p`` on copies. Returns (status, key, board, grp, seen); on a
-    non-OK status the inputs are returned unchanged."""
-    if board[p] != 0:
-        return OCCUPIED, key, board, grp, seen
-    nb = board.copy()
-    ng = grp.copy()
-    st, nk, _ = play_inplace(nb, ng, key, color, p, allow_suicide, nbr, zob, nwords)
+def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
+                 nwords, out_hist, out_grp, out_seen, out_mask):
+    """Play a ``color`` stone at ``p`` on a position kept with its history, into arrays the
+    caller allocated (allocating them here and handing them back to Python cost more than the
+    move itself).
+
+    ``hist`` int8 (H, N): the current board first, then the boards before it (zero rows before
+    the game's start). ``out_hist`` (H, N) receives the new board first and the older boards
+    shifted down, ``out_grp`` the new group table, ``out_seen`` (len(seen) + 1,) the sorted keys
+    with the new one; with a non-empty ``out_mask`` (N + 1,) the legal mask of the new position
+    for the opponent (pass legal). Returns (status, key, keys_grew): ``keys_grew`` False when
+    the new key was already in ``seen`` (then ``out_seen`` is unused: the set is ``seen``).
+    On a non-OK status the outputs mean nothing."""
+    if hist[0, p] != 0:
+        return OCCUPIED, key, False
+    out_hist[1:] = hist[:-1]
+    out_hist[0] = hist[0]
+    board = out_hist[0]
+    out_grp[:] = grp
+    st, nk, _ = play_inplace(board, out_grp, key, color, p, allow_suicide, nbr, zob, nwords)
     if st != OK:
-        return st, key, board, grp, seen
+        return st, key, False
     if _repeats(nk, seen, seen.shape[0], prev_key, superko):
-        return REPEAT, key, board, grp, seen
-    return OK, nk, nb, ng, _insert_sorted(seen, nk)
+        return REPEAT, key, False
+    grew = _insert_into(seen, nk, out_seen)
+    keys = out_seen if grew else seen
+    if out_mask.shape[0] > 0:
+        legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
+                     out_mask)
+        out_mask[hist.shape[1]] = True
+    return OK, nk, grew
+
+
+@njit(cache=True)
+def history_planes(boards, to_play, out):
+    """Network input planes from compact boards int8 (n, H, rows, cols) and the side to move
+    (n,), into float32 ``out`` (n, 2H + 2, rows, cols): planes 2i / 2i+1 the mover's / the
+    opponent's stones on board i, plane 2H ones when Black (player 0) is to move, plane 2H+1
+    ones."""
+    n, h, rows, cols = boards.shape
+    for i in range(n):
+        own = to_play[i] + 1
+        black = np.float32(1.0) if to_play[i] == 0 else np.float32(0.0)
+        for j in range(h):
+            for r in range(rows):
+                for c in range(cols):
+                    v = boards[i, j, r, c]
+                    out[i, 2 * j, r, c] = np.float32(1.0) if v == own else np.float32(0.0)
+                    out[i, 2 * j + 1, r, c] = np.float32(1.0) if v != 0 and v != own else np.float32(0.0)
+        for r in range(rows):
+            for c in range(cols):
+                out[i, 2 * h, r, c] = black
+                out[i, 2 * h + 1, r, c] = np.float32(1.0)
 
 
 # ---- whole-board helpers (setup positions, legality of a position, scoring) ---------------------

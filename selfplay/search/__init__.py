@@ -3,8 +3,10 @@
 
 - :mod:`selfplay.search.config` — :class:`SearchConfig`, every setting validated and described.
 - :mod:`selfplay.search.tree` — :class:`BatchedSearch`, the array-backed trees and the round loop.
-- :mod:`selfplay.search.puct` — PUCT selection, root Dirichlet noise, temperature move choice.
-- :mod:`selfplay.search.gumbel` — Gumbel top-m, sequential halving, completed Q, improved policy.
+- :mod:`selfplay.search.kernels` — the compiled round: descent, virtual loss, backup, subtree reuse.
+- :mod:`selfplay.search.root` — :class:`RootSearch`, the interface of a root search, and the registry.
+- :mod:`selfplay.search.puct` — PUCT selection, root Dirichlet noise, temperature move choice; PuctRoot.
+- :mod:`selfplay.search.gumbel` — Gumbel top-m, sequential halving, completed Q, improved policy; GumbelRoot.
 """
 
 from typing import Any

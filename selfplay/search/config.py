@@ -10,13 +10,14 @@ Danihelka et al. (2022), "Policy improvement by planning with Gumbel".
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Any
 
-from pydantic import ConfigDict, Field, ValidationError, model_validator
+from pydantic import ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from selfplay.config_model import ConfigModel
 from selfplay.errors import ConfigError
 from selfplay.games.base import Game
+from selfplay.search.root import VARIANTS
 
 
 class SearchConfig(ConfigModel):
@@ -24,9 +25,10 @@ class SearchConfig(ConfigModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    algorithm: Literal["puct", "gumbel"] = Field(
+    algorithm: str = Field(
         "puct", description="Root search: 'puct' (AlphaZero PUCT with Dirichlet noise and visit-count "
-        "targets) or 'gumbel' (Gumbel top-m sampling with sequential halving and improved-policy targets).")
+        "targets) or 'gumbel' (Gumbel top-m sampling with sequential halving and improved-policy targets); "
+        "any name registered in selfplay.search.root.VARIANTS.")
     simulations: int = Field(200, ge=1, le=1_000_000, description="Simulations (leaf evaluations) per move of a full search.")
     c_puct: float = Field(1.5, gt=0, description="PUCT exploration constant c in Q + c P sqrt(N) / (1 + n).")
     unvisited_value_penalty: float = Field(
@@ -61,6 +63,13 @@ class SearchConfig(ConfigModel):
     node_capacity_factor: float = Field(
         3.0, ge=1, le=64, description="Tree nodes kept per game, as a multiple of `simulations`; a reused subtree "
         "that would not fit with a full budget is dropped.")
+
+    @field_validator("algorithm")
+    @classmethod
+    def _known_algorithm(cls, name: str) -> str:
+        if name not in VARIANTS:
+            raise ValueError(f"unknown root search {name!r}; known: {', '.join(sorted(VARIANTS))}")
+        return name
 
     @model_validator(mode="after")
     def _consistent(self) -> "SearchConfig":

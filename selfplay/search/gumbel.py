@@ -20,14 +20,24 @@ Danihelka, Guez, Schrittwieser and Silver (2022), "Policy improvement by plannin
 - Non-root nodes use the paper's deterministic selection (Section 5):
   ``argmax_a pi'(a) - N(a) / (1 + sum_b N(b))`` with ``pi'`` the improved policy of that node.
 
-Functions below work on k rows (nodes) at once.
+Functions below work on k rows (nodes) at once; the tree's compiled descent
+(:mod:`selfplay.search.kernels`) computes the non-root selection node by node and is tested
+against :func:`gumbel_nonroot_select`. :class:`GumbelRoot` is the root search built from them.
 """
 
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+from selfplay.search.root import RULE_GUMBEL, RootSearch, RootTarget
+
+if TYPE_CHECKING:
+    from selfplay.games.base import Game
+    from selfplay.search.config import SearchConfig
+    from selfplay.search.tree import BatchedSearch
 
 _LOG_FLOOR = 1e-30
 
@@ -130,3 +140,105 @@ def top_m(gumbel: np.ndarray, logits: np.ndarray, legal: np.ndarray, m: int) -> 
     m = min(m, int(legal.sum()))
     order = np.argsort(-score, kind="stable")
     return order[:m]
+
+
+class GumbelRoot(RootSearch):
+    """Gumbel root search: top-m sampling, sequential halving over a queue of forced root
+    actions, the halving winner as the move and the improved policy as the target."""
+
+    below_root = RULE_GUMBEL
+
+    def __init__(self, config: SearchConfig, game: Game, slots: int) -> None:
+        super().__init__(config, game, slots)
+        A = game.num_actions
+        self.gumbel = np.zeros((slots, A))
+        self.logits = np.zeros((slots, A))
+        self.plan: list[list[tuple[int, int]]] = [[] for _ in range(slots)]
+        self.phase = np.zeros(slots, dtype=np.int64)
+        self.phase_actions: list[np.ndarray] = [np.zeros(0, dtype=np.int64)] * slots
+        self.leftover = np.zeros(slots, dtype=np.int64)
+        self.chosen = np.full(slots, -1, dtype=np.int64)
+        #: simulations given to each phase of the slot's current search (for tests and reports)
+        self.phase_visits: list[list[int]] = [[] for _ in range(slots)]
+        # root actions still to visit in this phase, in order: queue[s, qpos[s]:qlen[s]]
+        self.queue = np.zeros((slots, config.simulations), dtype=np.int64)
+        self.qpos = np.zeros(slots, dtype=np.int64)
+        self.qlen = np.zeros(slots, dtype=np.int64)
+
+    def start(self, tree: BatchedSearch, slot: int) -> None:
+        cfg = self.config
+        legal = tree.legal[tree.root[slot]]
+        budget = int(tree.budget[slot])
+        self.gumbel[slot] = g = tree.rngs[slot].gumbel(size=self.game.num_actions)
+        self.logits[slot] = logits = np.log(np.maximum(tree.root_prior[slot].astype(np.float64), 1e-30))
+        m = min(cfg.gumbel_sampled_moves, int(legal.sum()), budget)
+        considered = top_m(g, logits, legal, m)
+        self.plan[slot] = plan = halving_schedule(budget, len(considered))
+        self.leftover[slot] = budget - sum(c * p for c, p in plan)
+        self.phase[slot] = 0
+        self.phase_actions[slot] = considered
+        self.chosen[slot] = -1
+        self.phase_visits[slot] = []
+        self._fill_queue(slot)
+
+    def _fill_queue(self, slot: int) -> None:
+        plan = self.plan[slot]
+        phase = int(self.phase[slot])
+        count, per = plan[phase]
+        extra = int(self.leftover[slot]) if phase == len(plan) - 1 else 0
+        queue = phase_queue(self.phase_actions[slot][:count], per, extra)
+        self.queue[slot, :len(queue)] = queue
+        self.qpos[slot] = 0
+        self.qlen[slot] = len(queue)
+        self.phase_visits[slot].append(len(queue))
+
+    def ready(self, tree: BatchedSearch, slots: np.ndarray) -> np.ndarray:
+        return self.qpos[slots] < self.qlen[slots]
+
+    def forced_actions(self, tree: BatchedSearch, slots: np.ndarray) -> np.ndarray:
+        actions = self.queue[slots, self.qpos[slots]]
+        self.qpos[slots] += 1
+        return actions
+
+    def _end_phase(self, tree: BatchedSearch, slot: int) -> bool:
+        """Sequential halving: keep the better half of this phase's actions (True: the search
+        is complete and ``chosen`` holds the winner)."""
+        plan = self.plan[slot]
+        phase = int(self.phase[slot])
+        count, _ = plan[phase]
+        actions = self.phase_actions[slot][:count]
+        root = tree.root[slot]
+        scores = root_scores(self.gumbel[slot], self.logits[slot], tree.N[root].astype(np.float64),
+                             tree.W[root].astype(np.float64), self.config.gumbel_c_visit,
+                             self.config.gumbel_c_scale)[actions]
+        order = np.argsort(-scores, kind="stable")
+        if phase == len(plan) - 1:
+            self.chosen[slot] = int(actions[order[0]])
+            return True
+        self.phase[slot] = phase + 1
+        self.phase_actions[slot] = actions[order]
+        self._fill_queue(slot)
+        return False
+
+    def finished(self, tree: BatchedSearch, slots: np.ndarray) -> list[int]:
+        done = []
+        for s in slots[self.qpos[slots] >= self.qlen[slots]].tolist():
+            while self.qpos[s] >= self.qlen[s]:
+                if self._end_phase(tree, s):
+                    done.append(s)
+                    break
+        return done
+
+    def target(self, tree: BatchedSearch, slot: int) -> RootTarget:
+        root = tree.root[slot]
+        prior = tree.root_prior[slot][None].astype(np.float64)
+        visits = tree.N[root][None].astype(np.float64)
+        W = tree.W[root][None].astype(np.float64)
+        value = np.array([tree.value[root]], dtype=np.float64)
+        legal = tree.legal[root]
+        pi = improved_policy(prior, visits, W, legal[None], value, self.config.gumbel_c_visit,
+                             self.config.gumbel_c_scale)[0]
+        acts = np.flatnonzero(pi > 0)
+        cq = completed_q(prior, visits, W, value)[0]
+        root_value = float(np.sum(pi * np.where(legal, cq, 0.0)))
+        return RootTarget(acts, pi[acts].astype(np.float32), root_value, int(self.chosen[slot]))

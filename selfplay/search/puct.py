@@ -9,13 +9,22 @@ where Q is the mean backed-up value from the view of the player to move at s. We
 ``sqrt(max(1, sum_b N))`` so that the first visit of a fresh node follows the prior rather than
 the lowest index. Unvisited moves get the first-play-urgency value ``v(s) - unvisited_value_penalty``.
 
-Every function works on a batch of k nodes at once (rows), so that one call serves the nodes
-that all games in a worker are visiting at the same depth.
+The functions work on a batch of k nodes at once (rows). The tree's compiled descent
+(:mod:`selfplay.search.kernels`) computes the same selection node by node; these numpy forms are
+the reference it is tested against. :class:`PuctRoot` is the PUCT root search: noise on the root
+priors of full searches, the visit counts as policy target, the move chosen by the worker.
 """
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+
+from selfplay.search.root import RULE_PUCT, RootSearch, RootTarget
+
+if TYPE_CHECKING:
+    from selfplay.search.tree import BatchedSearch
 
 
 def puct_select(P: np.ndarray, N: np.ndarray, W: np.ndarray, legal: np.ndarray, node_value: np.ndarray,
@@ -67,3 +76,24 @@ def choose_by_visits(visits: np.ndarray, temperature: float, rng: np.random.Gene
     w = np.exp(logw - logw.max())
     w /= w.sum()
     return int(rng.choice(visits.size, p=w))
+
+
+class PuctRoot(RootSearch):
+    """AlphaZero's root: PUCT at the root as below it, Dirichlet noise on the root priors of full
+    searches, policy target = root visit counts, root value = mean of the root's evaluation and
+    every value backed up through it; the worker picks the move by temperature."""
+
+    below_root = RULE_PUCT
+
+    def start(self, tree: BatchedSearch, slot: int) -> None:
+        cfg = self.config
+        if tree.full[slot] and cfg.dirichlet_epsilon > 0:
+            root = tree.root[slot]
+            tree.P[root] = add_dirichlet_noise(tree.P[root], tree.legal[root], cfg.dirichlet_epsilon,
+                                               cfg.alpha_for(self.game), tree.rngs[slot])
+
+    def target(self, tree: BatchedSearch, slot: int) -> RootTarget:
+        root = tree.root[slot]
+        visits = tree.N[root]
+        acts = np.flatnonzero(visits > 0)
+        return RootTarget(acts, visits[acts].astype(np.float32), tree.root_value(slot))

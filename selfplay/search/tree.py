@@ -6,26 +6,40 @@ masked):
 
 - ``P[i]`` priors, ``N[i]`` edge visit counts, ``W[i]`` summed backed-up values of each edge from
   the view of the player to move at node ``i``, ``child[i]`` the child node id (-1 = not created),
-  ``legal[i]`` the legal-move mask;
-- scalars ``to_play[i]``, ``terminal[i]``, ``value[i]`` (network value, or the exact result for a
-  terminal node, from the view of the player to move at ``i``) and ``pending[i]`` (waiting for
-  evaluation in the current round);
+  ``legal[i]`` the legal-move mask, ``Q[i]`` = W / N where visited, the first-play-urgency value
+  where not and -inf where illegal (kept up to date, so PUCT needs no division), and for the
+  Gumbel rule ``logP[i]`` the log priors;
+- scalars ``visits[i]`` (the sum of ``N[i]``), ``to_play[i]``, ``terminal[i]``, ``value[i]``
+  (network value, or the exact result for a terminal node, from the view of the player to move
+  at ``i``) and ``pending[i]`` (waiting for evaluation in the current round);
 - the game state itself, in a Python list (states are immutable; ``game.play`` returns new ones).
 
-Children are created lazily, when a simulation first takes their edge.
+Children are created lazily, when a simulation first takes their edge. Per slot (numpy arrays
+over the slots): ``base`` (first row of its region), ``count`` (rows used), ``root``, and the
+search state (``searching``, ``budget_left``, ...).
 
-A round. Every searching slot descends from its root ``leaves_per_game`` times. Descent is
-vectorised across slots: at each depth one PUCT (or Gumbel non-root) selection over the rows of
-all the nodes the slots are at. A descent stops at a new edge (the child is created: one
-``game.play``), a terminal node or a node already waiting for evaluation (a collision: it gets
-the same evaluation). With several leaves per slot, each finished descent puts a virtual loss on
-its edges so the next descent of the same slot looks elsewhere. All waiting leaves of all slots
-go to the evaluator in ONE batched call, then every path is backed up at once (``np.add.at``),
-the value negated on the way up wherever the player to move differs from the leaf's.
+A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
+
+1. ``_descend`` — one compiled call (:func:`selfplay.search.kernels.descend`) walks from the root
+   of every slot that may simulate now, choosing with the root search's forced action at the
+   root (Gumbel) and the below-root rule elsewhere, and stops at a new edge, a terminal node or a
+   node already waiting for evaluation (a collision: it shares that evaluation). With
+   ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and the step runs
+   once per leaf;
+2. ``_expand`` — the children at new edges are created (one ``game.play_with_mask`` each, the
+   rules' only per-node Python call), shallowest first;
+3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call;
+4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
+   along its path, negated wherever the player to move differs from the leaf's, and removes the
+   virtual losses.
+
+What happens at the root — noise, forced actions, when a search is complete, the policy target —
+belongs to the root search (:class:`selfplay.search.root.RootSearch`; PUCT in
+:mod:`selfplay.search.puct`, Gumbel in :mod:`selfplay.search.gumbel`).
 
 Reuse. After a move the chosen child's subtree is copied to the front of the slot's region
-(breadth first, child ids remapped) and becomes the new root; the rest is dropped. A subtree that
-would not leave room for a full search is dropped too.
+(compiled: in ascending node order, child ids remapped) and becomes the new root; the rest is
+dropped. A subtree that would not leave room for a full search is dropped too.
 """
 
 from __future__ import annotations
@@ -40,9 +54,9 @@ import numpy as np
 from selfplay.errors import ConfigError, SnapshotError
 from selfplay.evaluators import Evaluator, LeafBatch
 from selfplay.games.base import Game
-from selfplay.search import gumbel as gb
+from selfplay.search import kernels
 from selfplay.search.config import SearchConfig
-from selfplay.search.puct import add_dirichlet_noise, puct_select_q
+from selfplay.search.root import RULE_GUMBEL, RootSearch, make_root_search
 
 
 @dataclass
@@ -72,32 +86,6 @@ class SearchResult:
 
 
 @dataclass
-class _Slot:
-    """Per-slot search bookkeeping."""
-
-    base: int
-    count: int = 0
-    root: int = -1
-    searching: bool = False
-    root_needs_eval: bool = False
-    budget: int = 0
-    budget_left: int = 0
-    full: bool = True
-    rng: np.random.Generator | None = None
-    root_prior: np.ndarray | None = None
-    # Gumbel root state
-    gumbel: np.ndarray | None = None
-    logits: np.ndarray | None = None
-    plan: list[tuple[int, int]] = field(default_factory=list)
-    phase: int = 0
-    phase_actions: np.ndarray | None = None
-    queue: list[int] = field(default_factory=list)
-    leftover: int = 0
-    chosen: int = -1
-    phase_visits: list[int] = field(default_factory=list)
-
-
-@dataclass
 class SearchTimes:
     """Seconds spent, cumulative: rules calls (play, legality, terminal tests), tree work
     (selection, backup, bookkeeping) and the evaluator."""
@@ -109,6 +97,20 @@ class SearchTimes:
     evals: int = 0
     batches: int = 0
     collisions: int = 0
+
+
+@dataclass
+class _Round:
+    """Work list of one round: the nodes waiting for evaluation (with their slots) and the
+    paths walked, in the edge buffers up to ``edges``; ``groups`` marks where each descent's
+    paths start (one descent per leaf per game)."""
+
+    eval_nodes: list[int] = field(default_factory=list)
+    eval_slots: list[int] = field(default_factory=list)
+    paths: int = 0
+    edges: int = 0
+    groups: list[int] = field(default_factory=lambda: [0])
+    rules_seconds: float = 0.0
 
 
 class BatchedSearch:
@@ -141,33 +143,58 @@ class BatchedSearch:
         self.value = np.zeros(total, dtype=np.float32)
         self.pending = np.zeros(total, dtype=bool)
         self.states: list[Any] = [None] * total
-        self._Nf = self.N.reshape(-1)
-        self._Wf = self.W.reshape(-1)
-        self._Qf = self.Q.reshape(-1)
-        self.slots = [_Slot(base=s * C) for s in range(slots)]
+        # per slot: region start, nodes used, root node, search state
+        self.base = np.arange(slots, dtype=np.int64) * C
+        self.count = np.zeros(slots, dtype=np.int64)
+        self.root = self.base.copy()
+        self.searching = np.zeros(slots, dtype=bool)
+        self.root_needs_eval = np.zeros(slots, dtype=bool)
+        self.budget = np.zeros(slots, dtype=np.int64)
+        self.budget_left = np.zeros(slots, dtype=np.int64)
+        self.full = np.ones(slots, dtype=bool)
+        self.rngs: list[np.random.Generator | None] = [None] * slots
+        self.root_prior = np.zeros((slots, A), dtype=np.float32)  # the root's priors before noise
+        self.variant: RootSearch = make_root_search(config, game, slots)
+        self._rule = self.variant.below_root
+        # log priors for the Gumbel rule below the root (numpy's float32 log, as the formula's)
+        self.logP = np.zeros((total, A) if self._rule == RULE_GUMBEL else (1, 1), dtype=np.float32)
         self.times = SearchTimes()
-        self._is_gumbel = config.algorithm == "gumbel"
         self._leaves = config.leaves_per_game
         self._vl = float(config.virtual_loss) if config.leaves_per_game > 1 else 0.0
+        self._max_moves = game.max_moves
+        # edge and path buffers of one round: a path never has more edges than its tree has nodes
+        paths = self._leaves * slots
+        self._edge_node = np.zeros(paths * C, dtype=np.int64)
+        self._edge_act = np.zeros(paths * C, dtype=np.int64)
+        self._path_start = np.zeros(paths, dtype=np.int64)
+        self._path_len = np.zeros(paths, dtype=np.int64)
+        self._path_leaf = np.zeros(paths, dtype=np.int64)
+        self._path_slot = np.zeros(paths, dtype=np.int64)
+        self._no_force = np.full(slots, -1, dtype=np.int64)
 
     # ---- node helpers ----------------------------------------------------------------------
+    def _terminal_value(self, state: Any, mover: int) -> float | None:
+        """None when ``state`` needs evaluation; else its exact value for ``mover``: the game's
+        result, or 0 (a draw) at the move cap when the rules do not end the game there."""
+        g = self.game
+        if g.is_terminal(state):
+            return g.value_for_mover(state, mover)
+        if g.move_count(state) >= self._max_moves:
+            return 0.0
+        return None
+
     def _describe_state(self, node: int, state: Any) -> np.ndarray | None:
         """Fill a node's scalars from its state; return its legal mask if it needs evaluation."""
-        g = self.game
         self.states[node] = state
-        tp = g.to_play(state)
+        tp = self.game.to_play(state)
         self.to_play[node] = tp
-        if g.is_terminal(state):
-            self.terminal[node] = True
-            self.value[node] = g.value_for_mover(state, tp)
+        exact = self._terminal_value(state, tp)
+        self.terminal[node] = exact is not None
+        if exact is not None:
+            self.value[node] = exact
             return None
-        if g.move_count(state) >= g.max_moves:
-            self.terminal[node] = True
-            self.value[node] = 0.0
-            return None
-        self.terminal[node] = False
         self.pending[node] = True
-        return g.legal_mask(state)
+        return self.game.legal_mask(state)
 
     def _clear_rows(self, nodes: np.ndarray) -> None:
         self.N[nodes] = 0.0
@@ -179,11 +206,10 @@ class BatchedSearch:
 
     def set_root(self, slot: int, state: Any) -> None:
         """Start a fresh tree at ``slot`` whose root is ``state`` (evaluated at the next round)."""
-        sl = self.slots[slot]
-        old = sl.count
+        old = int(self.count[slot])
+        node = int(self.base[slot])
         if old:
-            self.states[sl.base:sl.base + old] = [None] * old
-        node = sl.base
+            self.states[node:node + old] = [None] * old
         self._clear_rows(np.array([node]))
         t0 = time.perf_counter()
         mask = self._describe_state(node, state)
@@ -191,317 +217,195 @@ class BatchedSearch:
         self.pending[node] = False  # the round that evaluates the root marks it
         if mask is not None:
             self.legal[node] = mask
-        sl.count = 1
-        sl.root = node
-        sl.root_needs_eval = mask is not None
-        sl.searching = False
+        self.count[slot] = 1
+        self.root[slot] = node
+        self.root_needs_eval[slot] = mask is not None
+        self.searching[slot] = False
 
     def root_state(self, slot: int) -> Any:
-        return self.states[self.slots[slot].root]
+        return self.states[self.root[slot]]
 
     def root_is_terminal(self, slot: int) -> bool:
-        return bool(self.terminal[self.slots[slot].root])
+        return bool(self.terminal[self.root[slot]])
 
     def root_legal(self, slot: int) -> np.ndarray:
-        return self.legal[self.slots[slot].root].copy()
+        return self.legal[self.root[slot]].copy()
 
     # ---- starting a search -----------------------------------------------------------------
     def begin(self, slot: int, budget: int, full: bool, rng: np.random.Generator) -> None:
         """Start a search of ``budget`` simulations at the slot's root. ``full`` enables root
         noise (PUCT); ``rng`` is the game's generator (noise, Gumbel samples, rollouts)."""
-        sl = self.slots[slot]
-        if self.terminal[sl.root]:
+        root = self.root[slot]
+        if self.terminal[root]:
             raise ValueError("cannot search a terminal position")
-        if sl.count + budget + 1 > self.capacity:
-            self.set_root(slot, self.states[sl.root])
-        sl.budget = sl.budget_left = int(budget)
-        sl.full = bool(full)
-        sl.rng = rng
-        sl.searching = True
-        sl.chosen = -1
-        sl.phase_visits = []
-        if not sl.root_needs_eval:
-            self._prepare_root(slot)
+        if self.count[slot] + budget + 1 > self.capacity:
+            self.set_root(slot, self.states[root])
+        self.budget[slot] = self.budget_left[slot] = int(budget)
+        self.full[slot] = bool(full)
+        self.rngs[slot] = rng
+        self.searching[slot] = True
+        if not self.root_needs_eval[slot]:
+            self._start_variant(slot)
 
-    def _prepare_root(self, slot: int) -> None:
-        """Root noise (PUCT) or the Gumbel sample and halving plan, once the root is evaluated."""
-        sl = self.slots[slot]
-        cfg = self.config
-        root = sl.root
-        sl.root_prior = self.P[root].copy()
-        legal = self.legal[root]
-        if not self._is_gumbel:
-            if sl.full and cfg.dirichlet_epsilon > 0:
-                self.P[root] = add_dirichlet_noise(self.P[root], legal, cfg.dirichlet_epsilon,
-                                                   cfg.alpha_for(self.game), sl.rng)
-            return
-        sl.gumbel = sl.rng.gumbel(size=self.A)
-        sl.logits = np.log(np.maximum(sl.root_prior.astype(np.float64), 1e-30))
-        m = min(cfg.gumbel_sampled_moves, int(legal.sum()), sl.budget)
-        considered = gb.top_m(sl.gumbel, sl.logits, legal, m)
-        sl.plan = gb.halving_schedule(sl.budget, len(considered))
-        used = sum(c * p for c, p in sl.plan)
-        sl.leftover = sl.budget - used
-        sl.phase = 0
-        sl.phase_actions = considered
-        self._fill_queue(sl)
-
-    def _fill_queue(self, sl: _Slot) -> None:
-        count, per = sl.plan[sl.phase]
-        extra = sl.leftover if sl.phase == len(sl.plan) - 1 else 0
-        sl.queue = gb.phase_queue(sl.phase_actions[:count], per, extra)
-        sl.queue.reverse()  # pop() from the end takes them in order
-        sl.phase_visits.append(len(sl.queue))
-
-    def _gumbel_root_scores(self, sl: _Slot, actions: np.ndarray) -> np.ndarray:
-        root = sl.root
-        scores = gb.root_scores(sl.gumbel, sl.logits, self.N[root].astype(np.float64),
-                                self.W[root].astype(np.float64), self.config.gumbel_c_visit,
-                                self.config.gumbel_c_scale)
-        return scores[actions]
-
-    def _end_phase(self, sl: _Slot) -> None:
-        """Sequential halving: keep the better half of this phase's actions, or finish."""
-        count, _ = sl.plan[sl.phase]
-        actions = sl.phase_actions[:count]
-        scores = self._gumbel_root_scores(sl, actions)
-        order = np.argsort(-scores, kind="stable")
-        if sl.phase == len(sl.plan) - 1:
-            sl.chosen = int(actions[order[0]])
-            sl.searching = False
-            return
-        sl.phase += 1
-        sl.phase_actions = actions[order]
-        self._fill_queue(sl)
-
-    # ---- one round -------------------------------------------------------------------------
-    def _select(self, ids: np.ndarray) -> np.ndarray:
-        cfg = self.config
-        if self._is_gumbel:
-            return gb.gumbel_nonroot_select(self.P[ids], self.N[ids], self.W[ids], self.legal[ids],
-                                            self.value[ids], cfg.gumbel_c_visit, cfg.gumbel_c_scale)
-        return puct_select_q(self.P[ids], self.N[ids], self.Q[ids], self.visits[ids], cfg.c_puct)
+    def _start_variant(self, slot: int) -> None:
+        """The root is evaluated: keep its priors, then let the root search set itself up."""
+        self.root_prior[slot] = self.P[self.root[slot]]
+        self.variant.start(self, slot)
 
     def searching_slots(self) -> list[int]:
-        return [s for s, sl in enumerate(self.slots) if sl.searching]
+        return np.flatnonzero(self.searching).tolist()
 
+    # ---- one round -------------------------------------------------------------------------
     def run_round(self, evaluator: Evaluator) -> list[int]:
         """One simulation round over every searching slot; one batched evaluator call.
         Returns the slots whose search finished in this round."""
         t_start = time.perf_counter()
-        rules = 0.0
-        game = self.game
-        slots = self.slots
-        eval_nodes: list[int] = []
-        eval_slots: list[int] = []
-        for s, sl in enumerate(slots):
-            if sl.searching and sl.root_needs_eval:
-                self.pending[sl.root] = True
-                eval_nodes.append(sl.root)
-                eval_slots.append(s)
-        root_evals = list(eval_slots)
-        walkers = [s for s, sl in enumerate(slots) if sl.searching and not sl.root_needs_eval]
-
-        edge_paths: list[np.ndarray] = []
-        edge_nodes: list[np.ndarray] = []
-        edge_acts: list[np.ndarray] = []
-        path_leaves: list[np.ndarray] = []
-        n_paths = 0
-        for r in range(self._leaves):
-            if self._is_gumbel:
-                batch_slots = [s for s in walkers if slots[s].budget_left > 0 and slots[s].queue]
-            else:
-                batch_slots = [s for s in walkers if slots[s].budget_left > 0]
-            if not batch_slots:
+        rnd = _Round()
+        root_evals = np.flatnonzero(self.searching & self.root_needs_eval)
+        if root_evals.size:
+            nodes = self.root[root_evals]
+            self.pending[nodes] = True
+            rnd.eval_nodes.extend(nodes.tolist())
+            rnd.eval_slots.extend(root_evals.tolist())
+        walkers = np.flatnonzero(self.searching & ~self.root_needs_eval)
+        for _ in range(self._leaves):
+            if not self._descend(walkers, rnd):
                 break
-            k = len(batch_slots)
-            cur = np.array([slots[s].root for s in batch_slots], dtype=np.int64)
-            forced = None
-            if self._is_gumbel:
-                forced = np.array([slots[s].queue.pop() for s in batch_slots], dtype=np.int64)
-            for s in batch_slots:
-                slots[s].budget_left -= 1
-            leaf = np.full(k, -1, dtype=np.int64)
-            alive = np.arange(k)
-            depth = 0
-            r_nodes: list[np.ndarray] = []
-            r_acts: list[np.ndarray] = []
-            new_p: list[np.ndarray] = []
-            new_par: list[np.ndarray] = []
-            new_act: list[np.ndarray] = []
-            while alive.size:
-                ids = cur[alive]
-                if depth == 0 and forced is not None:
-                    a = forced[alive]
-                else:
-                    a = self._select(ids)
-                edge_paths.append(alive + n_paths)
-                r_nodes.append(ids)
-                r_acts.append(a)
-                ch = self.child[ids, a]
-                is_new = ch < 0
-                if is_new.any():
-                    new_p.append(alive[is_new])
-                    new_par.append(ids[is_new])
-                    new_act.append(a[is_new])
-                    old = ~is_new
-                    alive_old = alive[old]
-                    ch_old = ch[old].astype(np.int64)
-                else:
-                    alive_old = alive
-                    ch_old = ch.astype(np.int64)
-                stop = self.terminal[ch_old] | self.pending[ch_old]
-                if stop.any():
-                    leaf[alive_old[stop]] = ch_old[stop]
-                    self.times.collisions += int(self.pending[ch_old[stop]].sum())
-                    keep = ~stop
-                    alive = alive_old[keep]
-                    cur[alive] = ch_old[keep]
-                else:
-                    alive = alive_old
-                    cur[alive] = ch_old
-                depth += 1
-            # create the new children (rules calls)
-            if new_p:
-                t0 = time.perf_counter()
-                ps = np.concatenate(new_p)
-                pars = np.concatenate(new_par)
-                acts = np.concatenate(new_act)
-                created = np.empty(ps.size, dtype=np.int64)
-                mask_nodes: list[int] = []
-                masks: list[np.ndarray] = []
-                states = self.states
-                for j, (p_idx, par, act) in enumerate(zip(ps.tolist(), pars.tolist(), acts.tolist())):
-                    s = batch_slots[p_idx]
-                    sl = slots[s]
-                    node = sl.base + sl.count
-                    sl.count += 1
-                    created[j] = node
-                    st = game.play(states[par], act)
-                    mask = self._describe_state(node, st)
-                    if mask is not None:
-                        mask_nodes.append(node)
-                        masks.append(mask)
-                        eval_nodes.append(node)
-                        eval_slots.append(s)
-                rules += time.perf_counter() - t0
-                self._clear_rows(created)
-                self.child[pars, acts] = created
-                if masks:
-                    self.legal[mask_nodes] = np.stack(masks)
-                leaf[ps] = created
-            nodes_cat = np.concatenate(r_nodes)
-            acts_cat = np.concatenate(r_acts)
-            edge_nodes.append(nodes_cat)
-            edge_acts.append(acts_cat)
-            if self._vl:
-                flat = nodes_cat * self.A + acts_cat
-                self._Nf[flat] += self._vl
-                self._Wf[flat] -= self._vl
-                self._Qf[flat] = self._Wf[flat] / self._Nf[flat]
-                self.visits[nodes_cat] += self._vl
-            path_leaves.append(leaf)
-            n_paths += k
-
-        # evaluate every waiting leaf in one call
-        t_net = 0.0
-        if eval_nodes:
-            nodes = np.array(eval_nodes, dtype=np.int64)
-            batch = LeafBatch(game, [self.states[i] for i in eval_nodes], self.to_play[nodes],
-                              self.legal[nodes], [slots[s].rng for s in eval_slots])
-            t0 = time.perf_counter()
-            priors, values = evaluator.evaluate(batch)
-            t_net = time.perf_counter() - t0
-            _check_evaluation(evaluator, priors, values, len(eval_nodes), self.A)
-            self.P[nodes] = priors
-            self.value[nodes] = values
-            self.Q[nodes] = np.where(self.legal[nodes], (values - self.config.unvisited_value_penalty)[:, None],
-                                     -np.inf).astype(np.float32)
-            self.pending[nodes] = False
-            self.times.evals += len(eval_nodes)
-            self.times.batches += 1
-
-        # back up every path
-        if n_paths:
-            leaves = np.concatenate(path_leaves)
-            e_path = np.concatenate(edge_paths)
-            e_node = np.concatenate(edge_nodes)
-            e_act = np.concatenate(edge_acts)
-            v_leaf = self.value[leaves][e_path]
-            same = self.to_play[e_node] == self.to_play[leaves][e_path]
-            v = np.where(same, v_leaf, -v_leaf).astype(np.float32)
-            flat = e_node * self.A + e_act
-            np.add.at(self._Nf, flat, 1.0 - self._vl)
-            np.add.at(self._Wf, flat, v + self._vl)
-            np.add.at(self.visits, e_node, 1.0 - self._vl)
-            if self._vl:
-                # real visit counts are whole numbers: drop the rounding left by adding and
-                # removing a virtual loss that float32 cannot hold exactly (0.7, say)
-                self._Nf[flat] = np.rint(self._Nf[flat])
-                self.visits[e_node] = np.rint(self.visits[e_node])
-            self._Qf[flat] = self._Wf[flat] / self._Nf[flat]
-
-        finished: list[int] = []
-        for s in root_evals:
-            sl = slots[s]
-            sl.root_needs_eval = False
-            self._prepare_root(s)
-        for s in walkers:
-            sl = slots[s]
-            if self._is_gumbel:
-                while sl.searching and not sl.queue:
-                    self._end_phase(sl)
-                if not sl.searching:
-                    finished.append(s)
-            elif sl.budget_left <= 0:
-                sl.searching = False
-                finished.append(s)
+        t_net = self._evaluate(evaluator, rnd)
+        self._backup(rnd)
+        for s in root_evals.tolist():
+            self.root_needs_eval[s] = False
+            self._start_variant(s)
+        finished = self.variant.finished(self, walkers)
+        self.searching[finished] = False
         elapsed = time.perf_counter() - t_start
-        self.times.rules += rules
+        self.times.rules += rnd.rules_seconds
         self.times.network += t_net
-        self.times.tree += elapsed - rules - t_net
+        self.times.tree += elapsed - rnd.rules_seconds - t_net
         self.times.rounds += 1
         return finished
 
+    def _descend(self, walkers: np.ndarray, rnd: _Round) -> bool:
+        """One descent from the root of every walker that may simulate now (compiled), then
+        the new children it reached are created. False when no game could start one."""
+        slots = walkers[self.budget_left[walkers] > 0]
+        slots = slots[self.variant.ready(self, slots)]
+        k = slots.size
+        if not k:
+            return False
+        forced = self.variant.forced_actions(self, slots)
+        if forced is None:
+            forced = self._no_force[:k]
+        self.budget_left[slots] -= 1
+        lo, hi = rnd.paths, rnd.paths + k
+        end, collisions = kernels.descend(
+            self.root[slots], forced, self._rule, self.P, self.N, self.W, self.Q, self.logP, self.visits,
+            self.legal, self.value, self.child, self.terminal, self.pending, self.config.c_puct,
+            self.config.gumbel_c_visit, self.config.gumbel_c_scale, self._vl, self._edge_node,
+            self._edge_act, rnd.edges, self._path_start[lo:hi], self._path_len[lo:hi], self._path_leaf[lo:hi])
+        self.times.collisions += collisions
+        self._path_slot[lo:hi] = slots
+        rnd.edges = end
+        rnd.paths = hi
+        rnd.groups.append(hi)
+        self._expand(lo, hi, rnd)
+        return True
+
+    def _expand(self, lo: int, hi: int, rnd: _Round) -> None:
+        """Create the children at the ends of paths ``lo:hi`` that stopped at a new edge (one
+        ``game.play`` each), shallowest first; those not terminal wait for evaluation."""
+        new = np.flatnonzero(self._path_leaf[lo:hi] < 0) + lo
+        if not new.size:
+            return
+        new = new[np.argsort(self._path_len[new], kind="stable")]
+        last = self._path_start[new] + self._path_len[new] - 1
+        parents = self._edge_node[last]
+        actions = self._edge_act[last]
+        slots = self._path_slot[new]
+        created = self.base[slots] + self.count[slots]
+        self.count[slots] += 1
+        kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
+                                self.child)
+        play, to_play = self.game.play_with_mask, self.game.to_play
+        states, legal = self.states, self.legal
+        movers: list[int] = []
+        exact: list[tuple[int, float]] = []
+        t0 = time.perf_counter()
+        for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
+            # the game writes the child's legal mask straight into its row
+            child, _ = play(states[par], act, legal[node])
+            states[node] = child
+            mover = to_play(child)
+            movers.append(mover)
+            value = self._terminal_value(child, mover)
+            if value is None:
+                rnd.eval_nodes.append(node)
+                rnd.eval_slots.append(s)
+            else:
+                exact.append((node, value))
+        rnd.rules_seconds += time.perf_counter() - t0
+        self.to_play[created] = movers
+        self.terminal[created] = False
+        self.pending[created] = True
+        if exact:
+            done = np.array([n for n, _ in exact], dtype=np.int64)
+            self.terminal[done] = True
+            self.pending[done] = False
+            self.value[done] = [v for _, v in exact]
+            legal[done] = False
+        self._path_leaf[new] = created
+
+    def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
+        """Evaluate every waiting leaf in one call; returns the seconds the evaluator took."""
+        if not rnd.eval_nodes:
+            return 0.0
+        nodes = np.array(rnd.eval_nodes, dtype=np.int64)
+        batch = LeafBatch(self.game, [self.states[i] for i in rnd.eval_nodes], self.to_play[nodes],
+                          self.legal[nodes], [self.rngs[s] for s in rnd.eval_slots])
+        t0 = time.perf_counter()
+        priors, values = evaluator.evaluate(batch)
+        t_net = time.perf_counter() - t0
+        _check_evaluation(evaluator, priors, values, nodes.size, self.A)
+        # the evaluator's contract is float32; anything else is rounded to it here
+        kernels.store_evaluations(nodes, np.ascontiguousarray(priors, dtype=np.float32),
+                                  np.ascontiguousarray(values, dtype=np.float32), self.config.unvisited_value_penalty,
+                                  self.P, self.value, self.Q, self.legal, self.pending)
+        if self._rule == RULE_GUMBEL:
+            # numpy's float32 log, as the formula's reference computes it
+            self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
+        self.times.evals += nodes.size
+        self.times.batches += 1
+        return t_net
+
+    def _backup(self, rnd: _Round) -> None:
+        if rnd.paths:
+            kernels.backup(self._edge_node, self._edge_act, self._path_start[:rnd.paths],
+                           self._path_len[:rnd.paths], self._path_leaf[:rnd.paths],
+                           np.array(rnd.groups, dtype=np.int64), self.value, self.to_play, self.N, self.W,
+                           self.Q, self.visits, self._vl)
+
     # ---- results and reuse -----------------------------------------------------------------
     def root_value(self, slot: int) -> float:
-        root = self.slots[slot].root
+        """Mean of the root's own evaluation and every value backed up through it (mover's view)."""
+        root = self.root[slot]
         return float((self.value[root] + self.W[root].sum()) / (1.0 + self.N[root].sum()))
 
     def result(self, slot: int) -> SearchResult:
         """Root statistics of the slot's finished search."""
-        sl = self.slots[slot]
-        root = sl.root
+        root = self.root[slot]
         visits = self.N[root].copy()
-        W = self.W[root]
         q = np.full(self.A, np.nan, dtype=np.float32)
-        np.divide(W, visits, out=q, where=visits > 0)
-        prior = sl.root_prior if sl.root_prior is not None else self.P[root].copy()
-        if self._is_gumbel:
-            pi = gb.improved_policy(prior[None].astype(np.float64), visits[None].astype(np.float64),
-                                    W[None].astype(np.float64), self.legal[root][None],
-                                    np.array([self.value[root]], dtype=np.float64),
-                                    self.config.gumbel_c_visit, self.config.gumbel_c_scale)[0]
-            acts = np.flatnonzero(pi > 0)
-            weights = pi[acts].astype(np.float32)
-            chosen = sl.chosen
-            cq = gb.completed_q(prior[None].astype(np.float64), visits[None].astype(np.float64),
-                                W[None].astype(np.float64), np.array([self.value[root]], dtype=np.float64))[0]
-            root_value = float(np.sum(pi * np.where(self.legal[root], cq, 0.0)))
-        else:
-            acts = np.flatnonzero(visits > 0)
-            weights = visits[acts].astype(np.float32)
-            chosen = -1
-            root_value = self.root_value(slot)
-        return SearchResult(visits=visits, q=q, prior=prior.astype(np.float32, copy=False),
-                            root_value=root_value, policy_actions=acts.astype(np.int16),
-                            policy_weights=weights, chosen=chosen, full=sl.full, simulations=sl.budget)
+        np.divide(self.W[root], visits, out=q, where=visits > 0)
+        target = self.variant.target(self, slot)
+        return SearchResult(visits=visits, q=q, prior=self.root_prior[slot].copy(), root_value=target.root_value,
+                            policy_actions=target.policy_actions.astype(np.int16),
+                            policy_weights=target.policy_weights, chosen=target.chosen,
+                            full=bool(self.full[slot]), simulations=int(self.budget[slot]))
 
     def advance(self, slot: int, action: int) -> Any:
         """Play ``action`` at the slot's root, keep its subtree (if reuse is on and it fits) as
         the new tree, and return the new root state."""
-        sl = self.slots[slot]
-        root = sl.root
+        root = self.root[slot]
         c = int(self.child[root, action])
         if c < 0 or not self.config.reuse_tree or self.terminal[c] or self.pending[c]:
             t0 = time.perf_counter()
@@ -510,40 +414,24 @@ class BatchedSearch:
             self.set_root(slot, state)
             return state
         t0 = time.perf_counter()
-        order = [np.array([c], dtype=np.int64)]
-        frontier = order[0]
-        total = 1
-        while frontier.size:
-            kids = self.child[frontier].ravel()
-            kids = kids[kids >= 0].astype(np.int64)
-            if kids.size:
-                order.append(kids)
-                total += kids.size
-            frontier = kids
-        keep = np.concatenate(order)
+        base = int(self.base[slot])
+        keep = np.empty(self.count[slot], dtype=np.int64)
+        total = kernels.subtree_order(self.child, c, keep)
+        keep = keep[:total]
         state = self.states[c]
         if total + self.config.simulations + 1 > self.capacity:
             self.times.tree += time.perf_counter() - t0
             self.set_root(slot, state)
             return state
-        base = sl.base
-        dst = base + np.arange(total)
-        remap = np.full(self.capacity, -1, dtype=np.int64)
-        remap[keep - base] = dst
-        ch = self.child[keep]
-        ch = np.where(ch >= 0, remap[np.maximum(ch, base) - base], -1).astype(np.int32)
-        for arr in (self.P, self.N, self.W, self.Q, self.legal):
-            arr[dst] = arr[keep]
-        self.child[dst] = ch
-        for arr in (self.to_play, self.terminal, self.value, self.pending, self.visits):
-            arr[dst] = arr[keep]
+        kernels.move_rows(keep, base, self.P, self.N, self.W, self.Q, self.legal, self.child, self.to_play,
+                          self.terminal, self.value, self.pending, self.visits, self.logP)
         kept_states = [self.states[i] for i in keep.tolist()]
-        old = sl.count
+        old = int(self.count[slot])
         self.states[base:base + old] = kept_states + [None] * (old - total)
-        sl.count = total
-        sl.root = base
-        sl.root_needs_eval = False
-        sl.searching = False
+        self.count[slot] = total
+        self.root[slot] = base
+        self.root_needs_eval[slot] = False
+        self.searching[slot] = False
         self.times.tree += time.perf_counter() - t0
         return state
 

@@ -1,0 +1,220 @@
+"""The compiled round (selfplay.search.kernels) against the formulas it replaces, the batched game
+hooks against the one-state methods, and same-seed games against the numpy search they replaced.
+
+References: PUCT as written in AlphaGo Zero (Silver et al. 2017, Methods, "Select") through
+``selfplay.search.puct.puct_select``; the Gumbel non-root rule from Danihelka et al. (2022,
+Sec. 5 and Appendix D) through ``selfplay.search.gumbel.gumbel_nonroot_select``; backup by hand.
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+import pytest
+
+from selfplay.evaluators import RandomRolloutEvaluator, UniformEvaluator
+from selfplay.games.registry import game_names, make_game
+from selfplay.search import BatchedSearch, SearchConfig
+from selfplay.search import kernels
+from selfplay.search import gumbel as gb
+from selfplay.search.puct import puct_select, puct_select_q
+from selfplay.worker import SelfPlayWorker
+
+
+def _random_rows(rng: np.random.Generator, k: int, A: int, fractional: bool = False):
+    """k nodes over A actions: priors over a random legal set, visit counts (some zero), values
+    in [-1, 1] per visit, node values."""
+    legal = rng.random((k, A)) < 0.7
+    legal[np.arange(k), rng.integers(0, A, k)] = True
+    P = np.where(legal, rng.random((k, A)), 0).astype(np.float32)
+    P /= P.sum(axis=1, keepdims=True)
+    N = np.where(legal & (rng.random((k, A)) < 0.5), rng.integers(0, 30, (k, A)), 0).astype(np.float32)
+    if fractional:   # pending virtual losses of 0.7
+        N = np.where(N > 0, N + 0.7 * rng.integers(0, 3, (k, A)), N).astype(np.float32)
+    W = (N * rng.uniform(-1, 1, (k, A))).astype(np.float32)
+    v = rng.uniform(-1, 1, k).astype(np.float32)
+    return P, N, W, legal, v
+
+
+@pytest.mark.parametrize("fpu", [0.0, 0.3])
+def test_compiled_puct_choice_equals_the_formula(fpu):
+    rng = np.random.default_rng(1)
+    for A in (10, 82):
+        P, N, W, legal, v = _random_rows(rng, 400, A)
+        Q = np.where(legal, (v - fpu)[:, None], -np.inf).astype(np.float32)
+        np.divide(W, N, out=Q, where=N > 0)
+        expected = puct_select(P, N, W, legal, v, 1.3, fpu)
+        np.testing.assert_array_equal(kernels.puct_pick_rows(P, N, Q, N.sum(axis=1), 1.3), expected)
+        np.testing.assert_array_equal(puct_select_q(P, N, Q, N.sum(axis=1), 1.3), expected)
+
+
+@pytest.mark.parametrize("fractional", [False, True])
+def test_compiled_gumbel_rule_equals_the_formula(fractional):
+    # The kernel sums in plain order where numpy sums pairwise; on these inputs the choices agree.
+    rng = np.random.default_rng(2)
+    for A in (10, 82):
+        P, N, W, legal, v = _random_rows(rng, 400, A, fractional)
+        logP = np.log(np.maximum(P, np.float32(1e-30)))
+        expected = gb.gumbel_nonroot_select(P, N, W, legal, v, 50.0, 1.0)
+        np.testing.assert_array_equal(kernels.gumbel_pick_rows(P, N, W, logP, legal, v, 50.0, 1.0), expected)
+
+
+def test_backup_adds_signed_values_and_removes_virtual_loss():
+    # Two nodes (0: player 0 to move, 1: player 1 to move), two leaves (2: player 0, 3: player 1).
+    # Path a: 0 -a1-> 1 -a0-> leaf 2; path b: 0 -a1-> 1 -a2-> leaf 3; virtual loss 0.5 on both.
+    A = 3
+    N = np.zeros((4, A), np.float32)
+    W = np.zeros((4, A), np.float32)
+    Q = np.zeros((4, A), np.float32)
+    visits = np.zeros(4, np.float32)
+    vl = 0.5
+    for node, a in [(0, 1), (1, 0), (0, 1), (1, 2)]:   # the virtual losses the descents left
+        N[node, a] += vl
+        W[node, a] -= vl
+        visits[node] += vl
+    edge_node = np.array([0, 1, 0, 1], np.int64)
+    edge_act = np.array([1, 0, 1, 2], np.int64)
+    value = np.array([0, 0, 0.6, -0.2], np.float32)      # leaf values, each from its own mover's view
+    to_play = np.array([0, 1, 0, 1], np.int8)
+    kernels.backup(edge_node, edge_act, np.array([0, 2]), np.array([2, 2]), np.array([2, 3]),
+                   np.array([0, 1, 2]), value, to_play, N, W, Q, visits, vl)
+    # edge (0, 1): leaf 2 same mover -> +0.6; leaf 3 other mover -> +0.2
+    assert N[0, 1] == 2 and W[0, 1] == pytest.approx(0.8) and Q[0, 1] == pytest.approx(0.4)
+    # edge (1, 0): player 1 to move, leaf 2 is player 0's -> -0.6; edge (1, 2): same mover -> -0.2
+    assert N[1, 0] == 1 and W[1, 0] == pytest.approx(-0.6)
+    assert N[1, 2] == 1 and W[1, 2] == pytest.approx(-0.2)
+    np.testing.assert_array_equal(visits, [2, 2, 0, 0])
+
+
+def _subtree(tree: BatchedSearch, node: int) -> dict:
+    """The statistics of the subtree under ``node`` as nested plain values (ids left out)."""
+    kids = {int(a): _subtree(tree, int(c)) for a, c in enumerate(tree.child[node]) if c >= 0}
+    return {"N": tree.N[node].tolist(), "W": tree.W[node].tolist(), "P": tree.P[node].tolist(),
+            "legal": tree.legal[node].tolist(), "value": float(tree.value[node]),
+            "terminal": bool(tree.terminal[node]), "kids": kids}
+
+
+def _size(subtree: dict) -> int:
+    return 1 + sum(_size(k) for k in subtree["kids"].values())
+
+
+@pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
+def test_reuse_keeps_the_chosen_subtree_exactly(algorithm):
+    game = make_game("fourinrow")
+    cfg = SearchConfig(algorithm=algorithm, simulations=60, node_capacity_factor=8.0)
+    tree = BatchedSearch(game, cfg, 2)
+    for s in range(2):
+        tree.set_root(s, game.initial_state())
+        tree.begin(s, 60, False, np.random.default_rng(s))
+    while tree.searching_slots():
+        tree.run_round(RandomRolloutEvaluator())
+    root = int(tree.root[1])
+    action = int(np.argmax(tree.N[root]))
+    expected = _subtree(tree, int(tree.child[root, action]))
+    tree.advance(1, action)
+    assert tree.root[1] == tree.base[1]
+    assert _subtree(tree, int(tree.root[1])) == expected
+    assert tree.count[1] == _size(expected)   # every kept node, no other
+
+
+@pytest.mark.parametrize("name,options", [("go", {"size": 5, "tiny": True, "history": 3}),
+                                          ("go", {"size": 9, "max_moves": 30}),
+                                          ("go", {"size": 7, "superko": False, "allow_suicide": True}),
+                                          ("fourinrow", {}), ("tictactoe", {})])
+def test_play_with_mask_and_compact_histories_equal_the_one_state_methods(name, options):
+    game = make_game(name, **options)
+    rng = np.random.default_rng(3)
+    for _ in range(4):
+        state = game.initial_state()
+        states = [state]
+        while not game.is_terminal(state):
+            legal = np.flatnonzero(game.legal_mask(state))
+            a = int(legal[rng.integers(legal.size)]) if rng.random() > 0.1 else int(legal[-1])
+            new, mask = game.play_with_mask(state, a)
+            plain = game.play(state, a)
+            np.testing.assert_array_equal(mask, game.legal_mask(plain))
+            out = np.ones(game.num_actions, dtype=bool)     # stale contents must be overwritten
+            again, written = game.play_with_mask(state, a, out)
+            assert written is out
+            np.testing.assert_array_equal(out, mask)
+            assert game.zobrist(again) == game.zobrist(plain)
+            np.testing.assert_array_equal(game.compact_history(new), game.compact_history(plain))
+            assert game.zobrist(new) == game.zobrist(plain) and game.to_play(new) == game.to_play(plain)
+            assert game.is_terminal(new) == game.is_terminal(plain)
+            state = new
+            states.append(state)
+        np.testing.assert_array_equal(game.compact_histories(states),
+                                      np.stack([game.compact_history(s) for s in states]))
+
+
+def test_every_registered_game_has_the_batched_hooks():
+    for name in game_names():
+        game = make_game(name) if name != "mnk" else make_game(name, m=3, n=3, k=3)
+        s0 = game.initial_state()
+        a = int(np.flatnonzero(game.legal_mask(s0))[0])
+        new, mask = game.play_with_mask(s0, a)
+        np.testing.assert_array_equal(mask, game.legal_mask(game.play(s0, a)))
+        assert game.compact_histories([s0, new]).shape == (2, game.history_length, *game.compact_shape)
+
+
+# Games recorded with the numpy search this compiled one replaced (the project at commit
+# acd390b, same seeds): the first game's moves and a digest of all four games. PUCT digests cover
+# moves, policy targets and root values (float32 arithmetic and exact square roots: the same on
+# any x86-64 CPU); Gumbel digests cover the moves only, because numpy's vectorised float64
+# log/exp may round differently on CPUs with other vector units, moving probabilities in the
+# last bits but not the moves. The compiled round must reproduce them.
+RECORDED = {
+    "go_puct_virtual_loss": ([66, 45, 8, 1, 13, 4, 19, 2, 5, 9, 6, 50, 54, 26, 28, 40, 71, 0, 7, 11, 68, 74, 10,
+                              17, 70, 56, 33, 20, 14, 63, 31, 22, 65, 3, 23, 12, 21, 15, 16, 55],
+                             "86391006fcd6112b36f0b363a703db76"),
+    "go_gumbel": ([5, 56, 13, 23, 37, 47, 33, 57, 6, 2, 72, 71, 63, 32, 48, 79, 74, 52, 36, 66, 11, 0, 38, 44,
+                   65, 61, 75, 81, 60, 46, 22, 10, 67, 27, 45, 51, 9, 59, 21, 15],
+                  "bc1ff41e7c6509c47a816926efb4d1f6"),
+    "tictactoe_puct_rollouts": ([6, 5, 3, 1, 0], "11f8c62a2801287389c14cc2f545a731"),
+    "tictactoe_gumbel_rollouts": ([0, 8, 6, 4, 3], "c7c49fe72d7140579465025b66fc0029"),
+}
+CASES = {
+    "go_puct_virtual_loss": (("go", {"size": 9, "max_moves": 40}), "uniform",
+                             dict(simulations=24, leaves_per_game=3, virtual_loss=0.7, full_search_share=0.6,
+                                  reduced_simulations=8)),
+    "go_gumbel": (("go", {"size": 9, "max_moves": 40}), "uniform",
+                  dict(algorithm="gumbel", simulations=24, leaves_per_game=2)),
+    "tictactoe_puct_rollouts": (("tictactoe", {}), "rollout", dict(simulations=40)),
+    "tictactoe_gumbel_rollouts": (("tictactoe", {}), "rollout",
+                                  dict(algorithm="gumbel", simulations=40, gumbel_sampled_moves=4)),
+}
+ALL_FIELDS = ("actions", "policy_offsets", "policy_actions", "policy_weights", "root_values")
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_same_seed_plays_the_games_the_numpy_search_played(case):
+    (name, options), evaluator, settings = CASES[case]
+    game = make_game(name, **options)
+    ev = UniformEvaluator() if evaluator == "uniform" else RandomRolloutEvaluator()
+    worker = SelfPlayWorker(game, ev, SearchConfig(**settings), games_in_parallel=3, worker_id="w", seed=11,
+                            clock=lambda: 0.0)
+    records = worker.play_games(4)
+    digest = hashlib.sha256()
+    fields = ("actions",) if settings.get("algorithm") == "gumbel" else ALL_FIELDS
+    for r in records:
+        for field in fields:
+            digest.update(np.ascontiguousarray(getattr(r, field)).tobytes())
+    first, expected = RECORDED[case]
+    assert records[0].actions.tolist() == first
+    assert digest.hexdigest()[:32] == expected
+
+
+def test_go_planes_equal_the_plane_definition():
+    # The compiled plane builder against the definition in GoGame.planes_from_compact's docstring.
+    go = make_game("go", size=9, history=3)
+    rng = np.random.default_rng(4)
+    boards = rng.integers(0, 3, (20, 3, 9, 9)).astype(np.int8)
+    to_play = rng.integers(0, 2, 20).astype(np.int8)
+    own = (to_play + 1)[:, None, None, None]
+    expected = np.concatenate([
+        np.stack([boards == own, (boards != 0) & (boards != own)], axis=2).reshape(20, 6, 9, 9),
+        np.broadcast_to((to_play == 0)[:, None, None, None], (20, 1, 9, 9)),
+        np.ones((20, 1, 9, 9), bool)], axis=1).astype(np.float32)
+    np.testing.assert_array_equal(go.planes_from_compact(boards, to_play), expected)
+    np.testing.assert_array_equal(go.planes_from_compact(boards.astype(np.int64), to_play.astype(np.int64)), expected)
