@@ -55,7 +55,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--games-in-parallel", type=int, default=64, help="games per worker, G (default 64)")
     parser.add_argument("--leaves-per-game", type=int, default=1, help="leaves per game per batch, virtual loss beyond 1 (default 1)")
     parser.add_argument("--simulations", type=int, default=64, help="simulations per move (default 64)")
-    parser.add_argument("--algorithm", default="puct", choices=["puct", "gumbel"], help="root search (default puct)")
+    from selfplay.search.root import VARIANTS
+
+    parser.add_argument("--algorithm", default="puct", choices=sorted(VARIANTS), help="root search (default puct)")
     parser.add_argument("--threads", type=int, default=1, help="forward-pass threads (default 1)")
     parser.add_argument("--backends", default="all",
                         help="comma-separated inference backends to compare, or 'all' that import here "

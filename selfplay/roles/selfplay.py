@@ -17,6 +17,7 @@ repeated by a restarted worker or a resumed run.
 
 from __future__ import annotations
 
+import gc
 import time
 from typing import Any, Callable, Mapping
 
@@ -73,6 +74,9 @@ class SelfPlayRole:
         self.games_total = 0
         self.positions_total = 0
         self.duplicates_total = 0
+        # the network, the compiled kernels and the runtime's objects live as long as the worker:
+        # keep the cyclic collector from rescanning them (measured: 1-2 us per simulation)
+        gc.freeze()
 
     def _evaluator(self) -> Any:
         """The worker's evaluator (the one place it is built): the network on the backend
