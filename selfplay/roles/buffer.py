@@ -133,14 +133,21 @@ class BufferRole:
             self._timer.check()
 
     def close(self) -> dict[str, Any]:
-        """Stop the timer, write the waiting games, write the final line, release the store."""
+        """Stop the timer, write the waiting games, write the final line, release the store.
+        A store that failed to write (disk full, read-only) is closed without sealing: what it
+        accepted is in its journal and sealed when the run next opens."""
         if self._timer is not None:
             self._timer.stop()
             self._timer = None
+        from selfplay.replay.store import StoreWriteError
+
         with self._lock:
             if self._closed:
                 return self.stats()
-            self.store.flush()
+            try:
+                self.store.flush()
+            except StoreWriteError:
+                pass  # a failed store (disk full): its games stay in the journal, sealed at the next open
             stats = self.stats(fresh=True)
             self._write_line(final=True)
             self._closed = True

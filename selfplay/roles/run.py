@@ -4,6 +4,7 @@ makes them hold, the stop signals, the status line and the closing summary."""
 
 from __future__ import annotations
 
+import errno
 import math
 import os
 import signal
@@ -15,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from selfplay.config import RunConfig
+from selfplay.errors import SelfplayError
 from selfplay.metrics import MetricsLog
 from selfplay.roles.timer import Every
 from selfplay.rundir import RunDir
@@ -47,6 +49,29 @@ def error_reason(exc: BaseException) -> str:
     """The stop reason of a run ended by ``exc``: ``error: <its first line>``."""
     text = str(exc).strip().splitlines()
     return "error: " + (text[0] if text else type(exc).__name__)
+
+
+#: errno values of a disk that cannot take more writes: the run stops cleanly on them
+_DISK_ERRNOS = (errno.ENOSPC, errno.EROFS, errno.EDQUOT)
+
+
+def write_failure(exc: BaseException) -> SelfplayError | None:
+    """The one-line error that stops a run cleanly when writing its files failed: the record
+    store's :class:`~selfplay.replay.store.StoreWriteError` as it is, and an ``OSError`` of a full
+    or read-only disk (a snapshot, a checkpoint) as one line naming the file; None for anything
+    else. Games the store accepted before are kept either way (its journal is sealed at the next
+    open)."""
+    from selfplay.replay.store import StoreWriteError
+
+    if isinstance(exc, StoreWriteError):
+        return exc
+    if isinstance(exc, OSError) and exc.errno in _DISK_ERRNOS:
+        why = {errno.ENOSPC: "the disk is full", errno.EROFS: "the file system is read-only",
+               errno.EDQUOT: "the disk quota is used up"}[exc.errno]
+        where = f" {exc.filename}" if exc.filename else ""
+        return StoreWriteError(f"cannot write{where}: {why}; every game stored before is kept — "
+                               "free space (or make it writable) and resume the run")
+    return None
 
 
 # ---- stop conditions --------------------------------------------------------------------------
