@@ -71,6 +71,9 @@ class BufferActor:
     def append_metrics(self, rows: list[dict[str, Any]]) -> None:
         self.role.append_metrics(rows)
 
+    def recovery_report(self) -> list[str]:
+        return self.role.recovery_report()
+
     def sample(self, batch_size: int, **kwargs: Any) -> dict[str, np.ndarray]:
         return self.role.sample(batch_size, **kwargs)
 
@@ -120,6 +123,11 @@ class BufferClient:
 
     def flush(self, timeout: float | None = None) -> dict[str, Any]:
         return self._all("flush", timeout)
+
+    def recovery_report(self, timeout: float | None = None) -> list[str]:
+        """Every shard's recovery lines (see :meth:`selfplay.roles.buffer.BufferRole.recovery_report`)."""
+        return [line for lines in ray.get([h.recovery_report.remote() for h in self.handles], timeout=timeout)
+                for line in lines]
 
     def close(self, timeout: float | None = None) -> dict[str, Any]:
         return self._all("close", timeout)

@@ -115,6 +115,8 @@ class Driver:
             root, self.config_data, i, count, self.session) for i, n in enumerate(buffer_names)])
         self.buffer_names = buffer_names
         self.buffer_stats = self._started("the replay buffer", lambda: self.buffer.stats(timeout=600))
+        for line in self.buffer.recovery_report(timeout=60):  # also in the buffer's metric line
+            self.say(line)
         self.snapshot_version = self._started(
             "the snapshot store", lambda: self._get(self.snapshots.refresh.remote(), timeout=600))
         if self.config.run.learner:

@@ -54,6 +54,7 @@ TINY = {
     "learner.batch_size": 32, "learner.steps_per_snapshot": 5, "learner.min_buffer_positions": 60,
     "learner.target_reuse_ratio": 2.0,
     "run.status_seconds": 1.0, "run.top_up_seconds": 1.0,
+    "run.games": 0,  # no game limit: the soak's own clock ends each part
 }
 
 

@@ -109,6 +109,8 @@ class LocalRun:
             self.snapshots = SnapshotServerRole(config, self.run)
             self.buffer = BufferRole(config, self.run, session=session)
             buffer = self.buffer
+            for line in buffer.recovery_report():  # also in the buffer's metric line
+                self.say(line)
             if config.run.learner:
                 self.learner = LearnerRole(config, self.run, sampler=buffer,
                                            generated=lambda: buffer.stats()["positions_total"])
