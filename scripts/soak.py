@@ -344,6 +344,10 @@ class Soak:
         by_worker: dict[str, list[int]] = {}
         for row in metric_rows(self.run, "worker"):
             by_worker.setdefault(row["source"], []).append(int(row["snapshot_version"]))
+        from selfplay.metrics_schema import COMPONENTS, line_problems
+
+        rows = [r for c in COMPONENTS for r in metric_rows(self.run, c)]
+        bad_lines = sorted({p for r in rows for p in line_problems(r)})
         checks = {
             "game ids unique": unique,
             "every counted game present": not missing,
@@ -356,6 +360,7 @@ class Soak:
             and [i.published_at for i in infos] == sorted(i.published_at for i in infos),
             "snapshot versions only increase (metric lines)": logged == sorted(logged),
             "snapshot versions only increase (per worker)": all(s == sorted(s) for s in by_worker.values()),
+            "every metric line fits the schema": not bad_lines,
         }
         for name, ok in checks.items():
             if not ok:
@@ -369,6 +374,8 @@ class Soak:
             "verify_first_pass": {k: first.get(k) for k in ("games", "shards", "journals_replayed",
                                                               "shards_quarantined", "games_lost", "notes")},
             "checks": checks, "duplicates_total": _duplicates(self.run), "positions_logged": positions,
+            "schema_problems": bad_lines[:5],
+            "recovery_lines_logged": sum(1 for r in metric_rows(self.run, "buffer") if r.get("event") == "recovery"),
         }
 
 
