@@ -15,6 +15,7 @@ rather than handles), so a restarted actor is rebuilt from them exactly (``max_r
 from __future__ import annotations
 
 import os
+import sys
 import warnings
 from pathlib import Path
 from typing import Any
@@ -64,6 +65,12 @@ class BufferActor:
         from selfplay.roles.buffer import BufferRole
 
         self.role = BufferRole(_config(config_data), RunDir(Path(run_root)), index=index, count=count, session=session)
+        with warnings.catch_warnings():  # Ray's property uses one of its own deprecated ones
+            warnings.simplefilter("ignore")
+            restarted = bool(ray.get_runtime_context().was_current_actor_reconstructed)
+        if restarted:  # the driver printed the first start's lines; Ray forwards these to its terminal
+            for line in self.role.recovery_report():
+                print(line, file=sys.stderr, flush=True)
 
     def add_games(self, records: list[Any]) -> dict[str, Any]:
         return self.role.add_games(records)
