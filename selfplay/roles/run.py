@@ -25,11 +25,25 @@ from selfplay.rundir import RunDir
 HEARTBEAT_SECONDS = 5.0
 
 
+#: a file of this size that the run keeps and deletes just before its stop line, so that the stop
+#: line (and the roles' final lines) still fit when the run stops because its disk is full
+STOP_RESERVE_NAME = ".stop-line-reserve"
+STOP_RESERVE_BYTES = 64 * 1024
+
+
 class RunLog:
     """Writes the ``run`` lines: a start line now, a heartbeat every few seconds on its own timer,
-    and a stop line with the reason (:meth:`stop`)."""
+    and a stop line with the reason (:meth:`stop`). Keeps ``RUN/.stop-line-reserve`` meanwhile."""
 
     def __init__(self, run: RunDir, mode: str, session: int, *, source: str) -> None:
+        self.reserve = run.root / STOP_RESERVE_NAME
+        try:
+            with open(self.reserve, "wb") as f:
+                f.write(b"\0" * STOP_RESERVE_BYTES)
+                f.flush()
+                os.fsync(f.fileno())
+        except OSError:
+            pass  # a disk already full: the run will say so when it stores its first game
         self.log = MetricsLog(run.metrics, "run", source)
         self.log.write(event="start", pid=os.getpid(), host=socket.gethostname(), mode=mode, session=session)
         self._timer: Every | None = Every(HEARTBEAT_SECONDS, lambda: self.log.write(event="heartbeat"), "heartbeat")
@@ -42,6 +56,10 @@ class RunLog:
             self._timer = None
         if not self.stopped:
             self.stopped = True
+            try:
+                self.reserve.unlink(missing_ok=True)  # room for this line on a full disk
+            except OSError:
+                pass
             self.log.write(event="stop", stop_reason=reason, **counts)
 
 
