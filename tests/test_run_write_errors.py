@@ -101,3 +101,21 @@ def test_ray_run_on_a_full_disk_stops_with_one_line_and_keeps_every_game(small_d
     stops = [r for r in metric_rows(run, "run") if r.get("event") == "stop"]
     assert stops and stops[-1]["stop_reason"] == "error: " + errors[0].removeprefix("selfplay run: error: ")
     assert _check_nothing_accepted_was_lost(run, filler) > 0
+
+
+def test_in_process_run_with_its_learner_on_a_full_disk_stops_with_one_line(small_disk, tmp_path):
+    """With the learner on, a snapshot, a checkpoint or the journal may be the first write to fail:
+    whichever it is, one line, stop reason "error: ...", nothing accepted lost."""
+    cfg = tmp_path / "tiny.toml"
+    cfg.write_text(dump_config(tiny_config(replay__shard_max_age_seconds=600.0)))
+    run = small_disk / "run"
+    filler = _fill_leaving(small_disk, 400 * 1024)
+    proc = _selfplay("run", "--in-process", "--config", str(cfg), "--out", str(run), "--minutes", "4")
+    assert proc.returncode == 2, proc.stderr[-2000:]
+    assert "Traceback" not in proc.stderr, proc.stderr[-2000:]
+    errors = [ln for ln in proc.stderr.splitlines() if ln.startswith("selfplay run: error:")]
+    assert len(errors) == 1 and "disk is full" in errors[0] and "kept" in errors[0], proc.stderr[-2000:]
+    assert "journal" in errors[0] or str(run) in errors[0]  # it names what could not be written
+    stops = [r for r in metric_rows(run, "run") if r.get("event") == "stop"]
+    assert stops and stops[-1]["stop_reason"] == "error: " + errors[0].removeprefix("selfplay run: error: ")
+    assert _check_nothing_accepted_was_lost(run, filler) > 0
