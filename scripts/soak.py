@@ -367,13 +367,12 @@ class Soak:
                 res.problems.append(f"check failed: {name}")
         for f in res.faults:
             f.detail = (f.detail + f"lost {per_fault[id(f)]}").strip()
-        positions = sum(r["positions_total"] for r in metric_rows(self.run, "run")[-1:] if "positions_total" in r)
         res.final = {
             "games_final": len(ids), "games_lost": len(missing) + max(0, max(res.counts_seen, default=0) - len(ids)),
             "positions_final": again["positions"], "shards_final": again["shards"], "snapshots_final": len(versions),
             "verify_first_pass": {k: first.get(k) for k in ("games", "shards", "journals_replayed",
                                                               "shards_quarantined", "games_lost", "notes")},
-            "checks": checks, "duplicates_total": _duplicates(self.run), "positions_logged": positions,
+            "checks": checks, "duplicates_total": _duplicates(self.run),
             "schema_problems": bad_lines[:5],
             "recovery_lines_logged": sum(1 for r in metric_rows(self.run, "buffer") if r.get("event") == "recovery"),
         }
