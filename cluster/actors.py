@@ -16,6 +16,7 @@ rather than handles), so a restarted actor is rebuilt from them exactly (``max_r
 from __future__ import annotations
 
 import os
+import sys
 import warnings
 from pathlib import Path
 from typing import Any
@@ -65,12 +66,21 @@ class BufferActor:
         from selfplay.roles.buffer import BufferRole
 
         self.role = BufferRole(_config(config_data), RunDir(Path(run_root)), index=index, count=count, session=session)
+        with warnings.catch_warnings():  # Ray's property uses one of its own deprecated ones
+            warnings.simplefilter("ignore")
+            restarted = bool(ray.get_runtime_context().was_current_actor_reconstructed)
+        if restarted:  # the driver printed the first start's lines; Ray forwards these to its terminal
+            for line in self.role.recovery_report():
+                print(line, file=sys.stderr, flush=True)
 
     def add_games(self, records: list[Any]) -> dict[str, Any]:
         return self.role.add_games(records)
 
     def append_metrics(self, rows: list[dict[str, Any]]) -> None:
         self.role.append_metrics(rows)
+
+    def recovery_report(self) -> list[str]:
+        return self.role.recovery_report()
 
     def sample(self, batch_size: int, **kwargs: Any) -> dict[str, np.ndarray]:
         return self.role.sample(batch_size, **kwargs)
@@ -121,6 +131,11 @@ class BufferClient:
 
     def flush(self, timeout: float | None = None) -> dict[str, Any]:
         return self._all("flush", timeout)
+
+    def recovery_report(self, timeout: float | None = None) -> list[str]:
+        """Every shard's recovery lines (see :meth:`selfplay.roles.buffer.BufferRole.recovery_report`)."""
+        return [line for lines in ray.get([h.recovery_report.remote() for h in self.handles], timeout=timeout)
+                for line in lines]
 
     def close(self, timeout: float | None = None) -> dict[str, Any]:
         return self._all("close", timeout)

@@ -21,7 +21,8 @@ from typing import Any, Callable
 
 from selfplay.config import RunConfig
 from selfplay.errors import SelfplayError
-from selfplay.roles.run import GameBudget, RunLog, StopSignals, closing_summary, error_reason, status_line, stop_reached
+from selfplay.roles.run import (GameBudget, RunLog, StopSignals, closing_summary, error_reason, status_line,
+                                stop_reached, write_failure)
 from selfplay.roles.runlock import RunLock
 from selfplay.rundir import RunDir
 
@@ -116,6 +117,8 @@ class Driver:
             root, self.config_data, i, count, self.session) for i, n in enumerate(buffer_names)])
         self.buffer_names = buffer_names
         self.buffer_stats = self._started("the replay buffer", lambda: self.buffer.stats(timeout=600))
+        for line in self.buffer.recovery_report(timeout=60):  # also in the buffer's metric line
+            self.say(line)
         self.snapshot_version = self._started(
             "the snapshot store", lambda: self._get(self.snapshots.refresh.remote(), timeout=600))
         if self.config.run.learner:
@@ -286,10 +289,16 @@ class Driver:
             return
         if not isinstance(exc, ray.exceptions.RayTaskError):
             raise exc
-        cause = getattr(exc, "cause", None)
+        cause = root_cause(exc)
+        first = str(cause if cause is not None else exc).strip().splitlines()
+        if self.stopping:  # the run is ending already: say it and collect the other calls
+            self.event(f"{who} failed while stopping: {first[0] if first else type(exc).__name__}")
+            return
+        stop = write_failure(cause) if cause is not None else None
+        if stop is not None:  # a full or read-only disk: stop cleanly with the store's one line
+            raise stop from None
         if isinstance(cause, SelfplayError):
             raise SelfplayError(f"{who}: {cause}") from None
-        first = str(cause if cause is not None else exc).strip().splitlines()
         self.failing[who] = self.failing.get(who, 0) + 1
         self.event(f"{who} failed: {first[-1] if first else type(exc).__name__}")
         if self.failing[who] >= self.MAX_CONSECUTIVE_ERRORS:
@@ -455,6 +464,19 @@ def _actor_failures() -> tuple[type[BaseException], ...]:
         "RayActorError", "ActorDiedError", "ActorUnavailableError", "ObjectLostError", "OwnerDiedError",
         "WorkerCrashedError", "NodeDiedError", "ActorUnschedulableError", "ObjectReconstructionFailedError")
         if hasattr(ray.exceptions, name))
+
+
+def root_cause(exc: BaseException) -> BaseException | None:
+    """The exception a task raised in the end: a worker's call fails with Ray's error wrapping
+    the buffer's error that Ray wrapped in turn; unwrap every ``RayTaskError`` layer."""
+    import ray
+
+    cause: BaseException | None = exc
+    for _ in range(16):  # layers: one per call between actors
+        if not isinstance(cause, ray.exceptions.RayTaskError):
+            break
+        cause = getattr(cause, "cause", None)
+    return cause
 
 
 def actor_failure(exc: BaseException) -> bool:

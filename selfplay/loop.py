@@ -25,7 +25,8 @@ from selfplay.errors import ConfigError, RunDirError
 from selfplay.learner_config import _Section
 from selfplay.roles.buffer import BufferRole
 from selfplay.roles.learner import LearnerRole
-from selfplay.roles.run import GameBudget, RunLog, closing_summary, error_reason, stop_reached
+from selfplay.roles.run import (GameBudget, RunLog, closing_summary, error_reason, stop_reached,
+                                write_failure)
 from selfplay.roles.runlock import RunLock
 from selfplay.roles.selfplay import SelfPlayRole
 from selfplay.roles.snapshots import SnapshotServerRole
@@ -109,6 +110,8 @@ class LocalRun:
             self.snapshots = SnapshotServerRole(config, self.run)
             self.buffer = BufferRole(config, self.run, session=session)
             buffer = self.buffer
+            for line in buffer.recovery_report():  # also in the buffer's metric line
+                self.say(line)
             if config.run.learner:
                 self.learner = LearnerRole(config, self.run, sampler=buffer,
                                            generated=lambda: buffer.stats()["positions_total"])
@@ -270,11 +273,15 @@ def execute_in_process(config: RunConfig, run: RunDir, lock: RunLock, *,
         reason = "interrupted"
         raise
     except BaseException as exc:
-        reason = error_reason(exc)
+        stop = write_failure(exc)  # a full or read-only disk: a clean stop with one line
+        reason = error_reason(stop or exc)
+        if stop is not None and stop is not exc:
+            raise stop from None
         raise
     finally:
-        stats = local.close(reason, failed=reason.startswith("error"))
-        if stats:
+        failed = reason.startswith("error")
+        stats = local.close(reason, failed=failed)
+        if stats and not failed:  # an error stop says its one line (the error) instead
             say(closing_summary(run, reason, stats, elapsed=local.status.elapsed, initial_games=local.initial_games,
                                 initial_positions=local.initial_positions,
                                 snapshot_version=local.store.latest_version(),

@@ -118,6 +118,11 @@ BUFFER = Component("buffer", "the buffer shard, e.g. `buffer0`", "one replay buf
     _f("shards_total", "int", "shards", "shard files finalised (whole run)", True),
     _f("newest_snapshot_in_data", "int", "version", "newest snapshot version among the stored games", True),
     _f("refilled_positions", "int", "positions", "positions read back into the window at start (a resume)", True),
+    _f("event", "str", "-", "`recovery` on the line a buffer writes right after opening a run that needed "
+       "recovery (see `recovery`)", choices=("recovery",)),
+    _f("recovery", "str", "-", "what opening the record store found and repaired, sentences joined by `; `: "
+       "journals replayed (with a torn tail cut), catalog rebuilt, stale temporary files removed, shards "
+       "indexed or quarantined"),
 ))
 
 LEARNER = Component("learner", "`learner`", "the learner role", (

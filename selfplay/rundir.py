@@ -161,8 +161,10 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         tmp.unlink(missing_ok=True)  # never leave half a file behind (e.g. the disk is full)
+        if isinstance(exc, OSError) and exc.filename is None:
+            exc.filename = str(path)  # a failed write names no file of its own: name the one being written
         raise
     fsync_dir(path.parent)
 

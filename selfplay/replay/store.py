@@ -43,7 +43,7 @@ import time
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Literal
+from typing import Any, Callable, Iterable, Literal
 
 from selfplay.errors import FormatError, RunDirError, SelfplayError
 from selfplay.metrics import MetricsLog
@@ -229,12 +229,15 @@ class RecordStore:
     verify: at open, check catalogued shards by ``"size"``, ``"crc"`` (the whole file's CRC32
         against the catalog's; reads every byte, decodes nothing) or ``"full"`` (every frame
         decoded, and its game compared with run.toml's).
+    say: where the recovery lines (:meth:`RecoveryReport.lines`) go; default: this module's
+        logger, as warnings.
     """
 
     def __init__(self, run_dir: str | os.PathLike[str] | RunDir, config: Any = None, *,
                  writer: str = "main", max_games: int = 512, max_bytes: int = 16 * 1024 * 1024,
                  max_age_seconds: float = 60.0, compress: bool = True,
-                 verify: Literal["size", "crc", "full"] = "crc") -> None:
+                 verify: Literal["size", "crc", "full"] = "crc",
+                 say: Callable[[str], None] | None = None) -> None:
         if config is not None:  # a ReplayConfig: its shard settings win over the keywords
             opts = config.store_options()
             max_games, max_bytes = int(opts["max_games"]), int(opts["max_bytes"])
@@ -275,7 +278,10 @@ class RecordStore:
                     self.recovery.catalog_rebuilt = True
                     self.recovery.games_found = self.catalog.totals().games
                 for line in self.recovery.lines():  # a person reading the run's log learns it
-                    log.warning("record store %s of %s: %s", writer, self.run.root, line)
+                    if say is not None:
+                        say(line)
+                    else:
+                        log.warning("record store %s of %s: %s", writer, self.run.root, line)
             except BaseException:
                 self.catalog.close()
                 raise

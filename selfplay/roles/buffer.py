@@ -41,7 +41,11 @@ class BufferRole:
         self.index, self.count = index, count
         self.game = make_game(config.game.name, **config.game.options)
         self._lock = threading.RLock()
-        self.store = RecordStore(run, writer=f"buffer{index}", **config.replay.store_options())
+        #: what opening the store found and repaired (journals replayed, torn tails cut, catalog
+        #: rebuilt, stale temporary files removed, shards indexed or quarantined), one sentence each
+        self.recovery_lines: list[str] = []
+        self.store = RecordStore(run, writer=f"buffer{index}", say=self.recovery_lines.append,
+                                 **config.replay.store_options())
         capacity = max(1, config.replay.window_positions // count)
         self.window = ReplayBuffer(self.game, capacity, recency_weight=config.replay.recency_weight,
                                    augment=config.replay.augment, seed=buffer_seed(config.run.seed, session, index))
@@ -56,6 +60,8 @@ class BufferRole:
         self._totals_shards = self.store.commits
         self._metrics_at = 0.0
         self._closed = False
+        if self.recovery_lines:  # said in the metrics at once, with the counters after recovery
+            self._write_line(event="recovery", recovery="; ".join(self.recovery_lines))
         self._timer = Every(self.tick_seconds, self.tick, f"buffer{index}") if timer else None
 
     # ---- what the others call ----------------------------------------------------------------
@@ -71,6 +77,10 @@ class BufferRole:
                     self.newest_snapshot = max(self.newest_snapshot, int(rec.snapshot.max()))
         return {"added": [r.game_id for r in result.accepted], "duplicates": result.duplicates,
                 "positions": sum(r.num_positions for r in result.accepted)}
+
+    def recovery_report(self) -> list[str]:
+        """What opening the store found and repaired, as lines for a person ([] if nothing)."""
+        return [f"buffer{self.index} recovered the run: {line}" for line in self.recovery_lines]
 
     def append_metrics(self, rows: list[dict[str, Any]]) -> None:
         """Append metric lines written by a role far from the run directory."""
@@ -133,14 +143,21 @@ class BufferRole:
             self._timer.check()
 
     def close(self) -> dict[str, Any]:
-        """Stop the timer, write the waiting games, write the final line, release the store."""
+        """Stop the timer, write the waiting games, write the final line, release the store.
+        A store that failed to write (disk full, read-only) is closed without sealing: what it
+        accepted is in its journal and sealed when the run next opens."""
         if self._timer is not None:
             self._timer.stop()
             self._timer = None
+        from selfplay.replay.store import StoreWriteError
+
         with self._lock:
             if self._closed:
                 return self.stats()
-            self.store.flush()
+            try:
+                self.store.flush()
+            except StoreWriteError:
+                pass  # a failed store (disk full): its games stay in the journal, sealed at the next open
             stats = self.stats(fresh=True)
             self._write_line(final=True)
             self._closed = True

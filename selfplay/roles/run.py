@@ -4,6 +4,7 @@ makes them hold, the stop signals, the status line and the closing summary."""
 
 from __future__ import annotations
 
+import errno
 import math
 import os
 import signal
@@ -15,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from selfplay.config import RunConfig
+from selfplay.errors import SelfplayError
 from selfplay.metrics import MetricsLog
 from selfplay.roles.timer import Every
 from selfplay.rundir import RunDir
@@ -23,11 +25,25 @@ from selfplay.rundir import RunDir
 HEARTBEAT_SECONDS = 5.0
 
 
+#: a file of this size that the run keeps and deletes just before its stop line, so that the stop
+#: line (and the roles' final lines) still fit when the run stops because its disk is full
+STOP_RESERVE_NAME = ".stop-line-reserve"
+STOP_RESERVE_BYTES = 64 * 1024
+
+
 class RunLog:
     """Writes the ``run`` lines: a start line now, a heartbeat every few seconds on its own timer,
-    and a stop line with the reason (:meth:`stop`)."""
+    and a stop line with the reason (:meth:`stop`). Keeps ``RUN/.stop-line-reserve`` meanwhile."""
 
     def __init__(self, run: RunDir, mode: str, session: int, *, source: str) -> None:
+        self.reserve = run.root / STOP_RESERVE_NAME
+        try:
+            with open(self.reserve, "wb") as f:
+                f.write(b"\0" * STOP_RESERVE_BYTES)
+                f.flush()
+                os.fsync(f.fileno())
+        except OSError:
+            pass  # a disk already full: the run will say so when it stores its first game
         self.log = MetricsLog(run.metrics, "run", source)
         self.log.write(event="start", pid=os.getpid(), host=socket.gethostname(), mode=mode, session=session)
         self._timer: Every | None = Every(HEARTBEAT_SECONDS, lambda: self.log.write(event="heartbeat"), "heartbeat")
@@ -40,6 +56,10 @@ class RunLog:
             self._timer = None
         if not self.stopped:
             self.stopped = True
+            try:
+                self.reserve.unlink(missing_ok=True)  # room for this line on a full disk
+            except OSError:
+                pass
             self.log.write(event="stop", stop_reason=reason, **counts)
 
 
@@ -47,6 +67,29 @@ def error_reason(exc: BaseException) -> str:
     """The stop reason of a run ended by ``exc``: ``error: <its first line>``."""
     text = str(exc).strip().splitlines()
     return "error: " + (text[0] if text else type(exc).__name__)
+
+
+#: errno values of a disk that cannot take more writes: the run stops cleanly on them
+_DISK_ERRNOS = (errno.ENOSPC, errno.EROFS, errno.EDQUOT)
+
+
+def write_failure(exc: BaseException) -> SelfplayError | None:
+    """The one-line error that stops a run cleanly when writing its files failed: the record
+    store's :class:`~selfplay.replay.store.StoreWriteError` as it is, and an ``OSError`` of a full
+    or read-only disk (a snapshot, a checkpoint) as one line naming the file; None for anything
+    else. Games the store accepted before are kept either way (its journal is sealed at the next
+    open)."""
+    from selfplay.replay.store import StoreWriteError
+
+    if isinstance(exc, StoreWriteError):
+        return exc
+    if isinstance(exc, OSError) and exc.errno in _DISK_ERRNOS:
+        why = {errno.ENOSPC: "the disk is full", errno.EROFS: "the file system is read-only",
+               errno.EDQUOT: "the disk quota is used up"}[exc.errno]
+        where = f" {exc.filename}" if exc.filename else ""
+        return StoreWriteError(f"cannot write{where}: {why}; every game stored before is kept — "
+                               "free space (or make it writable) and resume the run")
+    return None
 
 
 # ---- stop conditions --------------------------------------------------------------------------
