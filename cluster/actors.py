@@ -182,8 +182,9 @@ class LearnerActor:
 
 @ray.remote(num_cpus=0)
 class EvaluationActor:
-    """The evaluation role (rated rounds every K snapshots); it reads everything from the run
-    directory, so a restarted actor carries on where the stored results end."""
+    """The evaluation role (rated rounds every K snapshots, and gating when it is on); it reads
+    everything from the run directory, so a restarted actor carries on where the stored results
+    end."""
 
     def __init__(self, run_root: str, config_data: dict[str, Any]) -> None:
         from selfplay.roles.evaluation import EvaluationRole
@@ -194,7 +195,10 @@ class EvaluationActor:
         """One rated round if one is due (its metric line); else wait ``idle_seconds``, None."""
         import time
 
-        line = self.role.step()
+        settings = self.role.settings
+        if settings.gate_threshold is not None:
+            self.role.gate_pending()  # the snapshot actor serves only what gating accepted
+        line = self.role.step() if settings.enabled else None
         if line is None:
             time.sleep(idle_seconds)
         return line

@@ -125,7 +125,7 @@ class Driver:
             self.learner = LearnerActor.options(max_restarts=-1, max_task_retries=0, **head_options()).remote(
                 root, self.config_data, buffer_names)
             self.learner_status = self._started("the learner", lambda: self._get(self.learner.status.remote(), 600))
-        if self.config.evaluation.enabled:
+        if self.config.evaluation.enabled or self.config.evaluation.gate_threshold is not None:
             self.evaluation = EvaluationActor.options(max_restarts=-1, max_task_retries=0, **head_options()).remote(
                 root, self.config_data)
         self.started_at = time.time()

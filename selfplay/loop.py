@@ -115,7 +115,7 @@ class LocalRun:
             if config.run.learner:
                 self.learner = LearnerRole(config, self.run, sampler=buffer,
                                            generated=lambda: buffer.stats()["positions_total"])
-            if config.evaluation.enabled:
+            if config.evaluation.enabled or config.evaluation.gate_threshold is not None:
                 from selfplay.roles.evaluation import EvaluationRole
 
                 self.evaluation = EvaluationRole(self.run, config)
@@ -203,7 +203,11 @@ class LocalRun:
             self.generate(self.loop.games_per_phase)
             self.train()
             if self.evaluation is not None:
-                self.evaluation.step()  # a bounded rated round when one is due
+                if self.config.evaluation.gate_threshold is not None:
+                    self.evaluation.gate_pending()  # the newest snapshot against the accepted one
+                    self.snapshots.refresh()
+                if self.config.evaluation.enabled:
+                    self.evaluation.step()  # a bounded rated round when one is due
             self.status.phases += 1
             if on_phase is not None:
                 on_phase(self)

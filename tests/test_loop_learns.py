@@ -309,3 +309,25 @@ def test_in_process_run_evaluates_every_k_snapshots_and_rates_them(tmp_path):
     from selfplay.cli import main
 
     assert main(["ladder", str(run_dir), "--json"]) == 0
+
+
+def test_with_gating_workers_only_play_versions_gating_accepted(tmp_path):
+    """AlphaGo Zero's evaluator (Silver et al. 2017, Methods): a new snapshot is used for
+    self-play only once it scored at least the threshold against the current one. Every version
+    a worker played must be 1 or a version a gating match passed."""
+    from selfplay.config import with_overrides
+    from selfplay.metrics import read_metrics
+    from selfplay.snapshots import SnapshotStore
+
+    cfg = with_overrides(tiny_config(games=128), {"evaluation.gate_threshold": 0.5, "evaluation.gate_games": 2,
+                                                  "evaluation.simulations": 4})
+    run_dir = tmp_path / "run"
+    run_local_loop(cfg, run_dir, loop=LoopConfig(games_per_phase=16))
+    rows = list(read_metrics(run_dir / "metrics.jsonl"))
+    gates = [r for r in rows if r["component"] == "gate"]
+    assert gates, "no gating match was played"
+    accepted = {1} | {r["candidate"] for r in gates if r["passed"]}
+    played = {r["snapshot_version"] for r in rows if r["component"] == "worker"}
+    assert played <= accepted
+    assert all(r["passed"] == (r["score"] >= r["threshold"]) for r in gates)
+    assert SnapshotStore(run_dir).latest_version() >= max(accepted)

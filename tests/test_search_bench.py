@@ -47,6 +47,6 @@ def test_bench_all_runs_its_parts_and_refuses_unknown_ones(capsys):
     assert "--parts: 'nonsense'" in capsys.readouterr().err
     assert main(["bench", "all", "--json", "--quick", "--parts", "memory"]) == 0
     out = json.loads(capsys.readouterr().out)
-    rss = out["memory"]["peak_rss_bytes_by_games_in_parallel"]
+    rss = out["memory"]["rss_bytes_by_games_in_parallel"]
     assert set(rss) == {"16", "64", "256"} and all(v > 50 * 2**20 for v in rss.values())
     assert out["seconds_total"] > 0

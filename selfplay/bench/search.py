@@ -21,6 +21,7 @@ one-second slices, so that a drifting load on a shared machine touches all alike
 from __future__ import annotations
 
 import argparse
+import gc
 import json
 import statistics
 import time
@@ -171,6 +172,7 @@ def measure(args: argparse.Namespace) -> dict[str, Any]:
                                 single_search, games_in_parallel=1, worker_id="bench1", seed=args.seed)
         many[b].step()  # warm-up (compilation, allocator)
         one[b].step()
+    gc.freeze()  # as a worker process does after start-up (selfplay.roles.selfplay)
     runs: dict[str, list[dict[str, float]]] = {b: [] for b in backends}
     one_runs: dict[str, list[dict[str, float]]] = {b: [] for b in backends}
     bounds: dict[str, list[float]] = {b: [] for b in backends}

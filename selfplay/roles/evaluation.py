@@ -232,20 +232,11 @@ class EvaluationRole:
         return self.run.root / "accepted-snapshot.json"
 
     def accepted_version(self) -> int:
-        """The snapshot workers should play with under gating: the last accepted version (1 before
+        """The version workers may use: with gating, the last one gating accepted (1 before
         any); without gating, the newest snapshot."""
-        import json
-
         if self.settings.gate_threshold is None:
             return self.players.store.latest_version()
-        try:
-            data = json.loads(self.accepted_path.read_bytes())
-            return int(data["version"])
-        except FileNotFoundError:
-            return 1
-        except (ValueError, KeyError, TypeError):
-            raise ConfigError(f"{self.accepted_path} is corrupt; it holds only the accepted version "
-                              "and may be deleted (gating starts again from snapshot 1)") from None
+        return read_accepted_version(self.run)
 
     def gate_pending(self) -> int:
         """Gate the newest snapshot against the accepted one if it is newer; returns the accepted
@@ -264,4 +255,19 @@ class EvaluationRole:
         return current
 
 
-__all__ = ["EvaluationRole", "FAILED_OPPONENT", "LADDER_OPPONENT"]
+def read_accepted_version(run: RunDir) -> int:
+    """The version gating last accepted (``RUN/accepted-snapshot.json``; 1 before any)."""
+    import json
+
+    path = run.root / "accepted-snapshot.json"
+    try:
+        data = json.loads(path.read_bytes())
+        return int(data["version"])
+    except FileNotFoundError:
+        return 1
+    except (ValueError, KeyError, TypeError):
+        raise ConfigError(f"{path} is corrupt; it holds only the accepted version "
+                          "and may be deleted (gating starts again from snapshot 1)") from None
+
+
+__all__ = ["EvaluationRole", "FAILED_OPPONENT", "LADDER_OPPONENT", "read_accepted_version"]

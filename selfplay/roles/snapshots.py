@@ -41,6 +41,9 @@ class SnapshotServerRole:
         from selfplay.snapshots import SnapshotStore
 
         self.config = config
+        self.run = run
+        #: gating is on: serve only what the evaluation role accepted (RUN/accepted-snapshot.json)
+        self.gated = config.evaluation.gate_threshold is not None
         self.game_name = config.game.name
         self.game_options = dict(config.game.options)
         self.store = SnapshotStore(run, source="snapshots")
@@ -62,9 +65,14 @@ class SnapshotServerRole:
         self._timer = Every(max(0.1, config.worker.snapshot_poll_seconds), self.refresh, "snapshot-server") if timer else None
 
     def refresh(self) -> int:
-        """Adopt the newest snapshot on disk if it is newer than the one served; return the version served."""
+        """Adopt the newest snapshot on disk if it is newer than the one served; return the version
+        served. With gating (``[evaluation] gate_threshold``) only versions up to the one gating
+        last accepted are served (AlphaGo Zero's evaluator; Silver et al. 2017)."""
         with self._lock:
+            ceiling = self._gate_ceiling()
             for version in reversed(self.store.versions()):
+                if version > ceiling:
+                    continue
                 if version <= self.version:
                     break
                 if version in self.refused:
@@ -83,6 +91,13 @@ class SnapshotServerRole:
                 self._write_line()
                 break
             return self.version
+
+    def _gate_ceiling(self) -> float:
+        if self.gated:
+            from selfplay.roles.evaluation import read_accepted_version
+
+            return read_accepted_version(self.run)
+        return float("inf")
 
     def current(self, known_version: int = -1) -> tuple[int, Any]:
         """(version, weights) if the served version is newer than ``known_version``, else (version, None)."""
