@@ -237,7 +237,7 @@ def _print_part(name: str, figs: dict[str, Any]) -> None:
         for games, rss in figs["rss_bytes_by_games_in_parallel"].items():
             top = figs["peak_rss_bytes_by_games_in_parallel"][games]
             _say(f"  one worker, {games:>3} games in parallel: {rss / 2**20:,.0f} MiB resident while playing "
-                 f"(peak {top / 2**20:,.0f} MiB, at start-up)")
+                 f"(peak {top / 2**20:,.0f} MiB)")
 
 
 def run(args: argparse.Namespace) -> int:
