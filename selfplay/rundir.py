@@ -103,9 +103,26 @@ _TEMP_RE = re.compile(r"^\.(?P<name>.+)\.tmp-(?P<pid>\d+)$")
 STALE_TEMP_AGE_SECONDS = 60.0
 
 
-def _pid_running(pid: int) -> bool:
-    if pid == os.getpid():
+def pid_alive(pid: int) -> bool:
+    """True if process ``pid`` runs on this machine (a zombie counts as gone; without /proc a
+    process that answers a signal counts as running)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
         return True
+    except OverflowError:
+        return False
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return True  # no /proc: assume it lives
+    return state != "Z"
+
+
+def _pid_running(pid: int) -> bool:
+    return pid == os.getpid() or pid_alive(pid)
     try:
         os.kill(pid, 0)
     except ProcessLookupError:

@@ -22,24 +22,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 from selfplay.errors import RunDirError
-from selfplay.rundir import RunDir, atomic_write_bytes
+from selfplay.rundir import RunDir, atomic_write_bytes, pid_alive
 
 LOCK_NAME = "run.lock"
 SESSIONS_NAME = "sessions.json"
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    try:
-        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except OSError:
-        return True  # no /proc: assume it lives
-    return state != "Z"
 
 
 def _cmdline(pid: int) -> str:
@@ -85,7 +71,7 @@ class RunLock:
                     raise RunDirError(
                         f"run directory {str(run.root)!r} is locked by {_describe(owner)}; from here it cannot "
                         f"be told whether that run is alive. If it is over, delete {path} and start again")
-                if isinstance(pid, int) and _pid_alive(pid) and pid != os.getpid():
+                if isinstance(pid, int) and pid_alive(pid) and pid != os.getpid():
                     raise RunDirError(f"run directory {str(run.root)!r} is in use by {_describe(owner)}")
                 ended = _end_leftovers(owner.get("helpers") or [])
                 notices.append(f"took over the lock of {_describe(owner)}, which is no longer running"
@@ -146,7 +132,7 @@ def _end_leftovers(pids: list[Any]) -> list[int]:
     reused by something else is left alone)."""
     ended = []
     for pid in pids:
-        if not isinstance(pid, int) or pid == os.getpid() or not _pid_alive(pid):
+        if not isinstance(pid, int) or pid == os.getpid() or not pid_alive(pid):
             continue
         if "ray" not in _cmdline(pid).lower():
             continue
