@@ -572,6 +572,8 @@ class RunMonitor:
             "snapshot_lag_versions": lag,
             "data_age_seconds": _round(age, 1),
             "games_in_flight": last.get("games_in_flight"),
+            "inference": (f"{last['inference_backend']} ({last.get('inference_precision', '?')})"
+                          if isinstance(last.get("inference_backend"), str) else None),
             "restarts": g.resets,
             "first_seen": st.first_t,
             "last_seen": st.last_t,

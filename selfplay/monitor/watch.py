@@ -144,6 +144,9 @@ def render_summary(s: Summary) -> RenderableType:
         ("network evals/s", fmt_num(s.get("evals_per_second"))),
         workers_row,
     ])
+    backends = sorted({w["inference"] for w in s.get("workers") or [] if w.get("inference")})
+    if backends:
+        head.append(f"\ninference {', '.join(backends)}")
     fresh = _kv_table("freshness", [
         ("latest snapshot", fmt_num(snap.get("version"))),
         ("published", f"{fmt_duration(snap.get('age_seconds'))} {when_label(s)}"
