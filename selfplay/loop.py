@@ -127,7 +127,8 @@ class LocalRun:
             for slot in range(config.run.workers or 1):
                 self.workers.append(SelfPlayRole(
                     config, slot=slot, session=session, weights=self.snapshots.current, deliver=buffer.add_games,
-                    metrics=self.run.metrics, game_limit=self.budget.limit_for(slot, "")))
+                    metrics=self.run.metrics, game_limit=self.budget.limit_for(slot, ""),
+                    background_swaps=False))  # one process: the same games every time
         except BaseException as exc:
             self.close(error_reason(exc), failed=True)
             raise

@@ -54,10 +54,16 @@ class MetricsLog:
 def append_rows(path: str | os.PathLike[str], rows: list[dict[str, Any]]) -> None:
     """Append finished metric lines to ``path``, each with one ``write`` call (so several
     processes on one machine can share the file without interleaving lines)."""
-    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    fd = os.open(path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
     try:
+        size = os.fstat(fd).st_size
+        # a writer that hit a full disk may have left half a line: end it first, so that this
+        # line (a run's stop line, say) stays whole and readable
+        torn = size > 0 and os.pread(fd, 1, size - 1) != b"\n"
         for row in rows:
             data = (json.dumps(row, separators=(",", ":"), default=_jsonable) + "\n").encode()
+            if torn:
+                data, torn = b"\n" + data, False
             if os.write(fd, data) != len(data):  # a short append: the disk filled mid-line
                 raise OSError(28, "short write")
     finally:

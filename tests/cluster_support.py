@@ -51,7 +51,10 @@ def metric_rows(run: Path, component: str) -> list[dict[str, Any]]:
     with open(run / "metrics.jsonl", "rb") as f:
         for line in f:
             if line.endswith(b"\n"):
-                row = json.loads(line)
+                try:
+                    row = json.loads(line)
+                except ValueError:  # half a line left by a full disk, as the monitor skips it
+                    continue
                 if row.get("component") == component:
                     rows.append(row)
     return rows

@@ -369,3 +369,15 @@ def test_kill_9_of_the_run_driver_loses_no_accepted_game(tmp_path):
         assert "buffer0-00000000.journal" in store.recovery.journals_replayed
     on_disk = [r.game_id for r in RunReader(run, on_corrupt="raise").records()]
     assert set(seen) <= set(on_disk) and len(on_disk) == len(set(on_disk))
+
+
+def test_a_line_after_half_a_line_stays_whole(tmp_path):
+    """A writer that hit a full disk leaves half a line; the next line (a stop line, say) must
+    still be read (JSON Lines: one object per line)."""
+    from selfplay.metrics import MetricsLog, read_metrics
+
+    path = tmp_path / "metrics.jsonl"
+    path.write_bytes(b'{"t":1.0,"component":"run","source":"x","event":"heartbeat"}\n{"t":2.0,"compo')
+    MetricsLog(path, "run", "driver").write(event="stop", stop_reason="minutes reached")
+    rows = list(read_metrics(path))
+    assert [r.get("event") for r in rows] == ["heartbeat", "stop"]

@@ -201,7 +201,7 @@ def test_tictactoe_from_scratch_stops_losing_to_perfect_play(tmp_path):
         "game": {"name": "mnk", "options": {"m": 3, "n": 3, "k": 3}},
         "network": {"blocks": 2, "channels": 32, "value_hidden": 32},
         "search": {"simulations": 48, "reduced_simulations": 16, "temperature_moves": 3},
-        "worker": {"games_in_parallel": 64},
+        "worker": {"games_in_parallel": 64, "inference": "torch"},  # the same games on every machine
         "replay": {"window_positions": 40_000},
         "learner": {"batch_size": 128, "optimizer": "adam", "learning_rate": 0.002,
                     "steps_per_snapshot": 100, "min_buffer_positions": 1000, "target_reuse_ratio": 6.0},

@@ -43,7 +43,7 @@ class SelfPlayRole:
 
     def __init__(self, config: RunConfig, *, slot: int, session: int, weights: WeightsSource, deliver: Deliver,
                  metrics: Any, incarnation: str = "", game_limit: int | None = None,
-                 fetch: Callable[[Any], Mapping[str, Any]] = lambda w: w) -> None:
+                 fetch: Callable[[Any], Mapping[str, Any]] = lambda w: w, background_swaps: bool = True) -> None:
         import torch
 
         from selfplay.network import build_network
@@ -57,6 +57,9 @@ class SelfPlayRole:
         self.weights = weights
         self.fetch = fetch
         self.deliver = deliver
+        #: compile new snapshots in a background thread (a worker process); False: at pickup,
+        #: so a run in one process plays the same games every time (``selfplay run --in-process``)
+        self.background_swaps = background_swaps
         self.game = make_game(config.game.name, **config.game.options)
         self.net = build_network(self.game, config.network, seed=network_seed(config.run.seed))
         self.version = 0
@@ -118,7 +121,7 @@ class SelfPlayRole:
                 return True
         except RuntimeError:
             return False  # the server checked the shapes; anything else: keep playing what we have
-        if not self.evaluator.prepare(state, version):
+        if not self.evaluator.prepare(state, version, background=self.background_swaps):
             self._preparing = version  # refused (recorded in evaluator.swaps.refused): not retried
             return False
         self._preparing = version
