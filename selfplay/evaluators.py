@@ -217,9 +217,13 @@ class NetworkEvaluator:
 
     def _weights_fingerprint(self) -> int:
         # version counters of the first and last parameter and the first batch-norm statistic:
-        # load_state_dict and optimiser steps touch them all (a few microseconds per call)
-        params, buffers = list(self.net.parameters()), list(self.net.buffers())
-        return sum(t._version for t in [params[0], params[-1]] + buffers[:1]) + id(self.net)
+        # load_state_dict and optimiser steps touch them all (the three tensors are looked up
+        # once per network, so a call costs well under a microsecond)
+        if getattr(self, "_watched_net", None) is not self.net:
+            params, buffers = list(self.net.parameters()), list(self.net.buffers())
+            self._watched = [params[0], params[-1]] + buffers[:1]
+            self._watched_net = self.net
+        return sum(t._version for t in self._watched) + id(self.net)
 
     def _current(self) -> Any:
         fingerprint = self._weights_fingerprint()

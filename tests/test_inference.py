@@ -326,3 +326,26 @@ def test_signals_are_handled_after_an_openvino_compile():
     finally:
         signal.signal(signal.SIGUSR1, previous)
     assert got == [1] * 5
+
+
+@pytest.mark.skipif("openvino" not in AVAILABLE, reason="openvino is not installed")
+def test_openvino_is_imported_without_its_network_usage_reports():
+    """Importing openvino would send a usage event over the network (its conversion tools'
+    reporting, on unless a consent file says no); a run sends nothing beyond its machines."""
+    script = textwrap.dedent("""
+        import sys
+        from selfplay.inference import backend_available, build_backend
+        from selfplay.games.registry import make_game
+        from selfplay.network import NetworkConfig, build_network
+        assert backend_available("openvino") is None
+        g = make_game("tictactoe")
+        build_backend("openvino", build_network(g, NetworkConfig.tiny()), 1, "float32")
+        from openvino.tools.ovc import telemetry_utils
+        print("REPORTER", sys.modules.get("openvino_telemetry"), telemetry_utils.tm.__name__)
+    """)
+    import os
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(p for p in sys.path if p)}
+    env.pop("CI", None)  # the reporting is also off under CI=true; test without that
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, env=env, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert "REPORTER None openvino.tools.ovc.telemetry_stub" in out.stdout

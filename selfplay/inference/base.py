@@ -53,11 +53,29 @@ class InferenceBackend(Protocol):
     def compile(self, net: PolicyValueNet, threads: int, precision: str) -> CompiledNetwork: ...
 
 
+def import_openvino() -> object:
+    """``import openvino`` with its usage reporting switched off.
+
+    Importing openvino imports its model-conversion tools, which send a usage event over the
+    network unless a consent file in the user's home says no. A run must send nothing beyond
+    its own machines, so the optional reporting module is marked absent in this process before
+    openvino is imported; openvino then uses its built-in no-op stand-in."""
+    import sys
+
+    if "openvino" not in sys.modules:
+        sys.modules.setdefault("openvino_telemetry", None)  # type: ignore[arg-type]
+        sys.modules.setdefault("openvino_telemetry.backend", None)  # type: ignore[arg-type]
+    return importlib.import_module("openvino")
+
+
 def _import_package(name: str) -> str | None:
     """None if the backend's package imports, else the reason it does not (one line)."""
     package = _BACKENDS[name][1]
     try:
-        importlib.import_module(package)
+        if package == "openvino":
+            import_openvino()
+        else:
+            importlib.import_module(package)
     except Exception as exc:  # noqa: BLE001 - a broken install fails in many ways; report it
         return f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}".strip()
     if name != "torch":

@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from selfplay.inference.altstack import ensure_roomy_altstack
+from selfplay.inference.base import import_openvino
 from selfplay.inference.onnx_export import export_onnx_bytes
 from selfplay.network import PolicyValueNet
 
@@ -22,7 +23,7 @@ class OpenVinoCompiled:
     backend = "openvino"
 
     def __init__(self, net: PolicyValueNet, threads: int, precision: str, pin_threads: bool = False) -> None:
-        import openvino as ov
+        ov = import_openvino()
 
         self.precision = precision
         core = ov.Core()
@@ -36,7 +37,7 @@ class OpenVinoCompiled:
         self.compiled = core.compile_model(model, "CPU", config)
         ensure_roomy_altstack()  # see selfplay.inference.altstack
         self.request = self.compiled.create_infer_request()
-        self._tensor = ov.Tensor
+        self._tensor = ov.Tensor  # type: ignore[attr-defined]
 
     def __call__(self, planes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         x = np.ascontiguousarray(planes, dtype=np.float32)
