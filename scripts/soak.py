@@ -43,6 +43,8 @@ REPO = Path(__file__).resolve().parent.parent
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
+from selfplay.rundir import pid_alive  # noqa: E402
+
 FAULT_KINDS = ("worker", "buffer", "learner", "node")
 
 #: a run small enough for 2 busy cores: tic-tac-toe, an 8-channel net, 16 simulations
@@ -129,11 +131,8 @@ def metric_rows(run: Path, component: str) -> list[dict[str, Any]]:
 
 
 def alive(pid: int) -> bool:
-    try:
-        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except (OSError, IndexError):
-        return False
-    return state != "Z"
+    """Process ``pid`` runs here (zombies count as gone): the run lock's own check."""
+    return pid_alive(pid)
 
 
 def descendants(root: int) -> set[int]:

@@ -156,7 +156,7 @@ class NetworkEvaluator:
     and compiled there (a blocking swap)."""
 
     def __init__(self, net: PolicyValueNet, threads: int = 1, game: Game | None = None,
-                 channels_last: bool = True, precision: str = "auto", backend: str = "torch",
+                 precision: str = "auto", backend: str = "torch",
                  batch_hint: int | None = None, say: Callable[[str], None] | None = None) -> None:
         if not isinstance(net, PolicyValueNet):
             raise ConfigError(f"NetworkEvaluator needs a PolicyValueNet, got {type(net).__name__}")
@@ -169,7 +169,6 @@ class NetworkEvaluator:
         self.net = net
         self.threads = threads
         self.requested_precision = precision
-        self.channels_last = bool(channels_last)  # kept for callers; every backend lays inputs out itself
         self.times = EvaluatorTimes()
         self.swaps = SwapStats()
         self.choice: Any = None
@@ -319,13 +318,17 @@ class NetworkEvaluator:
         return self.forward_planes(planes, batch.legal)
 
     def describe(self) -> dict[str, Any]:
-        """Backend facts for metric lines: backend, precision, measured bound, swap costs."""
+        """Backend facts for metric lines: backend, precision, swap costs, versions refused, and
+        the bound ``auto`` measured (absent when the per-machine cache made the choice)."""
+        out = {"inference_backend": self.backend, "inference_precision": self.precision,
+               "snapshot_swaps_total": self.swaps.swaps_total,
+               "snapshot_swap_seconds_last": self.swaps.last_swap_seconds,
+               "snapshot_swap_seconds_total": self.swaps.swap_seconds_total,
+               "snapshots_refused_total": len(self.swaps.refused)}
         bound = self.choice.bound_evals_per_second if self.choice is not None else None
-        return {"inference_backend": self.backend, "inference_precision": self.precision,
-                "inference_bound_evals_per_second": bound,
-                "snapshot_swaps_total": self.swaps.swaps_total,
-                "snapshot_swap_seconds_last": self.swaps.last_swap_seconds,
-                "snapshot_swap_seconds_total": self.swaps.swap_seconds_total}
+        if bound is not None:
+            out["inference_bound_evals_per_second"] = bound
+        return out
 
 
 class RandomRolloutEvaluator:

@@ -116,22 +116,13 @@ def pid_alive(pid: int) -> bool:
         return False
     try:
         state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except OSError:
-        return True  # no /proc: assume it lives
+    except OSError:  # it exited since the signal, or there is no /proc (then assume it lives)
+        return not Path("/proc/self").exists()
     return state != "Z"
 
 
 def _pid_running(pid: int) -> bool:
     return pid == os.getpid() or pid_alive(pid)
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    except OverflowError:
-        return False
-    return True
 
 
 def clean_stale_temp_files(run: "RunDir", min_age_seconds: float = STALE_TEMP_AGE_SECONDS) -> list[str]:

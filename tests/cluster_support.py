@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import time
 from pathlib import Path
 from typing import Any
 
 from selfplay.config import RunConfig, load_preset, with_overrides
+from selfplay.rundir import pid_alive
 
 #: a run small enough for 2 busy cores: tic-tac-toe, an 8-channel net, 16 simulations
 TINY = {
@@ -141,14 +141,5 @@ def descendants(root: int) -> set[int]:
 
 
 def alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    try:
-        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
-    except OSError:
-        return False
-    return state != "Z"
+    """Process ``pid`` runs here (zombies count as gone): the run lock's own check."""
+    return pid_alive(pid)

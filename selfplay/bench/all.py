@@ -214,14 +214,12 @@ def _print_part(name: str, figs: dict[str, Any]) -> None:
                  f"efficiency >= {TARGETS['search_efficiency']} -> {figs['efficiency']:.2f}; "
                  f"batching speedup >= {TARGETS['batching_speedup']} -> {figs['batching_speedup']:.2f}")
     elif name == "replay":
-        r = figs.get("ratios", figs)
         _say(f"  ingest to disk {figs['ingest_disk_positions_per_second']:>12,.0f} positions/s "
              f"(target {figs['targets']['ingest_positions_per_second']:,})")
         _say(f"  sample         {figs['sample_positions_per_second']:>12,.0f} positions/s "
              f"(target {figs['targets']['sample_positions_per_second']:,})")
         _say(f"  disk           {figs['disk_bytes_per_position']:>12,.1f} bytes/position; "
              f"RAM {figs['ram_bytes_per_position']:,.1f} bytes/position")
-        del r
     elif name == "scaling":
         _say(f"  1 worker {figs['positions_per_second_1']:,.1f} positions/s, 2 workers "
              f"{figs['positions_per_second_2']:,.1f} -> efficiency {figs['efficiency']:.2f} "

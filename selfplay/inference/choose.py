@@ -148,6 +148,7 @@ def choose_backend(net: PolicyValueNet, batch: int, threads: int = 1, precision:
     return the fastest (or the cached choice for this machine). torch is always a candidate of
     last resort, so a choice is always made."""
     batch = max(1, int(batch))
+    tell = say or (lambda line: None)
     notices: list[str] = []
     usable = []
     for name in candidates:
@@ -168,7 +169,7 @@ def choose_backend(net: PolicyValueNet, batch: int, threads: int = 1, precision:
                 choice = BackendChoice(entry["backend"], compiled.precision, batch, compiled,
                                        from_cache=True, notices=notices)
                 for line in notices:
-                    (say or (lambda s: None))(line)
+                    tell(line)
                 return choice
             except Exception as exc:  # noqa: BLE001 - fall through to a fresh calibration
                 notices.append(f"cached inference backend {entry['backend']} failed to compile: {exc}")
@@ -190,5 +191,5 @@ def choose_backend(net: PolicyValueNet, batch: int, threads: int = 1, precision:
         _write_cache(path, key, {"backend": best, "evals_per_second": f"{speeds[best]:.0f}",
                                  "measured_at": time.strftime("%Y-%m-%dT%H:%M:%S")})
     for line in notices:
-        (say or (lambda s: None))(line)
+        tell(line)
     return BackendChoice(best, compiled_by[best].precision, batch, compiled_by[best], speeds, False, notices)

@@ -183,16 +183,8 @@ class SelfPlayRole:
                  snapshot_version=self.version)
         describe = getattr(self.evaluator, "describe", None)
         if describe is not None:
-            d = describe()
-            if d.get("inference_bound_evals_per_second") is None:
-                d.pop("inference_bound_evals_per_second", None)
-            s.update(d, snapshots_refused_total=len(self.evaluator_swaps().refused))
+            s.update(describe())
         return s
-
-    def evaluator_swaps(self) -> Any:
-        """The evaluator's :class:`selfplay.evaluators.SwapStats`."""
-        ev = self.evaluator
-        return getattr(getattr(ev, "network", ev), "swaps")
 
     def _write_line(self, **extra: Any) -> None:
         self._metrics_at = time.monotonic()
