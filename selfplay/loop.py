@@ -6,8 +6,10 @@ role (which publishes version 1 on a fresh run), one buffer shard, the learner (
 ``run.learner`` is off) and ``run.workers`` self-play roles (one if unset), then alternates: a
 *generation phase* lets the workers play until ``loop.games_per_phase`` more games are stored,
 a *training phase* takes every step the target reuse ratio allows (at most
-``loop.max_steps_per_phase``). The snapshot role follows the store on its own timer and the
-workers pick up the newest version (``worker.snapshot_pickup``), as on Ray.
+``loop.max_steps_per_phase``). After each training phase the snapshot role reads the store and
+the workers pick up the newest version (``worker.snapshot_pickup`` says when it is put into
+use), so a run in one process makes the same games every time: no clock decides which version
+a game is played with.
 """
 
 from __future__ import annotations
@@ -107,7 +109,7 @@ class LocalRun:
                 atomic_write_bytes(self.run.config, dump_config(config).encode())
             session = self.lock.session
             self.runlog = RunLog(self.run, "in-process", session, source="local")
-            self.snapshots = SnapshotServerRole(config, self.run)
+            self.snapshots = SnapshotServerRole(config, self.run, timer=False)  # refreshed per phase
             self.buffer = BufferRole(config, self.run, session=session)
             buffer = self.buffer
             for line in buffer.recovery_report():  # also in the buffer's metric line
@@ -206,9 +208,11 @@ class LocalRun:
             if self.evaluation is not None:
                 if self.config.evaluation.gate_threshold is not None:
                     self.evaluation.gate_pending()  # the newest snapshot against the accepted one
-                    self.snapshots.refresh()
                 if self.config.evaluation.enabled:
                     self.evaluation.step()  # a bounded rated round when one is due
+            self.snapshots.refresh()  # the learner's new snapshot (gated), or one a user published
+            for w in self.workers:
+                w.pickup()
             self.status.phases += 1
             if on_phase is not None:
                 on_phase(self)

@@ -208,7 +208,7 @@ def test_tictactoe_from_scratch_stops_losing_to_perfect_play(tmp_path):
         "run": {"seed": 11},
     })
     run_dir = tmp_path / "run"
-    status = run_local_loop(cfg, run_dir, stop=lambda st: st.learner_steps >= 500,
+    status = run_local_loop(cfg, run_dir, stop=lambda st: st.learner_steps >= 1000,
                             loop=LoopConfig(games_per_phase=64, max_steps_per_phase=200))
     assert status.learner_steps >= 500
     game = make_game("tictactoe")
