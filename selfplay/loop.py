@@ -8,8 +8,9 @@ role (which publishes version 1 on a fresh run), one buffer shard, the learner (
 a *training phase* takes every step the target reuse ratio allows (at most
 ``loop.max_steps_per_phase``). After each training phase the snapshot role reads the store and
 the workers pick up the newest version (``worker.snapshot_pickup`` says when it is put into
-use), so a run in one process makes the same games every time: no clock decides which version
-a game is played with.
+use): no snapshot-server clock decides which version a game is played with. (A generation
+phase still plays in time slices of ``worker.report_seconds``, so how many games a phase
+overshoots by, and with it the training data, can differ from run to run.)
 """
 
 from __future__ import annotations

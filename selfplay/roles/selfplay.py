@@ -57,8 +57,8 @@ class SelfPlayRole:
         self.weights = weights
         self.fetch = fetch
         self.deliver = deliver
-        #: compile new snapshots in a background thread (a worker process); False: at pickup,
-        #: so a run in one process plays the same games every time (``selfplay run --in-process``)
+        #: compile new snapshots in a background thread (a worker process); False: at pickup, so
+        #: the step a version starts at does not depend on a thread (``selfplay run --in-process``)
         self.background_swaps = background_swaps
         self.game = make_game(config.game.name, **config.game.options)
         self.net = build_network(self.game, config.network, seed=network_seed(config.run.seed))
