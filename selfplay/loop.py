@@ -131,7 +131,7 @@ class LocalRun:
                 self.workers.append(SelfPlayRole(
                     config, slot=slot, session=session, weights=self.snapshots.current, deliver=buffer.add_games,
                     metrics=self.run.metrics, game_limit=self.budget.limit_for(slot, ""),
-                    background_swaps=False))  # one process: the same games every time
+                    background_swaps=False))  # one process: no compile thread
         except BaseException as exc:
             self.close(error_reason(exc), failed=True)
             raise
