@@ -12,6 +12,17 @@ fourinrow: the latest snapshot plays 100 games against the first snapshot and 10
 pure-MCTS baseline (uniform priors, random rollouts) at the same simulation budget, each pair of
 games from one random 2-ply opening with colours swapped. Goals: >= 90% and >= 70% wins.
 
+go9: the settings of the ``go9-laptop`` preset (``--no-area-heads`` turns its ownership and
+score heads off, for the on-versus-off comparison). The latest snapshot plays 100 games against
+the first snapshot (64 simulations, random 2-ply openings, colours swapped) and at least 40
+against GNU Go 3.8 (``--gnugo``, default ``gnugo --mode gtp --chinese-rules --positional-superko``
+at ``--gnugo-level`` 0, komi 7; our side searches ``--gnugo-simulations`` 200) from random 2-ply
+openings with colours alternating. Every game against GNU Go is scored twice: by our Tromp-Taylor
+count and by GNU Go's own ``final_score`` in a fresh GNU Go (it removes dead stones). Goals: >= 90
+of 100 against the first snapshot, >= 50% against GNU Go by its own score. ``--clock cpu``
+budgets training in CPU seconds of this process (the fair measure when two runs share a machine).
+``python scripts/learning_proof.py compare RUN_A RUN_B`` plays the two runs' latest snapshots.
+
 During training a quick evaluation runs every ``--eval-seconds`` (its time is not counted as
 training time); the learning curve (losses and the evaluation against time) goes to
 ``OUT/curve.json`` and a PNG (``--plot``). The final figures go to ``OUT/results.json``.
@@ -64,11 +75,28 @@ SETTINGS: dict[str, dict[str, Any]] = {
                     "steps_per_snapshot": 100, "min_buffer_positions": 3000, "target_reuse_ratio": 4.0},
     },
 }
-EVAL_SIMULATIONS = {"tictactoe": 64, "fourinrow": 64}
+EVAL_SIMULATIONS = {"tictactoe": 64, "fourinrow": 64, "go9": 64}
+#: the GNU Go command of the Go proof (GNU Go 3.8 documentation: area scoring, positional superko)
+GNUGO_COMMAND = "gnugo --mode gtp --chinese-rules --positional-superko"
 
 
-def proof_config(name: str, minutes: float, seed: int) -> RunConfig:
-    data = json.loads(json.dumps(SETTINGS[name]))
+def go9_settings(area_heads: bool = True) -> dict[str, Any]:
+    """The ``go9-laptop`` preset's settings (what the proof proves), optionally without the
+    ownership and score heads."""
+    from selfplay.config import load_preset
+
+    data = load_preset("go9-laptop").model_dump(mode="json")
+    data.pop("run", None)
+    data.pop("evaluation", None)
+    if not area_heads:
+        data["network"]["area_heads"] = False
+        data["learner"]["ownership_loss_weight"] = 0.0
+        data["learner"]["score_loss_weight"] = 0.0
+    return data
+
+
+def proof_config(name: str, minutes: float, seed: int, area_heads: bool = True) -> RunConfig:
+    data = go9_settings(area_heads) if name == "go9" else json.loads(json.dumps(SETTINGS[name]))
     data["run"] = {"minutes": 0.0, "seed": seed}
     return config_from_dict(data, origin=f"learning proof {name!r}")
 
@@ -79,10 +107,62 @@ def snapshot_net(run: LocalRun, version: int):
     return net.eval()
 
 
-def quick_eval(name: str, run: LocalRun, version: int, games: int, seed: int) -> dict[str, Any]:
+def evaluator(net) -> NetworkEvaluator:
+    """The fastest backend here for evaluation games (the worker's own choice, cached per machine)."""
+    return NetworkEvaluator(net, backend="auto", batch_hint=64)
+
+
+def gnugo_match(run: LocalRun, version: int, games: int, seed: int, command: str, level: int,
+                simulations: int) -> dict[str, Any]:
+    """Snapshot ``version`` (``simulations`` per move) against GNU Go at ``level`` from random
+    2-ply openings, colours alternating; every game scored by Tromp-Taylor (ours) and by GNU Go's
+    own final_score in a fresh GNU Go. Resigned games count as lost by the resigner in both."""
+    from selfplay.gtp.client import GtpClient, GtpPlayer, engine_final_score
+
+    game = run.game
+    full = f"{command} --komi {game.komi:g} --level {level}"
+    net = snapshot_net(run, version)
+    with GtpClient(full, timeout=120) as client:
+        opponent = GtpPlayer(client, game, name=f"gnugo-level{level}")
+        res = play_match(game, SearchPlayer(evaluator(net), simulations, f"v{version}+search{simulations}"),
+                         opponent, games, seed=seed, opening_plies=2)
+    wins_gnugo_score = 0
+    per_game = []
+    for o in res.outcomes:
+        ours_black = o.player_first
+        if o.ended_by == "resign":
+            gnu_text = "resign"
+            won = o.result == (1 if ours_black else -1)
+        else:
+            gnu_text = engine_final_score(full, game, o.actions, timeout=120)
+            won = gnu_text.startswith("B+") if ours_black else gnu_text.startswith("W+")
+        wins_gnugo_score += int(won)
+        state = game.play_sequence(o.actions)
+        per_game.append({"ours_black": ours_black, "moves": o.moves, "ended_by": o.ended_by,
+                         "tromp_taylor": game.result_text(state), "gnugo_final_score": gnu_text,
+                         "won_by_gnugo_score": won, "won_by_tromp_taylor": (o.result == 1) == ours_black
+                         if o.result else False})
+    return {"opponent": f"gnugo level {level}", "command": full, "level": level, "version": version,
+            "simulations": simulations, "games": res.games, "wins_by_gnugo_score": wins_gnugo_score,
+            "win_rate_by_gnugo_score": wins_gnugo_score / res.games, "tromp_taylor": res.to_dict(),
+            "mean_moves": float(np.mean([o.moves for o in res.outcomes])), "per_game": per_game}
+
+
+def quick_eval(name: str, run: LocalRun, version: int, games: int, seed: int,
+               gnugo: dict[str, Any] | None = None) -> dict[str, Any]:
     """The evaluation of the learning curve (fewer games than the final one)."""
     net = snapshot_net(run, version)
     sims = EVAL_SIMULATIONS[name]
+    if name == "go9":
+        first = snapshot_net(run, 1)
+        vs_first = play_match(run.game, SearchPlayer(evaluator(net), sims, f"v{version}"),
+                              SearchPlayer(evaluator(first), sims, "v1"), games, seed=seed, opening_plies=2)
+        out = {"opponent": "first+gnugo", "vs_first": vs_first.to_dict()}
+        if gnugo and gnugo["quick_games"]:
+            out["vs_gnugo"] = gnugo_match(run, version, gnugo["quick_games"], seed, gnugo["command"],
+                                          gnugo["level"], gnugo["simulations"])
+            out["vs_gnugo"].pop("per_game")
+        return out
     if name == "tictactoe":
         res = play_match(run.game, SearchPlayer(NetworkEvaluator(net), sims, f"v{version}+search{sims}"),
                          MinimaxPlayer(run.game), games, seed=seed)
@@ -96,12 +176,20 @@ def quick_eval(name: str, run: LocalRun, version: int, games: int, seed: int) ->
     return {"opponent": "first+mcts", "vs_first": vs_first.to_dict(), "vs_mcts": vs_mcts.to_dict()}
 
 
-def final_eval(name: str, run: LocalRun, seed: int) -> dict[str, Any]:
+def final_eval(name: str, run: LocalRun, seed: int, gnugo: dict[str, Any] | None = None) -> dict[str, Any]:
     latest = run.store.latest_version()
     sims = EVAL_SIMULATIONS[name]
     out: dict[str, Any] = {"latest_version": latest, "simulations": sims}
     t0 = time.perf_counter()
-    if name == "tictactoe":
+    if name == "go9":
+        net, first = snapshot_net(run, latest), snapshot_net(run, 1)
+        out["vs_first"] = play_match(run.game, SearchPlayer(evaluator(net), sims, f"v{latest}"),
+                                     SearchPlayer(evaluator(first), sims, "v1"), 100, seed=seed + 1,
+                                     opening_plies=2).to_dict()
+        if gnugo:
+            out["vs_gnugo"] = gnugo_match(run, latest, gnugo["final_games"], seed + 1, gnugo["command"],
+                                          gnugo["level"], gnugo["simulations"])
+    elif name == "tictactoe":
         for label, version in (("untrained", 1), ("trained", latest)):
             net = snapshot_net(run, version)
             s = play_match(run.game, SearchPlayer(NetworkEvaluator(net), sims, f"v{version}+search{sims}"),
@@ -123,7 +211,8 @@ def final_eval(name: str, run: LocalRun, seed: int) -> dict[str, Any]:
     return out
 
 
-def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, Any]], path: Path) -> None:
+def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, Any]], path: Path,
+               cpu_clock: bool = False) -> None:
     import matplotlib
 
     matplotlib.use("Agg")
@@ -132,9 +221,11 @@ def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, An
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4))
     if losses:
         t = np.array([r["train_seconds"] for r in losses]) / 60
-        for key, label in (("loss", "total"), ("loss_policy", "policy"), ("loss_value", "value")):
-            ax1.plot(t, [r[key] for r in losses], label=label)
-    ax1.set_xlabel("training time (min)")
+        for key, label in (("loss", "total"), ("loss_policy", "policy"), ("loss_value", "value"),
+                           ("loss_ownership", "ownership"), ("loss_score", "score")):
+            if key in losses[0]:
+                ax1.plot(t, [r[key] for r in losses], label=label)
+    ax1.set_xlabel(f"training time (min{', CPU' if cpu_clock else ''})")
     ax1.set_ylabel("loss")
     ax1.set_title(f"{name}: learner loss")
     ax1.legend()
@@ -145,12 +236,19 @@ def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, An
         ax2.plot(t, [c["eval"]["policy"]["losses"] / c["eval"]["policy"]["games"] for c in curve],
                  marker="s", label="lost vs minimax (raw policy)")
         ax2.set_ylabel("share of games lost")
+    elif name == "go9":
+        ax2.plot(t, [c["eval"]["vs_first"]["score"] for c in curve], marker="o", label="score vs first snapshot")
+        g = [(c["train_seconds"] / 60, c["eval"]["vs_gnugo"]["win_rate_by_gnugo_score"]) for c in curve
+             if "vs_gnugo" in c["eval"]]
+        if g:
+            ax2.plot(*zip(*g), marker="s", label="won vs GNU Go (its own score)")
+        ax2.set_ylabel("share of games")
     else:
         ax2.plot(t, [c["eval"]["vs_first"]["win_rate"] for c in curve], marker="o", label="won vs first snapshot")
         ax2.plot(t, [c["eval"]["vs_mcts"]["win_rate"] for c in curve], marker="s", label="won vs pure MCTS")
         ax2.set_ylabel("share of games won")
     ax2.set_ylim(-0.02, 1.02)
-    ax2.set_xlabel("training time (min)")
+    ax2.set_xlabel(f"training time (min{', CPU' if cpu_clock else ''})")
     ax2.set_title(f"{name}: strength of the newest snapshot")
     ax2.legend()
     fig.tight_layout()
@@ -159,29 +257,87 @@ def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, An
     plt.close(fig)
 
 
+def compare(argv: list[str]) -> int:
+    """``compare RUN_A RUN_B``: the latest snapshots of two proof runs of the same game play each
+    other (random 2-ply openings, colours swapped); the result is printed and saved in RUN_A."""
+    ap = argparse.ArgumentParser(prog="learning_proof.py compare", description=compare.__doc__)
+    ap.add_argument("run_a")
+    ap.add_argument("run_b")
+    ap.add_argument("--games", type=int, default=40)
+    ap.add_argument("--simulations", type=int, default=64)
+    ap.add_argument("--seed", type=int, default=7)
+    args = ap.parse_args(argv)
+    from selfplay.strength import RunPlayers
+
+    nets, names = [], []
+    for root in (args.run_a, args.run_b):
+        players = RunPlayers(root)
+        game = players.game
+        version = players.store.latest_version()
+        net = build_network(game, players.config.network)
+        players.store.load_into(net, version)
+        nets.append(net.eval())
+        names.append(f"{Path(root).name}:v{version}")
+    res = play_match(game, SearchPlayer(evaluator(nets[0]), args.simulations, names[0]),
+                     SearchPlayer(evaluator(nets[1]), args.simulations, names[1]), args.games, seed=args.seed,
+                     opening_plies=2)
+    out = {"player": names[0], "opponent": names[1], "simulations": args.simulations, **res.to_dict()}
+    (Path(args.run_a) / f"compare-{Path(args.run_b).name}.json").write_text(json.dumps(out, indent=2))
+    print(json.dumps(out, indent=2))
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if argv[:1] == ["compare"]:
+        return compare(argv[1:])
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("game", choices=sorted(SETTINGS))
-    ap.add_argument("--minutes", type=float, default=None, help="training time (default 10 / 30)")
+    ap.add_argument("game", choices=sorted([*SETTINGS, "go9"]))
+    ap.add_argument("--minutes", type=float, default=None, help="training time (default 10 / 30 / 120)")
     ap.add_argument("--out", required=True, help="run directory (must not exist yet)")
     ap.add_argument("--eval-seconds", type=float, default=60.0, help="seconds of training between quick evaluations")
     ap.add_argument("--eval-games", type=int, default=40, help="games of each quick evaluation")
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--plot", default=None, help="PNG path of the learning curve")
+    ap.add_argument("--clock", choices=("wall", "cpu"), default="wall",
+                    help="budget training in wall seconds, or in CPU seconds of this process (default wall)")
+    ap.add_argument("--no-area-heads", action="store_true", help="go9: without the ownership and score heads")
+    ap.add_argument("--gnugo", default=GNUGO_COMMAND, help="go9: the GNU Go command (komi and level are added)")
+    ap.add_argument("--gnugo-level", type=int, default=0, help="go9: GNU Go's level (default 0)")
+    ap.add_argument("--gnugo-simulations", type=int, default=200, help="go9: our simulations per move against GNU Go")
+    ap.add_argument("--gnugo-games", type=int, default=40, help="go9: games against GNU Go at the end (even)")
+    ap.add_argument("--gnugo-quick-games", type=int, default=10,
+                    help="go9: games against GNU Go in each quick evaluation (0: none)")
     args = ap.parse_args(argv)
-    minutes = args.minutes if args.minutes is not None else (10.0 if args.game == "tictactoe" else 30.0)
+    minutes = args.minutes if args.minutes is not None else {"tictactoe": 10.0, "go9": 120.0}.get(args.game, 30.0)
     out = Path(args.out)
     if out.exists():
         print(f"learning_proof: {out} already exists; give a new directory", file=sys.stderr)
         return 2
-    config = proof_config(args.game, minutes, args.seed)
+    gnugo = None
+    if args.game == "go9":
+        import shlex
+        import shutil
+
+        exe = shlex.split(args.gnugo)[0]
+        if shutil.which(exe) is None and shutil.which("/usr/games/" + exe) is None:
+            print(f"learning_proof: GNU Go {exe!r} not found (apt-get install gnugo); the Go proof needs it",
+                  file=sys.stderr)
+            return 2
+        command = args.gnugo if shutil.which(exe) else "/usr/games/" + args.gnugo
+        gnugo = {"command": command, "level": args.gnugo_level, "simulations": args.gnugo_simulations,
+                 "final_games": args.gnugo_games, "quick_games": args.gnugo_quick_games}
+    config = proof_config(args.game, minutes, args.seed, area_heads=not args.no_area_heads)
+    settings = go9_settings(not args.no_area_heads) if args.game == "go9" else SETTINGS[args.game]
     eval_spent = [0.0]
     last_eval = [0.0]
     curve: list[dict[str, Any]] = []
-    t_start = time.time()
+    clock = time.process_time if args.clock == "cpu" else time.time
+    t_start = clock()
+    wall_start = time.time()
 
     def train_seconds() -> float:
-        return time.time() - t_start - eval_spent[0]
+        return clock() - t_start - eval_spent[0]
 
     loss_curve: list[dict[str, Any]] = []
     seen_steps = [0]
@@ -192,28 +348,35 @@ def main(argv: list[str] | None = None) -> int:
         if new:
             seen_steps[0] = int(new[-1]["step"])
             loss_curve.append({"train_seconds": ts, "step": seen_steps[0],
-                               **{k: float(np.mean([h[k] for h in new])) for k in ("loss", "loss_policy", "loss_value")}})
+                               **{k: float(np.mean([h[k] for h in new])) for k in
+                                  ("loss", "loss_policy", "loss_value", "loss_ownership", "loss_score")
+                                  if k in new[-1]}})
         if ts - last_eval[0] < args.eval_seconds:
             return
         last_eval[0] = ts
-        t0 = time.perf_counter()
+        t0 = clock()
         version = run.store.latest_version()
-        ev = quick_eval(args.game, run, version, args.eval_games, args.seed)
+        ev = quick_eval(args.game, run, version, args.eval_games, args.seed, gnugo)
         last = run.learner.learner.history[-1] if run.learner.learner.history else {}
         point = {"train_seconds": ts, "version": version, "games": run.status.games,
                  "positions": run.status.positions, "learner_steps": run.learner.learner.step,
                  "reuse_ratio": run.learner.learner.reuse_ratio, "loss": last.get("loss"), "eval": ev}
         curve.append(point)
+        (out / "curve.json").write_text(json.dumps({"curve": curve, "loss_curve": loss_curve}, indent=2))
+        logged = ev["search"] if args.game == "tictactoe" else ev["vs_first" if args.game == "go9" else "vs_mcts"]
         MetricsLog(run.run.metrics, "eval", "learning-proof").write(
             opponent=ev["opponent"], version=version, train_seconds=ts,
-            **({"games": ev["search"]["games"], "wins": ev["search"]["wins"], "draws": ev["search"]["draws"],
-                "losses": ev["search"]["losses"], "elo": ev["search"]["elo"]} if args.game == "tictactoe" else
-               {"games": ev["vs_mcts"]["games"], "wins": ev["vs_mcts"]["wins"], "draws": ev["vs_mcts"]["draws"],
-                "losses": ev["vs_mcts"]["losses"], "elo": ev["vs_mcts"]["elo"]}))
-        eval_spent[0] += time.perf_counter() - t0
-        brief = (f"lost {ev['search']['losses']}/{ev['search']['games']} (search), "
-                 f"{ev['policy']['losses']}/{ev['policy']['games']} (policy)" if args.game == "tictactoe" else
-                 f"won {ev['vs_first']['win_rate']:.2f} vs first, {ev['vs_mcts']['win_rate']:.2f} vs mcts")
+            **{k: logged[k] for k in ("games", "wins", "draws", "losses", "elo")})
+        eval_spent[0] += clock() - t0
+        if args.game == "tictactoe":
+            brief = (f"lost {ev['search']['losses']}/{ev['search']['games']} (search), "
+                     f"{ev['policy']['losses']}/{ev['policy']['games']} (policy)")
+        elif args.game == "go9":
+            brief = f"score {ev['vs_first']['score']:.2f} vs first" + (
+                f", won {ev['vs_gnugo']['wins_by_gnugo_score']}/{ev['vs_gnugo']['games']} vs GNU Go "
+                f"(its score; {ev['vs_gnugo']['tromp_taylor']['wins']} by Tromp-Taylor)" if "vs_gnugo" in ev else "")
+        else:
+            brief = f"won {ev['vs_first']['win_rate']:.2f} vs first, {ev['vs_mcts']['win_rate']:.2f} vs mcts"
         print(f"[{ts / 60:5.1f} min] v{version} games {run.status.games} steps {run.learner.learner.step} "
               f"loss {point['loss']} reuse {run.learner.learner.reuse_ratio:.2f}: {brief}", flush=True)
 
@@ -230,21 +393,22 @@ def main(argv: list[str] | None = None) -> int:
     run = holder["run"]
     t0 = time.time()
     # the final snapshot was published by close(); evaluate it with the run's pieces
-    final = final_eval(args.game, run, args.seed)
+    print(f"training done ({trained_for / 60:.1f} min, {args.clock} clock); final evaluation", flush=True)
+    final = final_eval(args.game, run, args.seed, gnugo)
     # the curve starts at the untrained first snapshot (evaluated now: it is on disk unchanged)
     curve.insert(0, {"train_seconds": 0.0, "version": 1, "games": 0, "positions": 0, "learner_steps": 0,
-                     "reuse_ratio": 0.0, "loss": None, "eval": quick_eval(args.game, run, 1, args.eval_games, args.seed)})
+                     "reuse_ratio": 0.0, "loss": None, "eval": quick_eval(args.game, run, 1, args.eval_games, args.seed, gnugo)})
     results = {
         "game": args.game, "minutes_budget": minutes, "train_seconds": trained_for,
-        "wall_seconds_with_evals": time.time() - t_start, "games": status.games, "positions": status.positions,
+        "clock": args.clock, "wall_seconds_with_evals": time.time() - wall_start, "games": status.games, "positions": status.positions,
         "learner_steps": run.learner.learner.step, "samples_trained": run.learner.learner.samples_trained_total,
         "reuse_ratio": run.learner.learner.reuse_ratio, "snapshots": run.store.latest_version(),
-        "settings": SETTINGS[args.game], "final": final, "curve": curve, "loss_curve": loss_curve,
+        "settings": settings, "final": final, "curve": curve, "loss_curve": loss_curve,
         "cpu_count": os.cpu_count(), "final_eval_seconds": time.time() - t0,
     }
     (out / "results.json").write_text(json.dumps(results, indent=2))
     if args.plot:
-        plot_curve(args.game, curve, loss_curve, Path(args.plot))
+        plot_curve(args.game, curve, loss_curve, Path(args.plot), cpu_clock=args.clock == "cpu")
     print(json.dumps({k: v for k, v in results.items() if k not in ("curve", "settings", "loss_curve")}, indent=2))
     return 0
 

@@ -163,3 +163,35 @@ def test_evaluation_role_with_gnugo_as_anchor(tmp_path: Path) -> None:
     assert line["games"] == 4
     rows = {r["player"]: r for r in ladder(run)["players"]}
     assert line["opponents"][1] in rows and rows["v3@4"]["elo"] == line["elo"]
+
+
+def test_engine_final_score_counts_each_game_in_a_fresh_engine() -> None:
+    """engine_final_score after a match against GNU Go 3.8: each game's count is the one a GNU Go
+    told those moves one by one gives, and it does not leak from one game into the next (a
+    reused GNU Go answers final_score from a cache that survives clear_board: on the empty board
+    it repeated the previous game's score)."""
+    import re
+
+    from selfplay.evaluation import RandomPlayer, play_match
+    from selfplay.gtp.client import GtpPlayer, engine_final_score
+
+    game = GoGame(size=5, komi=7.5)
+    command = f"{GNUGO} {GNUGO_RULES} --level 0"
+    with GtpClient(command, timeout=60) as client:
+        res = play_match(game, RandomPlayer(), GtpPlayer(client, game), 2, seed=3)
+    passes = [game.pass_action, game.pass_action]
+    empty = engine_final_score(command, game, passes)
+    texts = [engine_final_score(command, game, o.actions) for o in res.outcomes]
+    assert engine_final_score(command, game, passes) == empty  # not the last game's score
+    for outcome, text in zip(res.outcomes, texts):
+        assert re.fullmatch(r"[BW]\+\d+(\.\d+)?|0", text), text
+        if outcome.ended_by == "rules":
+            # every stone on these random boards is alive or captured (GNU Go played them out)
+            with GtpClient(command, timeout=60) as fresh:
+                fresh.send("boardsize 5")
+                fresh.send("komi 7.5")
+                for k, a in enumerate(outcome.actions):
+                    fresh.send(f"play {colour_text(k % 2)} {game.action_to_text(a)}")
+                assert fresh.send("final_score") == text
+                if fresh.send("final_status_list dead").strip() == "":
+                    assert text == game.result_text(game.play_sequence(outcome.actions))

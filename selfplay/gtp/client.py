@@ -278,4 +278,20 @@ class GtpPlayer:
         return out
 
 
-__all__ = ["DEFAULT_MAX_REPLY_BYTES", "DEFAULT_TIMEOUT", "GtpClient", "GtpCommandError", "GtpError", "GtpPlayer"]
+def engine_final_score(command: str | Sequence[str], game: Any, moves: Sequence[int],
+                       timeout: float = DEFAULT_TIMEOUT) -> str:
+    """A GTP engine's own ``final_score`` of the Go game ``moves`` (played alternately from
+    Black on the empty board of ``game``, with its komi), e.g. ``B+3`` or ``W+12``.
+
+    A fresh engine process counts each game: GNU Go 3.8 answers ``final_score`` from a cache
+    that survives ``clear_board`` (an empty board after another game was scored got that game's
+    score). GNU Go removes the stones it judges dead before counting; Tromp-Taylor does not."""
+    with GtpClient(command, timeout=timeout) as client:
+        client.send(f"boardsize {game.size}")
+        client.send(f"komi {game.komi:g}")
+        for k, a in enumerate(moves):
+            client.send(f"play {colour_text(k % 2)} {vertex_text(int(a), game.size)}")
+        return client.send("final_score").strip()
+
+
+__all__ = ["DEFAULT_MAX_REPLY_BYTES", "DEFAULT_TIMEOUT", "GtpClient", "GtpCommandError", "GtpError", "GtpPlayer", "engine_final_score"]
