@@ -258,11 +258,13 @@ def plot_curve(name: str, curve: list[dict[str, Any]], losses: list[dict[str, An
 
 
 def compare(argv: list[str]) -> int:
-    """``compare RUN_A RUN_B``: the latest snapshots of two proof runs of the same game play each
+    """``compare RUN_A RUN_B``: the latest (or chosen) snapshots of two proof runs of the same game play each
     other (random 2-ply openings, colours swapped); the result is printed and saved in RUN_A."""
     ap = argparse.ArgumentParser(prog="learning_proof.py compare", description=compare.__doc__)
     ap.add_argument("run_a")
     ap.add_argument("run_b")
+    ap.add_argument("--version-a", type=int, default=None, help="RUN_A's snapshot (default its latest)")
+    ap.add_argument("--version-b", type=int, default=None, help="RUN_B's snapshot (default its latest)")
     ap.add_argument("--games", type=int, default=40)
     ap.add_argument("--simulations", type=int, default=64)
     ap.add_argument("--seed", type=int, default=7)
@@ -270,10 +272,10 @@ def compare(argv: list[str]) -> int:
     from selfplay.strength import RunPlayers
 
     nets, names = [], []
-    for root in (args.run_a, args.run_b):
+    for root, asked in ((args.run_a, args.version_a), (args.run_b, args.version_b)):
         players = RunPlayers(root)
         game = players.game
-        version = players.store.latest_version()
+        version = asked or players.store.latest_version()
         net = build_network(game, players.config.network)
         players.store.load_into(net, version)
         nets.append(net.eval())

@@ -495,3 +495,44 @@ def test_benchmark_playouts_runs_in_compiled_code_and_is_seeded() -> None:
     for options in ({"allow_suicide": True}, {"superko": False}, {"size": 19}):
         g2 = GoGame(**{"size": 7, **options})
         assert g2.benchmark_playouts(3, seed=2) > 3 * 10
+
+
+@pytest.mark.parametrize("options", [{"size": 9}, {"size": 5, "max_moves": 30},
+                                     {"size": 7, "superko": False, "allow_suicide": True}])
+def test_play_many_matches_play_with_mask(options: dict) -> None:
+    """The search's batched expansion (GoGame.play_many, one compiled call) gives, move for move,
+    the state and legal mask of play_with_mask (whose rules the OEIS and GNU Go checks in this
+    suite pin down) over random games to their end, passes, captures and the move cap included."""
+    game = GoGame(komi=7.5, **options)
+    rng = np.random.default_rng(5)
+    states = [game.initial_state() for _ in range(24)]
+    checked = 0
+    while True:
+        live = [i for i, s in enumerate(states) if not game.is_terminal(s)]
+        if not live:
+            break
+        acts = []
+        for i in live:
+            legal = np.flatnonzero(game.legal_mask(states[i]))
+            acts.append(int(legal[rng.integers(legal.size)]))
+        masks = np.ones((len(live) + 2, game.num_actions), dtype=bool)
+        rows = np.arange(len(live))[::-1] + 2
+        children, movers, ended = game.play_many([states[i] for i in live], np.array(acts), masks, rows)
+        for j, (i, a) in enumerate(zip(live, acts)):
+            ref, mask = game.play_with_mask(states[i], a)
+            got = children[j]
+            assert np.array_equal(got.history, ref.history) and np.array_equal(got.groups, ref.groups)
+            assert np.array_equal(got.seen, ref.seen)
+            assert (got.key, got.prev_key, got.player, got.passes, got.moves) == \
+                (ref.key, ref.prev_key, ref.player, ref.passes, ref.moves)
+            assert np.array_equal(masks[rows[j]], mask)
+            assert movers[j] == game.to_play(ref) and ended[j] == game.is_terminal(ref)
+            states[i] = got
+            checked += 1
+    assert checked > 500
+    over = states[0]
+    with pytest.raises(IllegalMoveError, match="game is over"):
+        game.play_many([over], np.array([game.pass_action]), masks, np.array([0]))
+    with pytest.raises(IllegalMoveError):
+        board_full = game.play(game.initial_state(), 0)
+        game.play_many([board_full], np.array([0]), masks, np.array([0]))  # occupied point

@@ -26,8 +26,9 @@ A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
    node already waiting for evaluation (a collision: it shares that evaluation). With
    ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and the step runs
    once per leaf;
-2. ``_expand`` — the children at new edges are created (one ``game.play_with_mask`` each, the
-   rules' only per-node Python call), shallowest first;
+2. ``_expand`` — the children at new edges are created, shallowest first: one
+   ``game.play_many`` call for all of them where the game has it (Go), else one
+   ``game.play_with_mask`` each;
 3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call;
 4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
    along its path, negated wherever the player to move differs from the leaf's, and removes the
@@ -162,6 +163,8 @@ class BatchedSearch:
         self._leaves = config.leaves_per_game
         self._vl = float(config.virtual_loss) if config.leaves_per_game > 1 else 0.0
         self._max_moves = game.max_moves
+        # a game may play many edges in one call (Go: selfplay.games.go.GoGame.play_many)
+        self._play_many = getattr(game, "play_many", None)
         # edge and path buffers of one round: a path never has more edges than its tree has nodes
         paths = self._leaves * slots
         self._edge_node = np.zeros(paths * C, dtype=np.int64)
@@ -326,23 +329,28 @@ class BatchedSearch:
         self.count[slots] += 1
         kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
                                 self.child)
-        play, to_play = self.game.play_with_mask, self.game.to_play
         states, legal = self.states, self.legal
-        movers: list[int] = []
-        exact: list[tuple[int, float]] = []
         t0 = time.perf_counter()
-        for node, par, act, s in zip(created.tolist(), parents.tolist(), actions.tolist(), slots.tolist()):
-            # the game writes the child's legal mask straight into its row
-            child, _ = play(states[par], act, legal[node])
+        node_list = created.tolist()
+        if self._play_many is not None:
+            # one compiled call plays every new edge, writes the children's legal masks and
+            # says who moves next and which children end the game
+            children, movers, ended = self._play_many([states[p] for p in parents.tolist()], actions, legal,
+                                                      created)
+        else:
+            play, to_play = self.game.play_with_mask, self.game.to_play
+            children = [play(states[par], act, legal[node])[0]
+                        for node, par, act in zip(node_list, parents.tolist(), actions.tolist())]
+            movers = np.array([to_play(c) for c in children], dtype=np.int8)
+            ended = np.array([self._terminal_value(c, int(m)) is not None for c, m in zip(children, movers)],
+                             dtype=bool)
+        for node, child in zip(node_list, children):
             states[node] = child
-            mover = to_play(child)
-            movers.append(mover)
-            value = self._terminal_value(child, mover)
-            if value is None:
-                rnd.eval_nodes.append(node)
-                rnd.eval_slots.append(s)
-            else:
-                exact.append((node, value))
+        waiting = ~ended
+        rnd.eval_nodes.extend(created[waiting].tolist())
+        rnd.eval_slots.extend(slots[waiting].tolist())
+        exact = [(node, self._terminal_value(states[node], m))
+                 for node, m in zip(created[ended].tolist(), movers[ended].tolist())]
         rnd.rules_seconds += time.perf_counter() - t0
         self.to_play[created] = movers
         self.terminal[created] = False
