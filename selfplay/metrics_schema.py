@@ -132,7 +132,8 @@ LEARNER = Component("learner", "`learner`", "the learner role", (
     _f("snapshot_version", "int", "version", "newest snapshot the learner published", True),
     _f("pretrain_steps", "int", "steps", "supervised steps before self-play", True),
     _f("steps_per_second", "float", "1/s", "steps per second since the previous line"),
-    _f("loss", "float", "-", "total loss = `loss_policy + loss_value + loss_l2` (AlphaZero loss)"),
+    _f("loss", "float", "-", "total loss = `loss_policy + loss_value + loss_l2` (AlphaZero loss), plus the "
+       "ownership and score terms times their learner weights when the area heads train"),
     _f("loss_policy", "float", "nats", "cross-entropy of the policy against the visit distribution"),
     _f("loss_value", "float", "-", "squared error of the value against the outcome"),
     _f("loss_l2", "float", "-", "L2 weight penalty"),

@@ -274,3 +274,18 @@ def test_watch_quits_on_q_in_a_terminal(run: Path) -> None:
             proc.kill()
         os.close(leader)
     assert rc == 0
+
+
+def test_loss_row_adds_up_with_area_heads() -> None:
+    """The status's loss line is a sum that holds: with the ownership and score heads training,
+    the weighted area terms are shown as what the total has beyond policy + value + l2, and the
+    unweighted parts get a row of their own (no run shows a sum that does not add up)."""
+    from selfplay.monitor.watch import _loss_row
+
+    plain = _loss_row({"loss": 4.0, "loss_policy": 3.0, "loss_value": 0.9, "loss_l2": 0.1})
+    assert plain == ("loss = policy + value + l2", "4 = 3 + 0.9 + 0.1")
+    label, text = _loss_row({"loss": 5.11, "loss_policy": 3.56, "loss_value": 0.627, "loss_l2": 0.101,
+                             "loss_ownership": 0.535, "loss_score": 0.0174})
+    assert label == "loss = policy + value + l2 + area"
+    total, parts = text.split(" = ")
+    assert abs(sum(float(p) for p in parts.split(" + ")) - float(total)) < 0.01

@@ -123,7 +123,10 @@ def families_from_summary(s: Summary) -> list[Metric]:
     ln = s.get("learner") or {}
     m.counter("selfplay_learner_steps", "learner optimisation steps", ln.get("step"))
     m.gauge("selfplay_learner_steps_per_second", "learner steps per second", ln.get("steps_per_second"))
-    for part, key in (("total", "loss"), ("policy", "loss_policy"), ("value", "loss_value"), ("l2", "loss_l2")):
+    for part, key in (("total", "loss"), ("policy", "loss_policy"), ("value", "loss_value"), ("l2", "loss_l2"),
+                      ("ownership", "loss_ownership"), ("score", "loss_score")):
+        if key not in ln and part in ("ownership", "score"):
+            continue
         m.gauge("selfplay_learner_loss", "learner loss by part (latest reported)", ln.get(key), {"part": part})
     m.counter("selfplay_learner_samples_trained", "samples the learner has trained on", ln.get("samples_trained"))
     m.gauge("selfplay_learner_sample_reuse_ratio", "samples trained per sample generated", ln.get("reuse_ratio"))

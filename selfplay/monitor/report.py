@@ -403,7 +403,8 @@ class ReportBuilder:
         if not total:
             raise Empty("no learner lines with a loss")
         for key, label in (("loss", "total"), ("loss_policy", "policy (cross-entropy)"),
-                           ("loss_value", "value (squared error)"), ("loss_l2", "L2")):
+                           ("loss_value", "value (squared error)"), ("loss_l2", "L2"),
+                           ("loss_ownership", "ownership (unweighted)"), ("loss_score", "score (unweighted)")):
             pts = self._learner_series(key)
             if pts:
                 _line(ax, [p[0] for p in pts], [p[1] for p in pts], label=label)

@@ -54,7 +54,7 @@ COUNTER_FIELDS: dict[str, tuple[str, ...]] = {
 #: fields kept per line when every line is kept (``keep_rows``, for the report's plots)
 ROW_FIELDS_KEPT = frozenset({
     "t", "component", "source", "snapshot_version", "games_total", "step", "loss", "loss_policy",
-    "loss_value", "loss_l2", "learning_rate", "reuse_ratio", "samples_trained_total",
+    "loss_value", "loss_l2", "loss_ownership", "loss_score", "learning_rate", "reuse_ratio", "samples_trained_total",
     "window_positions", "window_capacity", "resign_disabled_games_total", "resign_probe_triggered_total",
     "resign_false_positives_total", "opponent", "player", "games", "wins", "draws", "losses", "elo",
     "elo_low", "elo_high", "version", "published_at", "event", "stop_reason", "final",
@@ -658,6 +658,8 @@ class RunMonitor:
             "loss_policy": _num(last.get("loss_policy")),
             "loss_value": _num(last.get("loss_value")),
             "loss_l2": _num(last.get("loss_l2")),
+            **({"loss_ownership": _num(last.get("loss_ownership")), "loss_score": _num(last.get("loss_score"))}
+               if "loss_ownership" in last else {}),
             "samples_trained": samples,
             "reuse_ratio": _num(last.get("reuse_ratio")),
             "learning_rate": _num(last.get("learning_rate")),

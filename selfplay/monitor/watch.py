@@ -102,6 +102,22 @@ def _kv_table(title: str, rows: list[tuple[str, str]]) -> Table:
     return t
 
 
+def _loss_row(ln: dict[str, Any]) -> tuple[str, str]:
+    """The learner's loss and its parts, which add up to it: with area heads, the weighted
+    ownership and score terms are the remainder after policy, value and l2."""
+    if not ln:
+        return ("loss = policy + value + l2", "-")
+    parts = [ln.get("loss_policy"), ln.get("loss_value"), ln.get("loss_l2")]
+    text = f"{fmt_num(ln.get('loss'))} = " + " + ".join(fmt_num(p) for p in parts)
+    if "loss_ownership" not in ln:
+        return ("loss = policy + value + l2", text)
+    try:
+        area = float(ln["loss"]) - sum(float(p) for p in parts)
+    except (TypeError, ValueError, KeyError):
+        area = None
+    return ("loss = policy + value + l2 + area", f"{text} + {fmt_num(area)}")
+
+
 def render_summary(s: Summary) -> RenderableType:
     """One frame of the status view."""
     span, full = s.get("window_span_seconds"), s.get("window_seconds")
@@ -164,11 +180,12 @@ def render_summary(s: Summary) -> RenderableType:
     learn_rows = [
         ("step", fmt_num(ln.get("step"))),
         ("steps/s", fmt_num(ln.get("steps_per_second"))),
-        ("loss = policy + value + l2", f"{fmt_num(ln.get('loss'))} = {fmt_num(ln.get('loss_policy'))}"
-                                       f" + {fmt_num(ln.get('loss_value'))} + {fmt_num(ln.get('loss_l2'))}"
-         if ln else "-"),
+        _loss_row(ln),
         ("sample reuse", fmt_num(ln.get("reuse_ratio"))),
     ]
+    if "loss_ownership" in ln:
+        learn_rows.insert(3, ("ownership, score (unweighted)",
+                              f"{fmt_num(ln.get('loss_ownership'))}, {fmt_num(ln.get('loss_score'))}"))
     r = s.get("resignation") or {}
     if r:
         rate = r.get("false_positive_rate")
