@@ -80,6 +80,8 @@ WORKER = Component("worker", "the worker id, e.g. `w0000`", "one self-play worke
        "of those, games in which a player's root value crossed the resignation threshold (would have resigned)", True),
     _f("resign_false_positives_total", "int", "games", "of those, games the would-have-resigned player did not lose", True),
     _f("resignations_total", "int", "games", "games ended by resignation", True),
+    _f("resign_threshold_now", "float", "value", "the resignation threshold in use now (only with "
+       "`[search] resign_false_positive_target`: lowered from `resign_threshold` by the probe games)"),
     _f("collisions_total", "int", "-", "virtual-loss collisions in the search", True),
     _f("batches_total", "int", "batches", "batched evaluator calls", True),
     _f("mean_batch_size", "float", "leaves", "leaves per batched evaluator call", True),

@@ -17,7 +17,7 @@ reproducible for a fixed seed and G.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable
 
 import numpy as np
@@ -28,6 +28,7 @@ from selfplay.games.base import Game
 from selfplay.records import GameRecord, GameRecordBuilder
 from selfplay.search.config import SearchConfig
 from selfplay.search.puct import choose_by_visits
+from selfplay.search.resign import ResignCalibration
 from selfplay.search.tree import BatchedSearch
 
 
@@ -41,6 +42,8 @@ class _GameInFlight:
     builder: GameRecordBuilder
     resign_disabled: bool
     resign_would_have: int = -1
+    #: lowest root value each player saw (its own view), kept in probe games
+    lowest_value: list[float] = field(default_factory=lambda: [1.0, 1.0])
     search_snapshot: int = 0
     moves_made: int = 0
 
@@ -104,6 +107,10 @@ class SelfPlayWorker:
         self.resign_probe_triggered_total = 0
         self.resign_false_positives_total = 0
         self.resignations_total = 0
+        cfg = self.config
+        self.resign_calibration = (ResignCalibration(cfg.resign_threshold, cfg.resign_false_positive_target)
+                                   if cfg.resign_false_positive_target is not None and cfg.resign_threshold is not None
+                                   else None)
         self.busy_seconds = 0.0
         self.move_seconds = 0.0
         for s in range(games_in_parallel):
@@ -170,7 +177,11 @@ class SelfPlayWorker:
         g.builder.add_position(game.compact(state), mover, action, self._tree.root_legal(slot),
                                res.policy_actions, res.policy_weights, res.root_value, res.full,
                                g.search_snapshot)
-        if cfg.resign_threshold is not None and res.root_value < cfg.resign_threshold:
+        threshold = (self.resign_calibration.threshold if self.resign_calibration is not None
+                     else cfg.resign_threshold)
+        if g.resign_disabled and res.root_value < g.lowest_value[mover]:
+            g.lowest_value[mover] = float(res.root_value)
+        if threshold is not None and res.root_value < threshold:
             if g.resign_disabled:
                 if g.resign_would_have < 0:
                     g.resign_would_have = mover
@@ -210,6 +221,11 @@ class SelfPlayWorker:
                 would_be_view = result if g.resign_would_have == 0 else -result
                 if would_be_view >= 0:  # that player won or drew: resigning would have been wrong
                     self.resign_false_positives_total += 1
+            if self.resign_calibration is not None:
+                for player in (0, 1):
+                    if g.lowest_value[player] < 1.0:
+                        view = result if player == 0 else -result
+                        self.resign_calibration.observe(g.lowest_value[player], view >= 0)
         self._ready.append(record)
         self._start_if_allowed(slot)
 
@@ -279,6 +295,8 @@ class SelfPlayWorker:
             "resign_false_positives_total": self.resign_false_positives_total,
             "resign_probe_triggered_total": self.resign_probe_triggered_total,
             "resignations_total": self.resignations_total,
+            **({"resign_threshold_now": self.resign_calibration.threshold}
+               if self.resign_calibration is not None else {}),
             "collisions_total": t.collisions,
             "batches_total": t.batches,
             "mean_batch_size": t.evals / max(t.batches, 1),

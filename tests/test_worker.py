@@ -264,3 +264,59 @@ def test_tree_bookkeeping_stays_consistent_across_rounds_and_reuse(algorithm):
                     assert tree.visits[c] == 0
                 else:   # every simulation through the edge either stopped at c or went on below it
                     assert N[i, a] >= tree.visits[c] + 1
+
+
+def test_resignation_threshold_calibrated_by_probe_games():
+    """Silver et al. 2017 (AlphaGo Zero, Methods) keep resignation false positives below 5% by
+    choosing the threshold from games played without resignation. From DRAWN, X's root value is
+    0 (a draw) and X never loses: with a ceiling of 0.5 every probe game is a false positive, so
+    the calibrated threshold drops below every value X saw and X stops resigning drawn games."""
+    from selfplay.search.resign import NEVER
+
+    base = dict(simulations=64, reduced_simulations=8, **GREEDY)
+    cfg = SearchConfig(resign_threshold=0.5, resign_probe_fraction=1.0, resign_false_positive_target=0.05, **base)
+    w = _worker(cfg, start_state=DRAWN, games_in_parallel=4)
+    assert w.stats()["resign_threshold_now"] == 0.5
+    w.play_games(24)  # 24 probe games: X's lowest value ~0 each time, never lost
+    assert w.resign_calibration.false_positive_rate(0.5) == 1.0
+    assert w.stats()["resign_threshold_now"] == NEVER
+    # ... and from then on a game with resignation on plays to its end instead of resigning
+    w2 = _worker(cfg.model_copy(update={"resign_probe_fraction": 0.0}), start_state=DRAWN, games_in_parallel=1)
+    w2.resign_calibration = w.resign_calibration
+    rec = w2.play_games(1)[0]
+    assert not rec.resigned and rec.result == 0
+
+
+def test_resign_calibration_picks_the_highest_threshold_within_the_target():
+    """The rule by hand: lowest values and outcomes of 40 probe players; 5% target."""
+    from selfplay.search.resign import NEVER, ResignCalibration
+
+    cal = ResignCalibration(ceiling=-0.8, target=0.05, min_evidence=20)
+    # 30 players fell to -0.95 and lost; 10 players fell only to -0.85 and won (false positives at -0.8)
+    for _ in range(30):
+        cal.observe(-0.95, False)
+    assert cal.threshold == -0.8  # all 30 would-resign players lost: 0% at the ceiling
+    for _ in range(10):
+        cal.observe(-0.85, True)
+    # at -0.8: 10 of 40 not lost (25%); below -0.85: the 30 losers only (0%) -> threshold -0.85
+    assert cal.false_positive_rate(-0.8) == 0.25
+    assert cal.threshold == -0.85 and cal.false_positive_rate(cal.threshold) == 0.0
+    # a winner at -0.99 too: below -0.95 only that winner remains (100%), below -0.85 1 of 31 (3.2%)
+    cal.observe(-0.99, True)
+    assert cal.threshold == -0.85
+    for _ in range(3):
+        cal.observe(-0.99, True)  # 4 of 34 below -0.85 were not lost (11.8%): even -0.95 fails (100%)
+    assert cal.threshold == NEVER
+    # too little evidence: the configured ceiling stands
+    fresh = ResignCalibration(ceiling=-0.8, target=0.05, min_evidence=20)
+    for _ in range(5):
+        fresh.observe(-0.9, True)
+    assert fresh.threshold == -0.8
+
+
+def test_resign_false_positive_target_needs_a_threshold_and_probes():
+    with pytest.raises(ConfigError, match="resign_false_positive_target needs"):
+        SearchConfig.parse({"resign_false_positive_target": 0.05})
+    with pytest.raises(ConfigError, match="resign_false_positive_target needs"):
+        SearchConfig.parse({"resign_false_positive_target": 0.05, "resign_threshold": -0.9,
+                            "resign_probe_fraction": 0.0})

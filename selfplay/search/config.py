@@ -51,6 +51,10 @@ class SearchConfig(ConfigModel):
         None, gt=-1, lt=1, description="The mover resigns when its root value (mover's view) falls below this; None = never resign.")
     resign_probe_fraction: float = Field(
         0.1, ge=0, le=1, description="Share of games played with resignation switched off, to measure false positives.")
+    resign_false_positive_target: float | None = Field(
+        None, gt=0, lt=1, description="Lower the resignation threshold (never above `resign_threshold`) so that at "
+        "most this share of the probe games' would-be resignations were not lost (Silver et al. 2017 kept it "
+        "below 0.05); None = the threshold stays fixed.")
     rollout_mix_lambda: float = Field(
         0.0, ge=0, le=1, description="Leaf value = (1 - lambda) * network value + lambda * random-rollout outcome "
         "(AlphaGo, Silver et al. 2016); 0 = network only.")
@@ -78,6 +82,10 @@ class SearchConfig(ConfigModel):
             object.__setattr__(self, "reduced_simulations", self.simulations)
         if self.reduced_simulations > self.simulations:
             raise ValueError(f"reduced_simulations={self.reduced_simulations} must not exceed simulations={self.simulations}")
+        if self.resign_false_positive_target is not None and (self.resign_threshold is None
+                                                              or self.resign_probe_fraction <= 0):
+            raise ValueError("resign_false_positive_target needs a resign_threshold (its ceiling) and a "
+                             "resign_probe_fraction above 0 (the games it learns from)")
         return self
 
     # ---- helpers -------------------------------------------------------------------------------
