@@ -280,23 +280,12 @@ class GoGame(Game[GoState]):
         rows = np.ascontiguousarray(rows, dtype=np.int64)
         hists = np.concatenate([s.history for s in states]).reshape(k, self.history, self._n)
         grps = np.concatenate([s.groups for s in states]).reshape(k, *self._initial.groups.shape)
-        seens = [s.seen for s in states]
+        seen_cat = np.concatenate([s.seen for s in states])
+        facts = np.array([(s.key, s.prev_key, s.player, s.passes, s.moves, s.seen.shape[0]) for s in states],
+                         dtype=np.int64)
+        keys, prev_keys, players, passes, moves = (np.ascontiguousarray(facts[:, j]) for j in range(5))
         seen_off = np.zeros(k + 1, dtype=np.int64)
-        np.cumsum([x.shape[0] for x in seens], out=seen_off[1:])
-        seen_cat = np.concatenate(seens)
-        keys = np.array([s.key for s in states], dtype=np.int64)
-        prev_keys = np.array([s.prev_key for s in states], dtype=np.int64)
-        players = np.array([s.player for s in states], dtype=np.int64)
-        passes = np.array([s.passes for s in states], dtype=np.int64)
-        moves = np.array([s.moves for s in states], dtype=np.int64)
-        if ((passes >= 2) | (moves >= self._max_moves)).any():
-            i = int(np.flatnonzero((passes >= 2) | (moves >= self._max_moves))[0])
-            raise IllegalMoveError(f"the game is over; move {self._safe_text(int(actions[i]))} by "
-                                   f"{'BW'[states[i].player]} cannot be played")
-        bad = (actions < 0) | (actions > self._n)
-        if bad.any():
-            raise IllegalMoveError(f"action {int(actions[bad][0])} is off the {self.size}x{self.size} board "
-                                   f"(points 0..{self._n - 1}, pass {self._n})")
+        np.cumsum(facts[:, 5], out=seen_off[1:])
         out_hist = np.empty_like(hists)
         out_grp = np.empty_like(grps)
         out_seen = np.empty(seen_cat.shape[0] + k, dtype=np.int64)
@@ -308,17 +297,20 @@ class GoGame(Game[GoState]):
                      legal, rows, out_hist, out_grp, out_seen, out_keys, out_grew, status)
         if status.any():
             i = int(np.flatnonzero(status)[0])
+            if status[i] == K.OFF_BOARD:
+                raise IllegalMoveError(f"action {int(actions[i])} is off the {self.size}x{self.size} board "
+                                       f"(points 0..{self._n - 1}, pass {self._n})")
             self._play(states[i], int(actions[i]), None)  # raises the rules' own message
             raise IllegalMoveError(f"move {self._safe_text(int(actions[i]))} is illegal")  # pragma: no cover
         out = []
         a_pass = self._pass
-        for i, (s, a, grew, key) in enumerate(zip(states, actions.tolist(), out_grew.tolist(), out_keys.tolist())):
+        for i, (s, a, grew, key, lo) in enumerate(zip(states, actions.tolist(), out_grew.tolist(), out_keys.tolist(),
+                                                       seen_off.tolist())):
             if a == a_pass:
                 out.append(GoState(out_hist[i], s.groups, s.seen, s.key, s.key, 1 - s.player, s.passes + 1,
                                    s.moves + 1))
             else:
-                lo = seen_off[i] + i
-                seen = out_seen[lo:lo + s.seen.shape[0] + 1] if grew else s.seen
+                seen = out_seen[lo + i:lo + i + s.seen.shape[0] + 1] if grew else s.seen
                 out.append(GoState(out_hist[i], out_grp[i], seen, key, s.key, 1 - s.player, 0, s.moves + 1))
         ended = (moves + 1 >= self._max_moves) | ((actions == a_pass) & (passes + 1 >= 2))
         return out, (1 - players).astype(np.int8), ended

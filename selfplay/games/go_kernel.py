@@ -29,6 +29,8 @@ from numba import njit
 
 REP, NEXT, SIZE, HASH, LIB0 = 0, 1, 2, 3, 4
 OK, OCCUPIED, SUICIDE, REPEAT = 0, 1, 2, 3
+#: extra status codes of :func:`play_batch`: the game had ended, the action is not a point or pass
+OVER, OFF_BOARD = 4, 5
 
 
 # ---- liberty bitsets ----------------------------------------------------------------------------
@@ -405,13 +407,19 @@ def play_batch(hists, grps, seen_cat, seen_off, keys, prev_keys, players, passes
     pass). Outputs: ``out_hist``, ``out_grp`` as the parents', ``out_seen`` (len(seen_cat) + k)
     with child i's keys at ``seen_off[i] + i`` (length one more than its parent's) where
     ``out_grew[i]`` (else the parent's keys are the child's), ``out_keys``, and ``status`` (OK
-    or why the move is illegal). A child that ends the game (second pass, move cap) gets an
-    all-False mask."""
+    or why the move is illegal, :data:`OVER` and :data:`OFF_BOARD` included). A child that ends
+    the game (second pass, move cap) gets an all-False mask."""
     k = actions.shape[0]
     n = nbr.shape[0]
     no_mask = np.zeros(0, dtype=np.bool_)
     for i in range(k):
         a = actions[i]
+        if passes[i] >= 2 or moves[i] >= max_moves:
+            status[i] = OVER
+            continue
+        if a < 0 or a > n:
+            status[i] = OFF_BOARD
+            continue
         row = legal_rows[i]
         lo = seen_off[i]
         hi = seen_off[i + 1]
