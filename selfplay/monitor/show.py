@@ -250,7 +250,9 @@ def position_view(run: str | os.PathLike[str], game_id: str, move: int, *,
     visit_share = rec.policy_target(move, A)
     played = int(rec.actions[move])
     version = int(rec.snapshot[move])
-    title = (f"game {game_id} · {rec.game} {rec.game_options or ''} · move {move} of {n}"
+    options = " ".join(f"{k}={v:g}" if isinstance(v, float) else f"{k}={v}"
+                       for k, v in (rec.game_options or {}).items())
+    title = (f"game {game_id} · {rec.game} {options} · move {move} of {n}"
              f" · snapshot {version} · worker {rec.worker_id}")
     prior = q = None
     value = None
