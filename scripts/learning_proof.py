@@ -118,6 +118,7 @@ def gnugo_match(run: LocalRun, version: int, games: int, seed: int, command: str
     2-ply openings, colours alternating; every game scored by Tromp-Taylor (ours) and by GNU Go's
     own final_score in a fresh GNU Go. Resigned games count as lost by the resigner in both."""
     from selfplay.gtp.client import GtpClient, GtpPlayer, engine_final_score
+    from selfplay.gtp.vertex import vertex_text
 
     game = run.game
     full = f"{command} --komi {game.komi:g} --level {level}"
@@ -141,7 +142,8 @@ def gnugo_match(run: LocalRun, version: int, games: int, seed: int, command: str
         per_game.append({"ours_black": ours_black, "moves": o.moves, "ended_by": o.ended_by,
                          "tromp_taylor": game.result_text(state), "gnugo_final_score": gnu_text,
                          "won_by_gnugo_score": won, "won_by_tromp_taylor": (o.result == 1) == ours_black
-                         if o.result else False})
+                         if o.result else False,
+                         "moves_gtp": " ".join(vertex_text(a, game.size) for a in o.actions)})
     return {"opponent": f"gnugo level {level}", "command": full, "level": level, "version": version,
             "simulations": simulations, "games": res.games, "wins_by_gnugo_score": wins_gnugo_score,
             "win_rate_by_gnugo_score": wins_gnugo_score / res.games, "tromp_taylor": res.to_dict(),
