@@ -7,9 +7,11 @@ Layout inside the run directory::
 
 A snapshot exists only once its ``.json`` is in place: the weights are written to a temporary
 name, fsynced and renamed first, then the metadata the same way, so a reader never sees a
-half-written snapshot. Versions only increase: a new version is one more than the highest number
-present in the folder (complete or not), chosen under a file lock so that two publishers (the
-learner and ``selfplay publish``) never take the same number.
+half-written snapshot. Versions only increase and have no gaps: a new version is one more than
+the highest complete one, chosen under a file lock so that two publishers (the learner and
+``selfplay publish``) never take the same number. Weights without their metadata at that number
+can only be left by a publisher killed between its two writes (a live one holds the lock); no
+reader ever opened them, and the new version replaces them.
 
 Loading checks, in this order, and raises :class:`~selfplay.errors.SnapshotError` naming the
 problem: the metadata parses; the weights file exists and its SHA-256 matches the metadata; the
@@ -468,8 +470,8 @@ class SnapshotStore:
         blob = safetensors_save(tensors, metadata=meta_header)
         digest = hashlib.sha256(blob).hexdigest()
         with self._publish_lock():
-            numbers = self._numbers_on_disk()
-            version = (max(numbers) if numbers else 0) + 1
+            complete = self.versions()
+            version = (complete[-1] if complete else 0) + 1
             if parent_version is not None and parent_version >= version:
                 raise SnapshotError(f"parent version {parent_version} is not older than the new version {version}")
             stem = version_name(version)
