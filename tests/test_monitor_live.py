@@ -151,8 +151,11 @@ def test_watch_serves_prometheus_standalone_until_interrupted(run: Path) -> None
     from prometheus_client.parser import text_string_to_metric_families
 
     port = _free_port()
+    # Ctrl-C as from a terminal: a shell without job control starts background jobs with SIGINT
+    # ignored, and a child inherits that (Python then never raises KeyboardInterrupt)
     proc = subprocess.Popen([sys.executable, "-m", "selfplay.cli", "watch", str(run), "--once",
-                             "--metrics-port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                             "--metrics-port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     try:
         body = None
         for _ in range(100):
