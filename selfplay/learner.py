@@ -58,7 +58,7 @@ from selfplay.errors import ConfigError, SelfplayError, SnapshotError
 from selfplay.games.base import Game
 from selfplay.learner_config import LearnerConfig
 from selfplay.metrics import MetricsLog
-from selfplay.network import flush_denormals
+from selfplay.network import subnormals_flushed
 from selfplay.rundir import atomic_write_bytes
 from selfplay.snapshots import SnapshotStore, check_safetensors_bytes, shape_mismatches
 
@@ -280,9 +280,9 @@ class Learner:
 
         The batch is drawn from all positions (each is a value target); the AlphaZero policy
         term is averaged over the batch's full-search rows only. Publishes every K steps."""
-        flush_denormals()
-        batch = self._sample(self.buffer, need_policy=False)
-        parts = self.train_on_batch(batch, counts_toward_reuse=True)
+        with subnormals_flushed():
+            batch = self._sample(self.buffer, need_policy=False)
+            parts = self.train_on_batch(batch, counts_toward_reuse=True)
         if self.step % self.config.steps_per_snapshot == 0:
             self.publish()
         self._log(parts)
@@ -290,7 +290,10 @@ class Learner:
 
     def train_available(self, positions_generated: int | None = None, max_steps: int | None = None) -> int:
         """Take every step the reuse ratio allows now (at most ``max_steps``); return how many."""
-        flush_denormals()  # on the thread that trains (see selfplay.network.flush_denormals)
+        with subnormals_flushed():  # on the thread that trains (see selfplay.network.flush_denormals)
+            return self._train_available(positions_generated, max_steps)
+
+    def _train_available(self, positions_generated: int | None, max_steps: int | None) -> int:
         if positions_generated is not None:
             self.note_generated(positions_generated)
         n = self.steps_allowed()

@@ -21,7 +21,8 @@ number of points. Ownership and score targets as auxiliary training signals: D. 
 
 from __future__ import annotations
 
-from typing import Any
+import contextlib
+from typing import Any, Iterator
 
 import torch
 from torch import nn
@@ -188,6 +189,17 @@ def fold_for_inference(net: PolicyValueNet, channels_last: bool = True,
     """An inference-only copy of ``net`` (eval-mode semantics) with batch norms folded; its
     inputs must be of ``dtype``."""
     return InferenceNet(net, channels_last=channels_last, dtype=dtype)
+
+
+@contextlib.contextmanager
+def subnormals_flushed() -> Iterator[None]:
+    """Within the block, :func:`flush_denormals`; after it, the thread's default again (other
+    code on the thread, a test library's float checks for one, may rely on IEEE subnormals)."""
+    flush_denormals()
+    try:
+        yield
+    finally:
+        torch.set_flush_denormal(False)
 
 
 def flush_denormals() -> None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from selfplay.network import PolicyValueNet, flush_denormals, fold_for_inference
+from selfplay.network import PolicyValueNet, fold_for_inference, subnormals_flushed
 
 
 class TorchCompiled:
@@ -26,8 +26,7 @@ class TorchCompiled:
         return x.to(self.dtype) if self.dtype != torch.float32 else x
 
     def __call__(self, planes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        flush_denormals()  # the calling thread's (see selfplay.network.flush_denormals)
-        with torch.inference_mode():
+        with subnormals_flushed(), torch.inference_mode():  # see selfplay.network.flush_denormals
             logits, values = self.module(self.input_tensor(planes))
             return logits.float().numpy(), values.float().numpy()
 
