@@ -247,6 +247,11 @@ class Learner:
         for group in self.optimizer.param_groups:
             group["lr"] = lr
         self.net.train()
+        with subnormals_flushed():  # see selfplay.network.subnormals_flushed
+            return self._optimiser_step(batch, counts_toward_reuse, lr)
+
+    def _optimiser_step(self, batch: Mapping[str, np.ndarray], counts_toward_reuse: bool, lr: float) -> LossParts:
+        cfg = self.config
         total, parts = compute_loss(self.net, batch, cfg)
         values = {k: float(v.detach()) for k, v in parts.items()}
         if not math.isfinite(float(total.detach())):
@@ -280,9 +285,8 @@ class Learner:
 
         The batch is drawn from all positions (each is a value target); the AlphaZero policy
         term is averaged over the batch's full-search rows only. Publishes every K steps."""
-        with subnormals_flushed():
-            batch = self._sample(self.buffer, need_policy=False)
-            parts = self.train_on_batch(batch, counts_toward_reuse=True)
+        batch = self._sample(self.buffer, need_policy=False)
+        parts = self.train_on_batch(batch, counts_toward_reuse=True)
         if self.step % self.config.steps_per_snapshot == 0:
             self.publish()
         self._log(parts)
@@ -290,10 +294,6 @@ class Learner:
 
     def train_available(self, positions_generated: int | None = None, max_steps: int | None = None) -> int:
         """Take every step the reuse ratio allows now (at most ``max_steps``); return how many."""
-        with subnormals_flushed():  # on the thread that trains (see selfplay.network.flush_denormals)
-            return self._train_available(positions_generated, max_steps)
-
-    def _train_available(self, positions_generated: int | None, max_steps: int | None) -> int:
         if positions_generated is not None:
             self.note_generated(positions_generated)
         n = self.steps_allowed()

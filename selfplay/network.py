@@ -193,23 +193,19 @@ def fold_for_inference(net: PolicyValueNet, channels_last: bool = True,
 
 @contextlib.contextmanager
 def subnormals_flushed() -> Iterator[None]:
-    """Within the block, :func:`flush_denormals`; after it, the thread's default again (other
-    code on the thread, a test library's float checks for one, may rely on IEEE subnormals)."""
-    flush_denormals()
+    """Within the block, subnormal floats count as zero in this thread's CPU arithmetic (x86
+    FTZ/DAZ, through ``torch.set_flush_denormal``); after it, the thread's default again (other
+    code on the thread, a test library's float checks for one, relies on IEEE subnormals).
+
+    Why: a 9×9 Go learner slowed from 181 to 1,935 ms per training step after an hour (snapshot
+    59 against snapshot 10, batch 128, one thread): weights decayed towards zero make subnormal
+    activations and gradients, which x86 computes in microcode. Values below 1.2e-38 become 0;
+    nothing a network learns depends on them. Not re-entrant: the block's end turns flushing off."""
+    torch.set_flush_denormal(True)
     try:
         yield
     finally:
         torch.set_flush_denormal(False)
-
-
-def flush_denormals() -> None:
-    """Treat subnormal floats as zero on this thread's CPU arithmetic (x86 FTZ/DAZ, through
-    ``torch.set_flush_denormal``). A 9×9 Go learner slowed from 181 to 1,935 ms per training step
-    after an hour (snapshot 59 against snapshot 10, batch 128, one thread): weights decayed
-    towards zero make subnormal activations and gradients, which x86 computes in microcode.
-    Values below 1.2e-38 become 0; nothing a network learns depends on them. Per thread: call
-    it on the thread that computes."""
-    torch.set_flush_denormal(True)
 
 
 def cpu_has_bf16_matrix_units() -> bool:

@@ -26,7 +26,7 @@ class TorchCompiled:
         return x.to(self.dtype) if self.dtype != torch.float32 else x
 
     def __call__(self, planes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        with subnormals_flushed(), torch.inference_mode():  # see selfplay.network.flush_denormals
+        with subnormals_flushed(), torch.inference_mode():  # see selfplay.network.subnormals_flushed
             logits, values = self.module(self.input_tensor(planes))
             return logits.float().numpy(), values.float().numpy()
 

@@ -179,12 +179,14 @@ class BatchedSearch:
     def _terminal_value(self, state: Any, mover: int) -> float | None:
         """None when ``state`` needs evaluation; else its exact value for ``mover``: the game's
         result, or 0 (a draw) at the move cap when the rules do not end the game there."""
+        if not self._ends(state):
+            return None
         g = self.game
-        if g.is_terminal(state):
-            return g.value_for_mover(state, mover)
-        if g.move_count(state) >= self._max_moves:
-            return 0.0
-        return None
+        return g.value_for_mover(state, mover) if g.is_terminal(state) else 0.0
+
+    def _ends(self, state: Any) -> bool:
+        """True when the search stops at ``state``: the rules ended the game, or the move cap."""
+        return self.game.is_terminal(state) or self.game.move_count(state) >= self._max_moves
 
     def _describe_state(self, node: int, state: Any) -> np.ndarray | None:
         """Fill a node's scalars from its state; return its legal mask if it needs evaluation."""
@@ -342,8 +344,7 @@ class BatchedSearch:
             children = [play(states[par], act, legal[node])[0]
                         for node, par, act in zip(node_list, parents.tolist(), actions.tolist())]
             movers = np.array([to_play(c) for c in children], dtype=np.int8)
-            ended = np.array([self._terminal_value(c, int(m)) is not None for c, m in zip(children, movers)],
-                             dtype=bool)
+            ended = np.array([self._ends(c) for c in children], dtype=bool)
         for node, child in zip(node_list, children):
             states[node] = child
         waiting = ~ended
