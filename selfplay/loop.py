@@ -8,9 +8,9 @@ role (which publishes version 1 on a fresh run), one buffer shard, the learner (
 a *training phase* takes every step the target reuse ratio allows (at most
 ``loop.max_steps_per_phase``). After each training phase the snapshot role reads the store and
 the workers pick up the newest version (``worker.snapshot_pickup`` says when it is put into
-use): no snapshot-server clock decides which version a game is played with. (A generation
-phase still plays in time slices of ``worker.report_seconds``, so how many games a phase
-overshoots by, and with it the training data, can differ from run to run.)
+use): no snapshot-server clock decides which version a game is played with. A generation phase
+plays in slices of ``worker.report_seconds`` (each delivers its finished games), and ends at the
+step that finishes its last game, so the clock decides neither the games nor the training data.
 """
 
 from __future__ import annotations
@@ -161,7 +161,10 @@ class LocalRun:
         while stored < games:
             progressed = False
             for w in self.workers:
-                rep = w.play(self.config.worker.report_seconds, game_limit=self.budget.limit_for(w.slot, w.tag))
+                # a phase ends at the step that finishes its last game, whatever the clock says,
+                # so the data of a seeded run does not depend on the machine's speed
+                rep = w.play(self.config.worker.report_seconds, game_limit=self.budget.limit_for(w.slot, w.tag),
+                             until_finished=games - stored)
                 self.budget.report(w.slot, w.tag, rep["finished"], len(rep["added"]), rep["positions"])
                 stored += len(rep["added"])
                 positions += rep["positions"]

@@ -331,3 +331,32 @@ def test_with_gating_workers_only_play_versions_gating_accepted(tmp_path):
     assert played <= accepted
     assert all(r["passed"] == (r["score"] >= r["threshold"]) for r in gates)
     assert SnapshotStore(run_dir).latest_version() >= max(accepted)
+
+
+def test_a_seeded_in_process_run_does_not_depend_on_the_clock(tmp_path):
+    """Same seed, generation slices of 0.01 s against 10 s: the same games in the same order and
+    bit-identical trained snapshots (a phase ends at the step that finishes its last game, not
+    at a slice's end; tests/test_loop_learns' learning checks rely on this)."""
+    import hashlib
+
+    from selfplay.config import with_overrides
+
+    def run(name: str, slice_seconds: float) -> tuple[list[str], list[str]]:
+        cfg = with_overrides(tiny_config(games=80), {"worker.report_seconds": slice_seconds})
+        run_dir = tmp_path / name
+        run_local_loop(cfg, run_dir, loop=LoopConfig(games_per_phase=20))
+        cat = Catalog(run_dir / "catalog.sqlite", readonly=True)
+        try:
+            ids = cat.game_ids()
+        finally:
+            cat.close()
+        store = SnapshotStore(run_dir)
+        # the tensors' bytes (safetensors writes its metadata keys in no fixed order)
+        weights = [hashlib.sha256(b"".join(t.numpy().tobytes() for _, t in sorted(store.load(v)[0].items()))).hexdigest()
+                   for v in store.versions()]
+        return ids, weights
+
+    fast_ids, fast_weights = run("short-slices", 0.01)
+    slow_ids, slow_weights = run("long-slices", 10.0)
+    assert fast_ids == slow_ids and len(fast_ids) == 80
+    assert len(fast_weights) >= 3 and fast_weights == slow_weights

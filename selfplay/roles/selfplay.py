@@ -138,17 +138,19 @@ class SelfPlayRole:
         return True
 
     # ---- playing -----------------------------------------------------------------------------
-    def play(self, seconds: float, game_limit: int | None = -1) -> dict[str, Any]:
-        """Play for about ``seconds`` (less once no game is left in flight), deliver the finished
-        games and return a report. ``game_limit`` (when not -1) first sets how many games this
-        worker may have started in all (None: no limit)."""
+    def play(self, seconds: float, game_limit: int | None = -1, until_finished: int | None = None) -> dict[str, Any]:
+        """Play for about ``seconds`` (less once no game is left in flight, or once
+        ``until_finished`` games have finished in this call), deliver the finished games and
+        return a report. ``game_limit`` (when not -1) first sets how many games this worker may
+        have started in all (None: no limit)."""
         if game_limit != -1:
             self.worker.allow_games(game_limit)
         deadline = time.monotonic() + seconds
         finished: list[GameRecord] = []
         between_games = self.config.worker.snapshot_pickup == "between_games"
         poll = self.config.worker.snapshot_poll_seconds
-        while time.monotonic() < deadline and self.worker.games_in_flight:
+        while (time.monotonic() < deadline and self.worker.games_in_flight
+               and (until_finished is None or len(finished) < until_finished)):
             done = self.worker.step()
             finished.extend(done)
             if time.monotonic() - self._last_poll >= poll and (done or not between_games):
