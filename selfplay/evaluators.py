@@ -52,7 +52,11 @@ class LeafBatch:
         return len(self.states)
 
     def histories(self) -> np.ndarray:
-        """int8 (N, history_length, *compact_shape): the network's compact input boards."""
+        """int8 (N, history_length, *compact_shape): the network's compact input boards (read
+        straight from the search's state pool when the states are its rows)."""
+        pooled = getattr(self.states, "histories", None)
+        if pooled is not None:
+            return pooled()
         return self.game.compact_histories(self.states)
 
     def planes(self) -> np.ndarray:

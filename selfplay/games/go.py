@@ -24,7 +24,7 @@ kernel in :mod:`selfplay.games.go_kernel`; no per-move flood fill.
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Sequence
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 
@@ -33,9 +33,14 @@ from selfplay.games import go_kernel as K
 from selfplay.games.base import FinalArea, Game, dihedral, dihedral_point_permutation
 from selfplay.games.registry import register_game
 
+if TYPE_CHECKING:
+    from selfplay.games.go_pool import GoStatePool
+
 #: column letters of the letter-number style (I is skipped, as on most boards and in GTP)
 COLUMN_LETTERS = "ABCDEFGHJKLMNOPQRST"
 MIN_SIZE, MAX_SIZE = 5, 19
+#: most memory a search's position rows (:meth:`GoGame.state_pool`) may take, bytes
+STATE_POOL_LIMIT_BYTES = 768 * 2**20
 
 _STATUS_TEXT = {
     K.OCCUPIED: "the point is occupied",
@@ -266,54 +271,17 @@ class GoGame(Game[GoState]):
             mask[:] = self.legal_mask(new)
         return new, mask
 
-    def play_many(self, states: Sequence[GoState], actions: np.ndarray, legal: np.ndarray,
-                  rows: np.ndarray) -> tuple[list[GoState], np.ndarray, np.ndarray]:
-        """:meth:`play_with_mask` for many (state, action) pairs in one compiled call (the
-        search's expansion step): writes each new state's legal mask into ``legal[rows[i]]`` and
-        returns the new states, the player to move in each (int8) and whether each ended the
-        game (bool: a second pass or the move cap). The new states' arrays are views of a few
-        arrays shared by the batch."""
-        k = len(states)
-        if k == 0:
-            return [], np.zeros(0, dtype=np.int8), np.zeros(0, dtype=bool)
-        actions = np.ascontiguousarray(actions, dtype=np.int64)
-        rows = np.ascontiguousarray(rows, dtype=np.int64)
-        hists = np.concatenate([s.history for s in states]).reshape(k, self.history, self._n)
-        grps = np.concatenate([s.groups for s in states]).reshape(k, *self._initial.groups.shape)
-        seen_cat = np.concatenate([s.seen for s in states])
-        facts = np.array([(s.key, s.prev_key, s.player, s.passes, s.moves, s.seen.shape[0]) for s in states],
-                         dtype=np.int64)
-        keys, prev_keys, players, passes, moves = (np.ascontiguousarray(facts[:, j]) for j in range(5))
-        seen_off = np.zeros(k + 1, dtype=np.int64)
-        np.cumsum(facts[:, 5], out=seen_off[1:])
-        out_hist = np.empty_like(hists)
-        out_grp = np.empty_like(grps)
-        out_seen = np.empty(seen_cat.shape[0] + k, dtype=np.int64)
-        out_keys = np.empty(k, dtype=np.int64)
-        out_grew = np.empty(k, dtype=np.bool_)
-        status = np.empty(k, dtype=np.int64)
-        K.play_batch(hists, grps, seen_cat, seen_off, keys, prev_keys, players, passes, moves, actions,
-                     self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, self._max_moves,
-                     legal, rows, out_hist, out_grp, out_seen, out_keys, out_grew, status)
-        if status.any():
-            i = int(np.flatnonzero(status)[0])
-            if status[i] == K.OFF_BOARD:
-                raise IllegalMoveError(f"action {int(actions[i])} is off the {self.size}x{self.size} board "
-                                       f"(points 0..{self._n - 1}, pass {self._n})")
-            self._play(states[i], int(actions[i]), None)  # raises the rules' own message
-            raise IllegalMoveError(f"move {self._safe_text(int(actions[i]))} is illegal")  # pragma: no cover
-        out = []
-        a_pass = self._pass
-        for i, (s, a, grew, key, lo) in enumerate(zip(states, actions.tolist(), out_grew.tolist(), out_keys.tolist(),
-                                                       seen_off.tolist())):
-            if a == a_pass:
-                out.append(GoState(out_hist[i], s.groups, s.seen, s.key, s.key, 1 - s.player, s.passes + 1,
-                                   s.moves + 1))
-            else:
-                seen = out_seen[lo + i:lo + i + s.seen.shape[0] + 1] if grew else s.seen
-                out.append(GoState(out_hist[i], out_grp[i], seen, key, s.key, 1 - s.player, 0, s.moves + 1))
-        ended = (moves + 1 >= self._max_moves) | ((actions == a_pass) & (passes + 1 >= 2))
-        return out, (1 - players).astype(np.int8), ended
+    def state_pool(self, slots: int, capacity: int) -> GoStatePool:
+        """Rows of shared arrays for the positions of ``slots`` search trees of ``capacity`` nodes
+        each (:class:`selfplay.games.go_pool.GoStatePool`): the search expands every new edge of
+        a round in one compiled call, with no state object per node. None when the rows would
+        take more than :data:`STATE_POOL_LIMIT_BYTES` (large boards with big searches): the tree
+        then keeps a state object per node it creates."""
+        from selfplay.games.go_pool import GoStatePool
+
+        if slots * capacity * GoStatePool.bytes_per_row(self) > STATE_POOL_LIMIT_BYTES:
+            return None
+        return GoStatePool(self, slots, capacity)
 
     def _play(self, state: GoState, action: int, mask: np.ndarray | None) -> tuple[GoState, bool]:
         """The new state, and True when ``mask`` (if given) was filled with its legal mask."""

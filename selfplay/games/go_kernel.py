@@ -29,7 +29,7 @@ from numba import njit
 
 REP, NEXT, SIZE, HASH, LIB0 = 0, 1, 2, 3, 4
 OK, OCCUPIED, SUICIDE, REPEAT = 0, 1, 2, 3
-#: extra status codes of :func:`play_batch`: the game had ended, the action is not a point or pass
+#: extra status codes of the search's batched expansion (:mod:`selfplay.games.go_pool`): the game had ended, the action is not a point or pass
 OVER, OFF_BOARD = 4, 5
 
 
@@ -392,62 +392,6 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
                      out_mask)
         out_mask[hist.shape[1]] = True
     return OK, nk, grew
-
-
-@njit(cache=True)
-def play_batch(hists, grps, seen_cat, seen_off, keys, prev_keys, players, passes, moves, actions,
-               allow_suicide, superko, nbr, zob, nwords, max_moves, legal, legal_rows, out_hist, out_grp,
-               out_seen, out_keys, out_grew, status):
-    """:func:`play_history` for ``k`` positions at once (each its own parent and move), the
-    new positions' legal masks written straight into rows ``legal_rows`` of ``legal``.
-
-    Parents: ``hists`` (k, H, N), ``grps`` (k, N, 4 + W), their sorted keys concatenated in
-    ``seen_cat`` (position i's at ``seen_off[i]:seen_off[i + 1]``), and per position ``keys``,
-    ``prev_keys``, ``players`` (0 Black), ``passes``, ``moves``; ``actions`` the points (N =
-    pass). Outputs: ``out_hist``, ``out_grp`` as the parents', ``out_seen`` (len(seen_cat) + k)
-    with child i's keys at ``seen_off[i] + i`` (length one more than its parent's) where
-    ``out_grew[i]`` (else the parent's keys are the child's), ``out_keys``, and ``status`` (OK
-    or why the move is illegal, :data:`OVER` and :data:`OFF_BOARD` included). A child that ends
-    the game (second pass, move cap) gets an all-False mask."""
-    k = actions.shape[0]
-    n = nbr.shape[0]
-    no_mask = np.zeros(0, dtype=np.bool_)
-    for i in range(k):
-        a = actions[i]
-        if passes[i] >= 2 or moves[i] >= max_moves:
-            status[i] = OVER
-            continue
-        if a < 0 or a > n:
-            status[i] = OFF_BOARD
-            continue
-        row = legal_rows[i]
-        lo = seen_off[i]
-        hi = seen_off[i + 1]
-        seen = seen_cat[lo:hi]
-        ends = moves[i] + 1 >= max_moves
-        if a == n:  # pass: the same board again, the same groups and keys
-            out_hist[i, 1:] = hists[i, :-1]
-            out_hist[i, 0] = hists[i, 0]
-            out_grp[i] = grps[i]
-            out_keys[i] = keys[i]
-            out_grew[i] = False
-            status[i] = OK
-            if passes[i] + 1 >= 2 or ends:
-                legal[row, :] = False
-            else:
-                legal_points(out_hist[i, 0], out_grp[i], seen, keys[i], keys[i], 2 - players[i],
-                             allow_suicide, superko, nbr, zob, nwords, legal[row])
-                legal[row, n] = True
-            continue
-        mask = no_mask if ends else legal[row]
-        st, nk, grew = play_history(hists[i], grps[i], seen, keys[i], prev_keys[i], players[i] + 1, a,
-                                    allow_suicide, superko, nbr, zob, nwords, out_hist[i], out_grp[i],
-                                    out_seen[lo + i:hi + i + 1], mask)
-        status[i] = st
-        out_keys[i] = nk
-        out_grew[i] = grew
-        if ends:
-            legal[row, :] = False
 
 
 @njit(cache=True)

@@ -12,7 +12,9 @@ masked):
 - scalars ``visits[i]`` (the sum of ``N[i]``), ``to_play[i]``, ``terminal[i]``, ``value[i]``
   (network value, or the exact result for a terminal node, from the view of the player to move
   at ``i``) and ``pending[i]`` (waiting for evaluation in the current round);
-- the game state itself, in a Python list (states are immutable; ``game.play`` returns new ones).
+- the game state itself: in the game's state pool where it has one (Go:
+  :class:`selfplay.games.go_pool.GoStatePool`, the position in row ``i`` of a few arrays), else
+  in a Python list (states are immutable; ``game.play`` returns new ones).
 
 Children are created lazily, when a simulation first takes their edge. Per slot (numpy arrays
 over the slots): ``base`` (first row of its region), ``count`` (rows used), ``root``, and the
@@ -26,8 +28,8 @@ A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
    node already waiting for evaluation (a collision: it shares that evaluation). With
    ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and the step runs
    once per leaf;
-2. ``_expand`` — the children at new edges are created, shallowest first: one
-   ``game.play_many`` call for all of them where the game has it (Go), else one
+2. ``_expand`` — the children at new edges are created, shallowest first: one compiled
+   ``pool.expand`` call for all of them where the game has a state pool (Go), else one
    ``game.play_with_mask`` each;
 3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call;
 4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
@@ -143,7 +145,9 @@ class BatchedSearch:
         self.terminal = np.zeros(total, dtype=bool)
         self.value = np.zeros(total, dtype=np.float32)
         self.pending = np.zeros(total, dtype=bool)
-        self.states: list[Any] = [None] * total
+        # the positions: rows of the game's state pool (node i in row i), else a list of states
+        self.pool = game.state_pool(slots, C)
+        self.states: list[Any] = [None] * total if self.pool is None else []
         # per slot: region start, nodes used, root node, search state
         self.base = np.arange(slots, dtype=np.int64) * C
         self.count = np.zeros(slots, dtype=np.int64)
@@ -163,8 +167,6 @@ class BatchedSearch:
         self._leaves = config.leaves_per_game
         self._vl = float(config.virtual_loss) if config.leaves_per_game > 1 else 0.0
         self._max_moves = game.max_moves
-        # a game may play many edges in one call (Go: selfplay.games.go.GoGame.play_many)
-        self._play_many = getattr(game, "play_many", None)
         # edge and path buffers of one round: a path never has more edges than its tree has nodes
         paths = self._leaves * slots
         self._edge_node = np.zeros(paths * C, dtype=np.int64)
@@ -188,9 +190,12 @@ class BatchedSearch:
         """True when the search stops at ``state``: the rules ended the game, or the move cap."""
         return self.game.is_terminal(state) or self.game.move_count(state) >= self._max_moves
 
+    def _state(self, node: int) -> Any:
+        """The position at ``node`` (made from the pool's row where the game has a pool)."""
+        return self.pool.load(node) if self.pool is not None else self.states[node]
+
     def _describe_state(self, node: int, state: Any) -> np.ndarray | None:
         """Fill a node's scalars from its state; return its legal mask if it needs evaluation."""
-        self.states[node] = state
         tp = self.game.to_play(state)
         self.to_play[node] = tp
         exact = self._terminal_value(state, tp)
@@ -213,10 +218,14 @@ class BatchedSearch:
         """Start a fresh tree at ``slot`` whose root is ``state`` (evaluated at the next round)."""
         old = int(self.count[slot])
         node = int(self.base[slot])
-        if old:
+        if old and self.pool is None:
             self.states[node:node + old] = [None] * old
         self._clear_rows(np.array([node]))
         t0 = time.perf_counter()
+        if self.pool is not None:
+            self.pool.store_root(slot, node, state)
+        else:
+            self.states[node] = state
         mask = self._describe_state(node, state)
         self.times.rules += time.perf_counter() - t0
         self.pending[node] = False  # the round that evaluates the root marks it
@@ -228,7 +237,7 @@ class BatchedSearch:
         self.searching[slot] = False
 
     def root_state(self, slot: int) -> Any:
-        return self.states[self.root[slot]]
+        return self._state(int(self.root[slot]))
 
     def root_is_terminal(self, slot: int) -> bool:
         return bool(self.terminal[self.root[slot]])
@@ -244,7 +253,7 @@ class BatchedSearch:
         if self.terminal[root]:
             raise ValueError("cannot search a terminal position")
         if self.count[slot] + budget + 1 > self.capacity:
-            self.set_root(slot, self.states[root])
+            self.set_root(slot, self._state(int(root)))
         self.budget[slot] = self.budget_left[slot] = int(budget)
         self.full[slot] = bool(full)
         self.rngs[slot] = rng
@@ -331,26 +340,25 @@ class BatchedSearch:
         self.count[slots] += 1
         kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
                                 self.child)
-        states, legal = self.states, self.legal
+        legal = self.legal
         t0 = time.perf_counter()
-        node_list = created.tolist()
-        if self._play_many is not None:
-            # one compiled call plays every new edge, writes the children's legal masks and
-            # says who moves next and which children end the game
-            children, movers, ended = self._play_many([states[p] for p in parents.tolist()], actions, legal,
-                                                      created)
+        if self.pool is not None:
+            # one compiled call plays every new edge from its parent's row into its child's,
+            # writes the children's legal masks and says who moves next and which ended the game
+            movers, ended = self.pool.expand(parents, actions, created, legal)
         else:
+            states = self.states
             play, to_play = self.game.play_with_mask, self.game.to_play
             children = [play(states[par], act, legal[node])[0]
-                        for node, par, act in zip(node_list, parents.tolist(), actions.tolist())]
+                        for node, par, act in zip(created.tolist(), parents.tolist(), actions.tolist())]
             movers = np.array([to_play(c) for c in children], dtype=np.int8)
             ended = np.array([self._ends(c) for c in children], dtype=bool)
-        for node, child in zip(node_list, children):
-            states[node] = child
+            for node, child in zip(created.tolist(), children):
+                states[node] = child
         waiting = ~ended
         rnd.eval_nodes.extend(created[waiting].tolist())
         rnd.eval_slots.extend(slots[waiting].tolist())
-        exact = [(node, self._terminal_value(states[node], m))
+        exact = [(node, self._terminal_value(self._state(node), m))
                  for node, m in zip(created[ended].tolist(), movers[ended].tolist())]
         rnd.rules_seconds += time.perf_counter() - t0
         self.to_play[created] = movers
@@ -369,7 +377,8 @@ class BatchedSearch:
         if not rnd.eval_nodes:
             return 0.0
         nodes = np.array(rnd.eval_nodes, dtype=np.int64)
-        batch = LeafBatch(self.game, [self.states[i] for i in rnd.eval_nodes], self.to_play[nodes],
+        states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in rnd.eval_nodes])
+        batch = LeafBatch(self.game, states, self.to_play[nodes],
                           self.legal[nodes], [self.rngs[s] for s in rnd.eval_slots])
         t0 = time.perf_counter()
         priors, values = evaluator.evaluate(batch)
@@ -418,7 +427,7 @@ class BatchedSearch:
         c = int(self.child[root, action])
         if c < 0 or not self.config.reuse_tree or self.terminal[c] or self.pending[c]:
             t0 = time.perf_counter()
-            state = self.states[c] if c >= 0 else self.game.play(self.states[root], int(action))
+            state = self._state(c) if c >= 0 else self.game.play(self._state(int(root)), int(action))
             self.times.rules += time.perf_counter() - t0
             self.set_root(slot, state)
             return state
@@ -427,16 +436,19 @@ class BatchedSearch:
         keep = np.empty(self.count[slot], dtype=np.int64)
         total = kernels.subtree_order(self.child, c, keep)
         keep = keep[:total]
-        state = self.states[c]
+        state = self._state(c)
         if total + self.config.simulations + 1 > self.capacity:
             self.times.tree += time.perf_counter() - t0
             self.set_root(slot, state)
             return state
         kernels.move_rows(keep, base, self.P, self.N, self.W, self.Q, self.legal, self.child, self.to_play,
                           self.terminal, self.value, self.pending, self.visits, self.logP)
-        kept_states = [self.states[i] for i in keep.tolist()]
         old = int(self.count[slot])
-        self.states[base:base + old] = kept_states + [None] * (old - total)
+        if self.pool is not None:
+            self.pool.reroot(slot, keep, base)
+        else:
+            kept_states = [self.states[i] for i in keep.tolist()]
+            self.states[base:base + old] = kept_states + [None] * (old - total)
         self.count[slot] = total
         self.root[slot] = base
         self.root_needs_eval[slot] = False

@@ -1,0 +1,264 @@
+"""Go positions of a search tree kept in rows of shared arrays, one row per tree node.
+
+The search (:class:`selfplay.search.tree.BatchedSearch`) creates a node per simulation. With
+one :class:`~selfplay.games.go.GoState` object per node, every round spent Python time gathering
+the parents' arrays into a batch and wrapping each child in an object again. Here a node's
+position lives in row ``i`` of a few arrays — the same row number as the node in the tree — and
+one compiled call (:func:`expand_rows`) plays every new edge of a round from its parent's row
+into its child's row, writing the child's legal mask straight into the tree.
+
+Per row: ``hist`` int8 (H, N) the board and the boards before it, ``grp`` the group table (see
+:mod:`selfplay.games.go_kernel`), ``key`` / ``prev_key`` the board's Zobrist key and the one
+before the last move, ``player`` to move (0 Black), ``passes`` consecutive passes, ``moves``
+moves played, and ``parent`` the row of the node's parent (-1 at a root).
+
+Positional superko needs every board key of the game so far. A node's keys are its root's keys
+(``root_seen`` per game, sorted) plus the keys of the node and of its ancestors below the root,
+gathered by walking ``parent`` when a node is expanded (a few steps: the tree is shallow), so no
+row holds a copy of the game's key list.
+
+Results are those of :meth:`selfplay.games.go.GoGame.play_with_mask` move for move
+(``tests/test_go_pool.py``).
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Iterator, Sequence
+
+import numpy as np
+from numba import njit
+
+from selfplay.games import go_kernel as K
+
+if TYPE_CHECKING:
+    from selfplay.games.go import GoGame, GoState
+
+
+@njit(cache=True, inline="always")
+def _add_key(keys, m, key):
+    """Insert ``key`` into the sorted ``keys[:m]`` in place (nothing when present); new length."""
+    lo, hi = 0, m
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if keys[mid] < key:
+            lo = mid + 1
+        else:
+            hi = mid
+    if lo < m and keys[lo] == key:
+        return m
+    for j in range(m, lo, -1):
+        keys[j] = keys[j - 1]
+    keys[lo] = key
+    return m + 1
+
+
+@njit(cache=True)
+def gather_seen(row, key, parent, root_seen, root_seen_len, capacity, out):
+    """The sorted board keys of the game up to the node in ``row`` into ``out``: its root's keys
+    and the keys of the node and its ancestors below the root. Returns their number."""
+    slot = row // capacity
+    m = root_seen_len[slot]
+    out[:m] = root_seen[slot, :m]
+    q = row
+    while parent[q] >= 0:
+        m = _add_key(out, m, key[q])
+        q = parent[q]
+    return m
+
+
+@njit(cache=True)
+def expand_rows(hist, grp, key, prev_key, player, passes, moves, parent, root_seen, root_seen_len, capacity,
+                parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, merged, spare,
+                status, ended):
+    """Play ``actions[i]`` from the position in row ``parents[i]`` into row ``rows[i]`` (which
+    becomes its child) for every ``i``; the child's legal mask goes to ``legal[rows[i]]`` (all
+    False when the child ends the game: a second pass or the move cap) and ``ended[i]`` says
+    so. ``status[i]``: :data:`~selfplay.games.go_kernel.OK` or why the move is illegal (as
+    :func:`selfplay.games.go_kernel.play_batch`). ``merged`` and ``spare`` are scratch key
+    buffers of at least the longest game's key count plus the tree's depth, plus one."""
+    n = nbr.shape[0]
+    no_mask = np.zeros(0, dtype=np.bool_)
+    for i in range(rows.size):
+        p = parents[i]
+        c = rows[i]
+        a = actions[i]
+        ended[i] = False
+        if passes[p] >= 2 or moves[p] >= max_moves:
+            status[i] = K.OVER
+            continue
+        if a < 0 or a > n:
+            status[i] = K.OFF_BOARD
+            continue
+        m = gather_seen(p, key, parent, root_seen, root_seen_len, capacity, merged)
+        seen = merged[:m]
+        parent[c] = p
+        player[c] = 1 - player[p]
+        moves[c] = moves[p] + 1
+        prev_key[c] = key[p]
+        ends = moves[c] >= max_moves
+        if a == n:  # pass: the same board again, the same groups and keys
+            hist[c, 1:] = hist[p, :-1]
+            hist[c, 0] = hist[p, 0]
+            grp[c] = grp[p]
+            key[c] = key[p]
+            passes[c] = passes[p] + 1
+            status[i] = K.OK
+            if passes[c] >= 2 or ends:
+                legal[c, :] = False
+                ended[i] = True
+            else:
+                K.legal_points(hist[c, 0], grp[c], seen, key[c], key[c], player[c] + 1, allow_suicide, superko,
+                               nbr, zob, nwords, legal[c])
+                legal[c, n] = True
+            continue
+        mask = no_mask if ends else legal[c]
+        st, nk, _ = K.play_history(hist[p], grp[p], seen, key[p], prev_key[p], player[p] + 1, a, allow_suicide,
+                                   superko, nbr, zob, nwords, hist[c], grp[c], spare[:m + 1], mask)
+        status[i] = st
+        key[c] = nk
+        passes[c] = 0
+        if ends:
+            legal[c, :] = False
+            ended[i] = True
+
+
+class GoStatePool:
+    """The positions of ``slots`` games' search trees, ``capacity`` rows per game (row ``i``
+    belongs to game ``i // capacity``); see the module docstring."""
+
+    def __init__(self, game: GoGame, slots: int, capacity: int) -> None:
+        self.game = game
+        self.capacity = capacity
+        rows = slots * capacity
+        n, h = game.size * game.size, game.history
+        group_cols = game._initial.groups.shape[1]
+        # rows are always written before they are read: np.empty leaves unused pages uncommitted
+        self.hist = np.empty((rows, h, n), dtype=np.int8)
+        self.grp = np.empty((rows, n, group_cols), dtype=np.int64)
+        self.key = np.zeros(rows, dtype=np.int64)
+        self.prev_key = np.zeros(rows, dtype=np.int64)
+        self.player = np.zeros(rows, dtype=np.int64)
+        self.passes = np.zeros(rows, dtype=np.int64)
+        self.moves = np.zeros(rows, dtype=np.int64)
+        self.parent = np.full(rows, -1, dtype=np.int64)
+        self._seen_room = game.max_moves + 2
+        self.root_seen = np.zeros((slots, self._seen_room), dtype=np.int64)
+        self.root_seen_len = np.zeros(slots, dtype=np.int64)
+        self._alloc_scratch()
+
+    @staticmethod
+    def bytes_per_row(game: GoGame) -> int:
+        """Memory one row takes (the per-game key lists not counted)."""
+        n = game.size * game.size
+        return game.history * n + n * game._initial.groups.shape[1] * 8 + 6 * 8
+
+    def _alloc_scratch(self) -> None:
+        room = self._seen_room + self.capacity + 1
+        self._merged = np.empty(room, dtype=np.int64)
+        self._spare = np.empty(room, dtype=np.int64)
+
+    # ---- roots -------------------------------------------------------------------------------
+    def store_root(self, slot: int, row: int, state: GoState) -> None:
+        """Make ``state`` the root position of ``slot``'s tree, in ``row``."""
+        if state.seen.shape[0] > self._seen_room:  # a position from outside with a longer past
+            self._seen_room = int(state.seen.shape[0]) + 2
+            grown = np.zeros((self.root_seen.shape[0], self._seen_room), dtype=np.int64)
+            grown[:, :self.root_seen.shape[1]] = self.root_seen
+            self.root_seen = grown
+            self._alloc_scratch()
+        self.hist[row] = state.history
+        self.grp[row] = state.groups
+        self.key[row] = state.key
+        self.prev_key[row] = state.prev_key
+        self.player[row] = state.player
+        self.passes[row] = state.passes
+        self.moves[row] = state.moves
+        self.parent[row] = -1
+        self.root_seen[slot, :state.seen.shape[0]] = state.seen
+        self.root_seen_len[slot] = state.seen.shape[0]
+
+    def reroot(self, slot: int, keep: np.ndarray, base: int) -> None:
+        """The subtree of rows ``keep`` (ascending, its top first) becomes the slot's tree in
+        rows ``base, base + 1, ...``: its top the new root (its keys join the game's), parent
+        rows renumbered like the tree's child ids."""
+        top = int(keep[0])
+        m = gather_seen(top, self.key, self.parent, self.root_seen, self.root_seen_len, self.capacity, self._merged)
+        if m > self._seen_room:
+            raise ValueError(f"go game history of {m} positions exceeds the search's room of {self._seen_room}")
+        self.root_seen[slot, :m] = self._merged[:m]
+        self.root_seen_len[slot] = m
+        total = keep.size
+        remap = np.full(int(keep[-1]) - base + 1, -1, dtype=np.int64)
+        remap[keep - base] = base + np.arange(total)
+        old_parent = self.parent[keep]
+        new_parent = np.where(old_parent >= base, remap[np.maximum(old_parent - base, 0)], -1)
+        new_parent[0] = -1
+        dst = slice(base, base + total)
+        for arr in (self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves):
+            arr[dst] = arr[keep]
+        self.parent[dst] = new_parent
+
+    # ---- expansion -----------------------------------------------------------------------------
+    def expand(self, parents: np.ndarray, actions: np.ndarray, rows: np.ndarray,
+               legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Play each ``actions[i]`` from row ``parents[i]`` into row ``rows[i]``, the child's legal
+        mask into ``legal[rows[i]]``; returns the player to move at each child (int8) and whether
+        it ends the game (bool). An illegal move raises the rules' IllegalMoveError."""
+        g = self.game
+        k = rows.size
+        status = np.empty(k, dtype=np.int64)
+        ended = np.empty(k, dtype=np.bool_)
+        parents = np.ascontiguousarray(parents, dtype=np.int64)
+        actions = np.ascontiguousarray(actions, dtype=np.int64)
+        rows = np.ascontiguousarray(rows, dtype=np.int64)
+        expand_rows(self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves, self.parent,
+                    self.root_seen, self.root_seen_len, self.capacity, parents, actions, rows, g.allow_suicide,
+                    g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._merged, self._spare, status,
+                    ended)
+        if status.any():
+            i = int(np.flatnonzero(status)[0])
+            g.play(self.load(int(parents[i])), int(actions[i]))  # raises the rules' own message
+            raise AssertionError(f"go pool: move {int(actions[i])} refused with status {int(status[i])}")  # pragma: no cover
+        return self.player[rows].astype(np.int8), ended
+
+    # ---- reading -------------------------------------------------------------------------------
+    def load(self, row: int) -> GoState:
+        """The position in ``row`` as a GoState of its own (arrays copied)."""
+        from selfplay.games.go import GoState
+
+        m = gather_seen(row, self.key, self.parent, self.root_seen, self.root_seen_len, self.capacity, self._merged)
+        return GoState(self.hist[row].copy(), self.grp[row].copy(), self._merged[:m].copy(), int(self.key[row]),
+                       int(self.prev_key[row]), int(self.player[row]), int(self.passes[row]), int(self.moves[row]))
+
+    def histories(self, rows: np.ndarray) -> np.ndarray:
+        """int8 (k, H, size, size): the network's compact input boards of ``rows``."""
+        g = self.game
+        return self.hist[rows].reshape(len(rows), g.history, g.size, g.size)
+
+    def states(self, rows: np.ndarray) -> PooledStates:
+        """``rows`` as a sequence of states, made on access (see :class:`PooledStates`)."""
+        return PooledStates(self, np.asarray(rows, dtype=np.int64))
+
+
+class PooledStates(Sequence["GoState"]):
+    """Positions of pool rows as a read-only sequence: an evaluator that wants the network's
+    input reads :meth:`histories` (one gather); one that wants states (rollouts) gets each made
+    when asked for."""
+
+    def __init__(self, pool: GoStatePool, rows: np.ndarray) -> None:
+        self.pool = pool
+        self.rows = rows
+
+    def __len__(self) -> int:
+        return int(self.rows.size)
+
+    def __getitem__(self, i):  # type: ignore[override]
+        if isinstance(i, slice):
+            return [self.pool.load(int(r)) for r in self.rows[i]]
+        return self.pool.load(int(self.rows[i]))
+
+    def __iter__(self) -> Iterator[GoState]:
+        return (self.pool.load(int(r)) for r in self.rows)
+
+    def histories(self) -> np.ndarray:
+        return self.pool.histories(self.rows)
