@@ -18,8 +18,8 @@ from selfplay.worker import SelfPlayWorker
 def _same(got, ref) -> None:
     assert np.array_equal(got.history, ref.history) and np.array_equal(got.groups, ref.groups)
     assert np.array_equal(got.seen, ref.seen)
-    assert (got.key, got.prev_key, got.player, got.passes, got.moves) == \
-        (ref.key, ref.prev_key, ref.player, ref.passes, ref.moves)
+    assert (got.key, got.prev_key, got.player, got.passes, got.moves, got.peak) == \
+        (ref.key, ref.prev_key, ref.player, ref.passes, ref.moves, ref.peak)
 
 
 @pytest.mark.parametrize("options", [{"size": 9}, {"size": 5, "max_moves": 30},

@@ -495,3 +495,33 @@ def test_benchmark_playouts_runs_in_compiled_code_and_is_seeded() -> None:
     for options in ({"allow_suicide": True}, {"superko": False}, {"size": 19}):
         g2 = GoGame(**{"size": 7, **options})
         assert g2.benchmark_playouts(3, seed=2) > 3 * 10
+
+
+@pytest.mark.parametrize("options", [{"size": 5}, {"size": 4, "tiny": True, "max_moves": 120},
+                                     {"size": 5, "allow_suicide": True}, {"size": 5, "superko": False}])
+def test_legal_masks_skipping_impossible_repeats_equal_full_lookups(options: dict) -> None:
+    """The legal mask skips the superko lookup for moves that capture nothing while the board
+    holds the most stones the game has seen (such a board cannot have occurred before); over
+    random games full of captures, every mask equals the one that looks up every point, and
+    each state's peak is the largest stone count of its game's boards."""
+    game = GoGame(**options)
+    rng = np.random.default_rng(7)
+    differs_from_no_skip = 0
+    for _ in range(30):
+        s = game.initial_state()
+        most = 0
+        while not game.is_terminal(s):
+            most = max(most, int(np.count_nonzero(s.board)))
+            assert s.peak == most
+            full = np.zeros(game.num_actions, dtype=bool)
+            K.legal_points(s.board, s.groups, s.seen, s.key, s.prev_key, s.player + 1, game.allow_suicide,
+                           game.superko, game._nbr, game._zob, game._nwords, 10**9, full)
+            full[-1] = True
+            mask = game.legal_mask(s)
+            assert np.array_equal(mask, full)
+            differs_from_no_skip += int(s.peak > np.count_nonzero(s.board))
+            moves = np.flatnonzero(mask)
+            # prefer stones over passes so that games run long and capture a lot
+            points = moves[moves < game.pass_action]
+            s = game.play(s, int(rng.choice(points)) if points.size and rng.random() < 0.95 else game.pass_action)
+    assert differs_from_no_skip > 100  # positions after captures, where the lookup must run

@@ -74,12 +74,14 @@ class GoState:
     sorted int64 keys of every board position so far (see :mod:`selfplay.games.go_kernel`);
     ``key`` the board's Zobrist key, ``prev_key`` the key of the position before the last move;
     ``player`` 0 (Black) or 1 (White) to move; ``passes`` consecutive passes just played;
-    ``moves`` moves played."""
+    ``moves`` moves played; ``peak`` the most stones any board of the game so far held (lets
+    the superko test skip moves that cannot repeat a board, see
+    :func:`selfplay.games.go_kernel.legal_points`)."""
 
-    __slots__ = ("history", "groups", "seen", "key", "prev_key", "player", "passes", "moves")
+    __slots__ = ("history", "groups", "seen", "key", "prev_key", "player", "passes", "moves", "peak")
 
     def __init__(self, history: np.ndarray, groups: np.ndarray, seen: np.ndarray, key: int,
-                 prev_key: int, player: int, passes: int, moves: int) -> None:
+                 prev_key: int, player: int, passes: int, moves: int, peak: int) -> None:
         self.history = history
         self.groups = groups
         self.seen = seen
@@ -88,6 +90,7 @@ class GoState:
         self.player = player
         self.passes = passes
         self.moves = moves
+        self.peak = peak
 
     @property
     def board(self) -> np.ndarray:
@@ -171,7 +174,7 @@ class GoGame(Game[GoState]):
         empty = np.zeros(n, dtype=np.int8)
         groups, _ = K.build_groups(empty, nbr, zob, self._nwords)
         self._initial = GoState(np.zeros((history, n), dtype=np.int8), groups, np.zeros(1, dtype=np.int64), 0,
-                                self._no_position, 0, 0, 0)
+                                self._no_position, 0, 0, 0, 0)
 
     # ---- shape facts ---------------------------------------------------------------------------
     @property
@@ -238,7 +241,7 @@ class GoGame(Game[GoState]):
         history = np.zeros((self.history, self._n), dtype=np.int8)
         history[0] = board
         return GoState(history, groups, np.array([key], dtype=np.int64), int(key),
-                       self._no_position, int(to_play), 0, 0)
+                       self._no_position, int(to_play), 0, 0, int(np.count_nonzero(board)))
 
     def to_play(self, state: GoState) -> int:
         return state.player
@@ -255,7 +258,7 @@ class GoGame(Game[GoState]):
             return out
         K.legal_points(state.board, state.groups, state.seen, state.key, state.prev_key,
                        state.player + 1, self.allow_suicide, self.superko, self._nbr, self._zob,
-                       self._nwords, out)
+                       self._nwords, state.peak, out)
         out[self._n] = True
         return out
 
@@ -297,7 +300,7 @@ class GoGame(Game[GoState]):
             history[0] = state.board
             history[1:] = state.history[:-1]
             return GoState(history, state.groups, state.seen, state.key, state.key,
-                           1 - state.player, state.passes + 1, state.moves + 1), False
+                           1 - state.player, state.passes + 1, state.moves + 1, state.peak), False
         if not 0 <= a < self._n:
             raise IllegalMoveError(
                 f"action {a} is off the {self.size}x{self.size} board (points 0..{self._n - 1}, "
@@ -309,9 +312,10 @@ class GoGame(Game[GoState]):
         seen = np.empty(state.seen.shape[0] + 1, dtype=np.int64)
         if not with_mask:
             mask = self._no_mask
-        st, key, grew = K.play_history(
+        st, key, grew, peak = K.play_history(
             state.history, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
-            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, history, groups, seen, mask)
+            self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, state.peak, history, groups, seen,
+            mask)
         if st != K.OK:
             reason = _STATUS_TEXT[st]
             if st == K.REPEAT and not self.superko:
@@ -319,7 +323,7 @@ class GoGame(Game[GoState]):
             raise IllegalMoveError(
                 f"move {self.action_to_text(a)} by {'BW'[state.player]} is illegal: {reason}")
         return (GoState(history, groups, seen if grew else state.seen, int(key), state.key, 1 - state.player, 0,
-                        state.moves + 1), with_mask)
+                        state.moves + 1, int(peak)), with_mask)
 
     def score(self, state: GoState) -> tuple[int, int]:
         """Tromp–Taylor area (black, white): stones plus empty points reaching only that

@@ -300,13 +300,23 @@ def _repeats(nk, seen, nseen, prev_key, superko):
 
 @njit(cache=True)
 def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob,
-                 nwords, out):
+                 nwords, peak, out):
     """Fill ``out[:N]`` with the legality of a ``color`` stone on each point (pass not touched).
 
     The per-point test is :func:`move_result` written out in the loop: numba's inlined version
-    ran several times slower here. ``tests/test_go_rules.py`` checks that both agree."""
+    ran several times slower here. ``tests/test_go_rules.py`` checks that both agree.
+
+    ``peak``: the most stones any board of the game so far held. While the board holds that
+    many, a move that captures nothing makes a board with more stones than any earlier one,
+    which cannot repeat: the superko lookup is skipped for it (``tests/test_go_rules.py``
+    checks the masks against lookups at every point)."""
     n = board.shape[0]
     nseen = seen.shape[0]
+    stones = 0
+    for p in range(n):
+        if board[p] != 0:
+            stones += 1
+    fresh = stones >= peak
     for p in range(n):
         if board[p] != 0:
             out[p] = False
@@ -341,7 +351,7 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
         if not has_lib and allow_suicide:
             nk = _suicide_key(board, grp, p, color, key, nbr)
             ok = True
-        if ok:
+        if ok and not (fresh and has_lib and c0 < 0):
             if superko:
                 lo = 0
                 hi = nseen
@@ -362,7 +372,7 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
 
 @njit(cache=True)
 def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
-                 nwords, out_hist, out_grp, out_seen, out_mask):
+                 nwords, peak, out_hist, out_grp, out_seen, out_mask):
     """Play a ``color`` stone at ``p`` on a position kept with its history, into arrays the
     caller allocated (allocating them here and handing them back to Python cost more than the
     move itself).
@@ -371,27 +381,33 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
     the game's start). ``out_hist`` (H, N) receives the new board first and the older boards
     shifted down, ``out_grp`` the new group table, ``out_seen`` (len(seen) + 1,) the sorted keys
     with the new one; with a non-empty ``out_mask`` (N + 1,) the legal mask of the new position
-    for the opponent (pass legal). Returns (status, key, keys_grew): ``keys_grew`` False when
-    the new key was already in ``seen`` (then ``out_seen`` is unused: the set is ``seen``).
-    On a non-OK status the outputs mean nothing."""
+    for the opponent (pass legal). ``peak``: the most stones any board of the game so far held
+    (see :func:`legal_points`). Returns (status, key, keys_grew, peak after the move):
+    ``keys_grew`` False when the new key was already in ``seen`` (then ``out_seen`` is unused:
+    the set is ``seen``). On a non-OK status the outputs mean nothing."""
     if hist[0, p] != 0:
-        return OCCUPIED, key, False
+        return OCCUPIED, key, False, peak
     out_hist[1:] = hist[:-1]
     out_hist[0] = hist[0]
     board = out_hist[0]
     out_grp[:] = grp
     st, nk, _ = play_inplace(board, out_grp, key, color, p, allow_suicide, nbr, zob, nwords)
     if st != OK:
-        return st, key, False
+        return st, key, False, peak
     if _repeats(nk, seen, seen.shape[0], prev_key, superko):
-        return REPEAT, key, False
+        return REPEAT, key, False, peak
+    stones = 0
+    for q in range(board.shape[0]):
+        if board[q] != 0:
+            stones += 1
+    new_peak = stones if stones > peak else peak
     grew = _insert_into(seen, nk, out_seen)
     keys = out_seen if grew else seen
     if out_mask.shape[0] > 0:
         legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
-                     out_mask)
+                     new_peak, out_mask)
         out_mask[hist.shape[1]] = True
-    return OK, nk, grew
+    return OK, nk, grew, new_peak
 
 
 @njit(cache=True)

@@ -10,7 +10,8 @@ into its child's row, writing the child's legal mask straight into the tree.
 Per row: ``hist`` int8 (H, N) the board and the boards before it, ``grp`` the group table (see
 :mod:`selfplay.games.go_kernel`), ``key`` / ``prev_key`` the board's Zobrist key and the one
 before the last move, ``player`` to move (0 Black), ``passes`` consecutive passes, ``moves``
-moves played, and ``parent`` the row of the node's parent (-1 at a root).
+moves played, ``peak`` the most stones a board of the game so far held, and ``parent`` the row of
+the node's parent (-1 at a root).
 
 Positional superko needs every board key of the game so far. A node's keys are its root's keys
 (``root_seen`` per game, sorted) plus the keys of the node and of its ancestors below the root,
@@ -67,7 +68,7 @@ def gather_seen(row, key, parent, root_seen, root_seen_len, capacity, out):
 
 
 @njit(cache=True)
-def expand_rows(hist, grp, key, prev_key, player, passes, moves, parent, root_seen, root_seen_len, capacity,
+def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, root_seen, root_seen_len, capacity,
                 parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, merged, spare,
                 status, ended):
     """Play ``actions[i]`` from the position in row ``parents[i]`` into row ``rows[i]`` (which
@@ -101,6 +102,7 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, parent, root_se
             hist[c, 0] = hist[p, 0]
             grp[c] = grp[p]
             key[c] = key[p]
+            peak[c] = peak[p]
             passes[c] = passes[p] + 1
             status[i] = K.OK
             if passes[c] >= 2 or ends:
@@ -108,14 +110,16 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, parent, root_se
                 ended[i] = True
             else:
                 K.legal_points(hist[c, 0], grp[c], seen, key[c], key[c], player[c] + 1, allow_suicide, superko,
-                               nbr, zob, nwords, legal[c])
+                               nbr, zob, nwords, peak[c], legal[c])
                 legal[c, n] = True
             continue
         mask = no_mask if ends else legal[c]
-        st, nk, _ = K.play_history(hist[p], grp[p], seen, key[p], prev_key[p], player[p] + 1, a, allow_suicide,
-                                   superko, nbr, zob, nwords, hist[c], grp[c], spare[:m + 1], mask)
+        st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, key[p], prev_key[p], player[p] + 1, a,
+                                             allow_suicide, superko, nbr, zob, nwords, peak[p], hist[c], grp[c],
+                                             spare[:m + 1], mask)
         status[i] = st
         key[c] = nk
+        peak[c] = new_peak
         passes[c] = 0
         if ends:
             legal[c, :] = False
@@ -140,6 +144,7 @@ class GoStatePool:
         self.player = np.zeros(rows, dtype=np.int64)
         self.passes = np.zeros(rows, dtype=np.int64)
         self.moves = np.zeros(rows, dtype=np.int64)
+        self.peak = np.zeros(rows, dtype=np.int64)
         self.parent = np.full(rows, -1, dtype=np.int64)
         self._seen_room = game.max_moves + 2
         self.root_seen = np.zeros((slots, self._seen_room), dtype=np.int64)
@@ -150,7 +155,7 @@ class GoStatePool:
     def bytes_per_row(game: GoGame) -> int:
         """Memory one row takes (the per-game key lists not counted)."""
         n = game.size * game.size
-        return game.history * n + n * game._initial.groups.shape[1] * 8 + 6 * 8
+        return game.history * n + n * game._initial.groups.shape[1] * 8 + 9 * 8
 
     def _alloc_scratch(self) -> None:
         room = self._seen_room + self.capacity + 1
@@ -173,6 +178,7 @@ class GoStatePool:
         self.player[row] = state.player
         self.passes[row] = state.passes
         self.moves[row] = state.moves
+        self.peak[row] = state.peak
         self.parent[row] = -1
         self.root_seen[slot, :state.seen.shape[0]] = state.seen
         self.root_seen_len[slot] = state.seen.shape[0]
@@ -194,7 +200,8 @@ class GoStatePool:
         new_parent = np.where(old_parent >= base, remap[np.maximum(old_parent - base, 0)], -1)
         new_parent[0] = -1
         dst = slice(base, base + total)
-        for arr in (self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves):
+        for arr in (self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves,
+                    self.peak):
             arr[dst] = arr[keep]
         self.parent[dst] = new_parent
 
@@ -211,7 +218,8 @@ class GoStatePool:
         parents = np.ascontiguousarray(parents, dtype=np.int64)
         actions = np.ascontiguousarray(actions, dtype=np.int64)
         rows = np.ascontiguousarray(rows, dtype=np.int64)
-        expand_rows(self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves, self.parent,
+        expand_rows(self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves, self.peak,
+                    self.parent,
                     self.root_seen, self.root_seen_len, self.capacity, parents, actions, rows, g.allow_suicide,
                     g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._merged, self._spare, status,
                     ended)
@@ -228,7 +236,8 @@ class GoStatePool:
 
         m = gather_seen(row, self.key, self.parent, self.root_seen, self.root_seen_len, self.capacity, self._merged)
         return GoState(self.hist[row].copy(), self.grp[row].copy(), self._merged[:m].copy(), int(self.key[row]),
-                       int(self.prev_key[row]), int(self.player[row]), int(self.passes[row]), int(self.moves[row]))
+                       int(self.prev_key[row]), int(self.player[row]), int(self.passes[row]), int(self.moves[row]),
+                       int(self.peak[row]))
 
     def histories(self, rows: np.ndarray) -> np.ndarray:
         """int8 (k, H, size, size): the network's compact input boards of ``rows``."""
