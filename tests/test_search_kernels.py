@@ -218,3 +218,20 @@ def test_go_planes_equal_the_plane_definition():
         np.ones((20, 1, 9, 9), bool)], axis=1).astype(np.float32)
     np.testing.assert_array_equal(go.planes_from_compact(boards, to_play), expected)
     np.testing.assert_array_equal(go.planes_from_compact(boards.astype(np.int64), to_play.astype(np.int64)), expected)
+
+
+def test_move_choice_by_temperature_draws_what_numpy_choice_draws() -> None:
+    """choose_by_visits samples N^(1/T) as numpy's Generator.choice(p=...) (the reference
+    sampler) does, draw for draw, leaving the generator in the same state."""
+    from selfplay.search.puct import choose_by_visits
+
+    for seed in range(400):
+        r = np.random.default_rng(seed)
+        visits = r.integers(0, 40, 82).astype(np.float32)
+        visits[r.random(82) < 0.6] = 0
+        visits[int(r.integers(82))] += 1
+        t = (1.0, 0.5, 2.0, 0.25)[seed % 4]
+        w = np.where(visits > 0, visits.astype(np.float64) ** (1.0 / t), 0.0)
+        mine, ref = np.random.default_rng([seed, 1]), np.random.default_rng([seed, 1])
+        assert choose_by_visits(visits, t, mine) == int(ref.choice(82, p=w / w.sum()))
+        assert mine.random() == ref.random()

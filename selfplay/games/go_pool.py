@@ -126,6 +126,31 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, r
             ended[i] = True
 
 
+@njit(cache=True)
+def move_rows(keep, base, hist, grp, key, prev_key, player, passes, moves, peak, parent):
+    """Copy rows ``keep`` (ascending, the subtree's top first) to rows ``base, base + 1, ...``
+    (a row is never overwritten before it is read: ``keep[i] >= base + i``), parent rows
+    renumbered the same way; the top becomes a root (parent -1)."""
+    total = keep.size
+    remap = np.full(keep[total - 1] - base + 1, -1, dtype=np.int64)
+    for i in range(total):
+        remap[keep[i] - base] = base + i
+    for i in range(total):
+        src = keep[i]
+        dst = base + i
+        parent[dst] = -1 if i == 0 else remap[parent[src] - base]
+        if src == dst:
+            continue
+        hist[dst] = hist[src]
+        grp[dst] = grp[src]
+        key[dst] = key[src]
+        prev_key[dst] = prev_key[src]
+        player[dst] = player[src]
+        passes[dst] = passes[src]
+        moves[dst] = moves[src]
+        peak[dst] = peak[src]
+
+
 class GoStatePool:
     """The positions of ``slots`` games' search trees, ``capacity`` rows per game (row ``i``
     belongs to game ``i // capacity``); see the module docstring."""
@@ -193,17 +218,8 @@ class GoStatePool:
             raise ValueError(f"go game history of {m} positions exceeds the search's room of {self._seen_room}")
         self.root_seen[slot, :m] = self._merged[:m]
         self.root_seen_len[slot] = m
-        total = keep.size
-        remap = np.full(int(keep[-1]) - base + 1, -1, dtype=np.int64)
-        remap[keep - base] = base + np.arange(total)
-        old_parent = self.parent[keep]
-        new_parent = np.where(old_parent >= base, remap[np.maximum(old_parent - base, 0)], -1)
-        new_parent[0] = -1
-        dst = slice(base, base + total)
-        for arr in (self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves,
-                    self.peak):
-            arr[dst] = arr[keep]
-        self.parent[dst] = new_parent
+        move_rows(np.ascontiguousarray(keep, dtype=np.int64), base, self.hist, self.grp, self.key, self.prev_key,
+                  self.player, self.passes, self.moves, self.peak, self.parent)
 
     # ---- expansion -----------------------------------------------------------------------------
     def expand(self, parents: np.ndarray, actions: np.ndarray, rows: np.ndarray,

@@ -75,7 +75,11 @@ def choose_by_visits(visits: np.ndarray, temperature: float, rng: np.random.Gene
     logw = np.where(visits > 0, np.log(np.maximum(visits, 1e-300)) / temperature, -np.inf)
     w = np.exp(logw - logw.max())
     w /= w.sum()
-    return int(rng.choice(visits.size, p=w))
+    # what rng.choice(visits.size, p=w) draws (the same uniform, the same cumulative sums), without
+    # its argument checks, which cost three times the draw
+    cdf = w.cumsum()
+    cdf /= cdf[-1]
+    return int(cdf.searchsorted(rng.random(), side="right"))
 
 
 class PuctRoot(RootSearch):
