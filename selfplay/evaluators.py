@@ -173,6 +173,7 @@ class NetworkEvaluator:
         self.net = net
         self.threads = threads
         self.requested_precision = precision
+        self.batch_hint = batch_hint
         self.times = EvaluatorTimes()
         self.swaps = SwapStats()
         self.choice: Any = None
@@ -206,7 +207,7 @@ class NetworkEvaluator:
     def _compile(self, net: PolicyValueNet) -> Any:
         from selfplay.inference.base import build_backend
 
-        return build_backend(self.backend, net, self.threads, self.requested_precision)
+        return build_backend(self.backend, net, self.threads, self.requested_precision, self.batch_hint)
 
     @property
     def compiled(self) -> Any:

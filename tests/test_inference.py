@@ -105,6 +105,33 @@ def test_float32_backends_agree_with_torch(backend):
     assert np.abs(values - ref_values).max() < 1e-4
 
 
+@pytest.mark.parametrize("precision", ["float32", "bfloat16"])
+def test_openvino_steady_batch_pads_near_full_calls_and_answers_like_the_dynamic_model(precision):
+    """With a batch hint OpenVINO serves calls of 90-100 % of it from a fixed-shape copy (padded,
+    the padding dropped): every call size gives each row what torch float32 gives it (bfloat16:
+    within twice torch bfloat16's own distance), whatever the call sizes before it."""
+    if "openvino" not in AVAILABLE:
+        pytest.skip("openvino is not installed")
+    from selfplay.inference.openvino_backend import STEADY_FILL
+
+    compiled = build_backend("openvino", NET, precision=precision, batch=20)
+    assert compiled.steady_batch == 20 and compiled._steady_from == int(np.ceil(STEADY_FILL * 20))
+    planes, _ = real_positions(24, seed=4)
+    ref_logits, ref_values = torch_float32(planes)
+    if precision == "float32":
+        tol_l = tol_v = 1e-4
+    else:
+        bf = build_backend("torch", NET, precision="bfloat16")(planes)
+        tol_l = 2 * np.abs(bf[0] - ref_logits).max() + 1e-3
+        tol_v = 2 * np.abs(bf[1] - ref_values).max() + 1e-3
+    for n in (20, 18, 19, 24, 5, 20, 18):  # steady, padded, padded, dynamic (more), dynamic (few), ...
+        logits, values = compiled(planes[:n])
+        assert logits.shape == (n, GO.num_actions) and values.shape == (n,)
+        assert np.abs(logits - ref_logits[:n]).max() <= tol_l, n
+        assert np.abs(values - ref_values[:n]).max() <= tol_v, n
+    assert build_backend("openvino", NET, precision=precision).steady_batch == 0  # no hint: dynamic only
+
+
 @pytest.mark.parametrize("backend", [b for b in AVAILABLE if b != "onnxruntime"])
 def test_bfloat16_backends_stay_as_close_as_torch_bfloat16(backend):
     planes, legal = real_positions()

@@ -79,7 +79,7 @@ def _worker_process(spec: dict[str, Any], ready: Any, start: Any, out: Any) -> N
 
     game = make_game("go", size=spec["size"])
     net = build_network(game, NetworkConfig.reference(), seed=0)
-    ev = NetworkEvaluator(net, threads=1, game=game, backend=spec["backend"])
+    ev = NetworkEvaluator(net, threads=1, game=game, backend=spec["backend"], batch_hint=spec["games"])
     worker = SelfPlayWorker(game, ev, SearchConfig(simulations=spec["simulations"], temperature_moves=10_000),
                             games_in_parallel=spec["games"], worker_id=f"b{os.getpid()}", seed=spec["seed"])
     t0 = time.perf_counter()

@@ -164,7 +164,9 @@ def measure(args: argparse.Namespace) -> dict[str, Any]:
     single_search = search.model_copy(update={"leaves_per_game": 1})
     evaluators, many, one = {}, {}, {}
     for b in backends:
-        evaluators[b] = NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision, backend=b)
+        # the worker's batch, as a self-play role passes it (OpenVINO compiles a fixed shape for it)
+        evaluators[b] = NetworkEvaluator(net, threads=args.threads, game=game, precision=args.precision, backend=b,
+                                         batch_hint=args.games_in_parallel * args.leaves_per_game)
         many[b] = SelfPlayWorker(game, evaluators[b], search, games_in_parallel=args.games_in_parallel,
                                  worker_id="bench", seed=args.seed)
         one[b] = SelfPlayWorker(game, NetworkEvaluator(net, threads=args.threads, game=game,

@@ -48,9 +48,12 @@ class CompiledNetwork(Protocol):
 
 
 class InferenceBackend(Protocol):
-    """What a backend module provides: ``compile(net, threads, precision) -> CompiledNetwork``."""
+    """What a backend module provides: ``compile(net, threads, precision, batch) ->
+    CompiledNetwork``; ``batch`` (None: not known) is the batch size the caller will mostly send,
+    which a backend may prepare for (OpenVINO compiles a fixed-shape copy for it)."""
 
-    def compile(self, net: PolicyValueNet, threads: int, precision: str) -> CompiledNetwork: ...
+    def compile(self, net: PolicyValueNet, threads: int, precision: str,
+                batch: int | None = None) -> CompiledNetwork: ...
 
 
 def import_openvino() -> object:
@@ -127,7 +130,9 @@ def resolve_precision(backend: str, precision: str, channels: int) -> str:
     return "bfloat16"
 
 
-def build_backend(name: str, net: PolicyValueNet, threads: int = 1, precision: str = "auto") -> CompiledNetwork:
-    """Compile ``net`` on backend ``name`` (not "auto": see :mod:`selfplay.inference.choose`)."""
+def build_backend(name: str, net: PolicyValueNet, threads: int = 1, precision: str = "auto",
+                  batch: int | None = None) -> CompiledNetwork:
+    """Compile ``net`` on backend ``name`` (not "auto": see :mod:`selfplay.inference.choose`);
+    ``batch``: the batch size calls will mostly have, if known."""
     module = _module(name)
-    return module.compile(net, threads, resolve_precision(name, precision, net.config.channels))
+    return module.compile(net, threads, resolve_precision(name, precision, net.config.channels), batch)

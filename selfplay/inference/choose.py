@@ -165,7 +165,7 @@ def choose_backend(net: PolicyValueNet, batch: int, threads: int = 1, precision:
         entry = _read_cache(path).get(key)
         if entry and entry["backend"] in usable:
             try:
-                compiled = build_backend(entry["backend"], net, threads, precision)
+                compiled = build_backend(entry["backend"], net, threads, precision, batch)
                 choice = BackendChoice(entry["backend"], compiled.precision, batch, compiled,
                                        from_cache=True, notices=notices)
                 for line in notices:
@@ -176,7 +176,7 @@ def choose_backend(net: PolicyValueNet, batch: int, threads: int = 1, precision:
     compiled_by: dict[str, CompiledNetwork] = {}
     for name in usable:
         try:
-            compiled_by[name] = build_backend(name, net, threads, precision)
+            compiled_by[name] = build_backend(name, net, threads, precision, batch)
         except Exception as exc:  # noqa: BLE001 - any failure of a runtime leaves the others
             notices.append(f"inference backend {name} failed to compile this network: "
                            f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}")

@@ -34,5 +34,6 @@ class OnnxRuntimeCompiled:
         return np.asarray(logits, dtype=np.float32), np.asarray(values, dtype=np.float32).reshape(-1)
 
 
-def compile(net: PolicyValueNet, threads: int, precision: str) -> OnnxRuntimeCompiled:  # noqa: A001
+def compile(net: PolicyValueNet, threads: int, precision: str,  # noqa: A001
+            batch: int | None = None) -> OnnxRuntimeCompiled:
     return OnnxRuntimeCompiled(net, threads, precision)

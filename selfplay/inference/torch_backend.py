@@ -31,5 +31,6 @@ class TorchCompiled:
             return logits.float().numpy(), values.float().numpy()
 
 
-def compile(net: PolicyValueNet, threads: int, precision: str) -> TorchCompiled:  # noqa: A001 - the backend verb
+def compile(net: PolicyValueNet, threads: int, precision: str,  # noqa: A001 - the backend verb
+            batch: int | None = None) -> TorchCompiled:
     return TorchCompiled(net, threads, precision)
