@@ -22,7 +22,7 @@ from numba import njit
 
 from selfplay.search.root import RULE_GUMBEL, RULE_PUCT
 
-__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "attach_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
+__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "attach_children", "new_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
            "gumbel_pick_rows"]
 
 _ONE = np.float32(1.0)
@@ -192,20 +192,57 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
             Q[node, a] = W[node, a] / N[node, a]
 
 
+@njit(cache=True, inline="always")
+def _attach(node, parent, action, P, N, W, visits, legal, child):
+    for a in range(P.shape[1]):
+        P[node, a] = 0.0
+        N[node, a] = 0.0
+        W[node, a] = 0.0
+        legal[node, a] = False
+        child[node, a] = -1
+    visits[node] = 0.0
+    child[parent, action] = node
+
+
 @njit(cache=True)
 def attach_children(created, parents, actions, P, N, W, visits, legal, child):
     """Make node ``created[j]`` the child of ``parents[j]`` through ``actions[j]``, its rows
     cleared (no priors, visits, values, children or legal moves yet)."""
     for j in range(created.size):
-        node = created[j]
-        for a in range(P.shape[1]):
-            P[node, a] = 0.0
-            N[node, a] = 0.0
-            W[node, a] = 0.0
-            legal[node, a] = False
-            child[node, a] = -1
-        visits[node] = 0.0
-        child[parents[j], actions[j]] = node
+        _attach(created[j], parents[j], actions[j], P, N, W, visits, legal, child)
+
+
+@njit(cache=True)
+def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, P, N, W,
+                 visits, legal, child, new, parents, actions, slots, created):
+    """The paths ``lo:hi`` that stopped at an edge with no child, shallowest first (ties in path
+    order), each given its child: the next free node of its slot's region (``count`` grows),
+    attached as :func:`attach_children` does and recorded as the path's leaf. Writes the paths,
+    the parents, actions, slots and new nodes into the first entries of ``new``, ``parents``,
+    ``actions``, ``slots`` and ``created``; returns how many."""
+    k = 0
+    for j in range(lo, hi):
+        if path_leaf[j] < 0:
+            d = path_len[j]
+            i = k
+            while i > 0 and path_len[new[i - 1]] > d:
+                new[i] = new[i - 1]
+                i -= 1
+            new[i] = j
+            k += 1
+    for i in range(k):
+        j = new[i]
+        e = path_start[j] + path_len[j] - 1
+        s = path_slot[j]
+        node = base[s] + count[s]
+        count[s] += 1
+        parents[i] = edge_node[e]
+        actions[i] = edge_act[e]
+        slots[i] = s
+        created[i] = node
+        path_leaf[j] = node
+        _attach(node, edge_node[e], edge_act[e], P, N, W, visits, legal, child)
+    return k
 
 
 @njit(cache=True)

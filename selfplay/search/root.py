@@ -69,9 +69,10 @@ class RootSearch:
         """The root of ``slot`` is evaluated and a search of ``tree.budget[slot]`` simulations
         begins (``tree.full[slot]``, the game's generator ``tree.rngs[slot]``)."""
 
-    def ready(self, tree: BatchedSearch, slots: np.ndarray) -> np.ndarray:
-        """bool mask over ``slots`` (all with budget left): may this game start a simulation now?"""
-        return np.ones(slots.size, dtype=bool)
+    def ready(self, tree: BatchedSearch, slots: np.ndarray) -> np.ndarray | None:
+        """bool mask over ``slots`` (all with budget left): may this game start a simulation now?
+        None: all may (the default)."""
+        return None
 
     def forced_actions(self, tree: BatchedSearch, slots: np.ndarray) -> np.ndarray | None:
         """int64 root action per slot for the simulation about to start (-1: the selection rule

@@ -176,6 +176,9 @@ class BatchedSearch:
         self._path_leaf = np.zeros(paths, dtype=np.int64)
         self._path_slot = np.zeros(paths, dtype=np.int64)
         self._no_force = np.full(slots, -1, dtype=np.int64)
+        # the new children of one descent step (kernels.new_children)
+        self._new_path, self._new_parent, self._new_action, self._new_slot, self._new_node = (
+            np.zeros(paths, dtype=np.int64) for _ in range(5))
 
     # ---- node helpers ----------------------------------------------------------------------
     def _terminal_value(self, state: Any, mover: int) -> float | None:
@@ -303,7 +306,9 @@ class BatchedSearch:
         """One descent from the root of every walker that may simulate now (compiled), then
         the new children it reached are created. False when no game could start one."""
         slots = walkers[self.budget_left[walkers] > 0]
-        slots = slots[self.variant.ready(self, slots)]
+        ready = self.variant.ready(self, slots)
+        if ready is not None:
+            slots = slots[ready]
         k = slots.size
         if not k:
             return False
@@ -328,18 +333,14 @@ class BatchedSearch:
     def _expand(self, lo: int, hi: int, rnd: _Round) -> None:
         """Create the children at the ends of paths ``lo:hi`` that stopped at a new edge (one
         ``game.play`` each), shallowest first; those not terminal wait for evaluation."""
-        new = np.flatnonzero(self._path_leaf[lo:hi] < 0) + lo
-        if not new.size:
+        k = kernels.new_children(lo, hi, self._path_leaf, self._path_len, self._path_start, self._path_slot,
+                                 self._edge_node, self._edge_act, self.base, self.count, self.P, self.N, self.W,
+                                 self.visits, self.legal, self.child, self._new_path, self._new_parent,
+                                 self._new_action, self._new_slot, self._new_node)
+        if not k:
             return
-        new = new[np.argsort(self._path_len[new], kind="stable")]
-        last = self._path_start[new] + self._path_len[new] - 1
-        parents = self._edge_node[last]
-        actions = self._edge_act[last]
-        slots = self._path_slot[new]
-        created = self.base[slots] + self.count[slots]
-        self.count[slots] += 1
-        kernels.attach_children(created, parents, actions, self.P, self.N, self.W, self.visits, self.legal,
-                                self.child)
+        parents, actions = self._new_parent[:k], self._new_action[:k]
+        slots, created = self._new_slot[:k], self._new_node[:k]
         legal = self.legal
         t0 = time.perf_counter()
         if self.pool is not None:
@@ -370,7 +371,6 @@ class BatchedSearch:
             self.pending[done] = False
             self.value[done] = [v for _, v in exact]
             legal[done] = False
-        self._path_leaf[new] = created
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
         """Evaluate every waiting leaf in one call; returns the seconds the evaluator took."""
