@@ -173,8 +173,9 @@ class LearnerActor:
     def checkpoint(self) -> int:
         return self.role.checkpoint()
 
-    def close(self) -> None:
-        self.role.close()
+    def close(self) -> int | None:
+        """Stop the learner (a last snapshot when it trained since the newest); its newest version."""
+        return self.role.close()
 
     def where(self) -> dict[str, Any]:
         return _where()

@@ -403,9 +403,12 @@ class Driver:
             calls.append(("learner", self.learner.close.remote()))
         for who, ref in calls:
             try:
-                ray.get(ref, timeout=120)
+                answer = ray.get(ref, timeout=120)
             except ray.exceptions.RayError as exc:
                 self.event(f"{who} did not stop cleanly: {type(exc).__name__}")
+                continue
+            if who == "learner" and isinstance(answer, int):  # the learner's closing snapshot
+                self.snapshot_version = max(self.snapshot_version, answer)
         if self.buffer is not None:
             try:
                 self.buffer_stats = self.buffer.close(timeout=120)

@@ -201,6 +201,9 @@ def test_learner_killed_restarts_from_its_checkpoint(cluster, worker_nodes, tmp_
     facts = check_run_consistent(tmp_path / "run", list(launcher.reported_game_ids), stats)
     assert facts["snapshots"] >= state["version"] + 2
     assert any("learner lost" in line for line in launcher.lines)
+    # the closing summary's "newest snapshot" is the newest on disk, the learner's last one included
+    from selfplay.snapshots import SnapshotStore
+    assert launcher.snapshot_version == SnapshotStore(tmp_path / "run").latest_version()
 
 
 def test_selfplay_run_joins_a_cluster_by_address(cluster, worker_nodes, tmp_path):

@@ -72,12 +72,13 @@ class LearnerRole:
         self.learner.save_checkpoint()
         return self.learner.snapshot_version
 
-    def close(self, save: bool = True) -> None:
+    def close(self, save: bool = True) -> int | None:
         """Publish what was trained since the newest snapshot as a last one (which checkpoints
         too), or just checkpoint — unless ``save`` is false, as after the learner itself failed —
-        and write the final line."""
+        and write the final line. Returns the newest snapshot version this learner knows (None
+        when it was already closed)."""
         if self._closed:
-            return
+            return None
         self._closed = True
         L = self.learner
         if save:
@@ -89,3 +90,4 @@ class LearnerRole:
         self.metrics.write(step=L.step, samples_trained_total=L.samples_trained_total, reuse_ratio=L.reuse_ratio,
                            snapshot_version=L.snapshot_version, pretrain_steps=L.pretrain_steps,
                            resumed_from=self.resumed_from, final=True)
+        return int(L.snapshot_version)
