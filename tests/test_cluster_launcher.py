@@ -217,3 +217,28 @@ def test_resume_into_a_live_run_is_refused_before_anything_is_touched(tmp_path, 
             assert not (out / "metrics.jsonl").exists()
     finally:
         live.release()
+
+
+def test_every_command_the_closing_summary_suggests_parses(tmp_path):
+    """The 'next:' lines of `selfplay run`'s closing summary are commands a user can paste:
+    each parses with the command's own argument parser (a missing required option failed)."""
+    import shlex
+
+    from selfplay.cli import build_parser
+    from selfplay.roles.run import closing_summary
+    from selfplay.rundir import RunDir
+
+    text = closing_summary(RunDir(tmp_path / "run"), "minutes reached",
+                           {"games_total": 10, "positions_total": 70, "shards_total": 1}, elapsed=60.0,
+                           initial_games=0, initial_positions=0, snapshot_version=2, learner={"step": 5})
+    commands = [line.strip() for line in text.splitlines() if line.strip().startswith("selfplay ")]
+    assert len(commands) >= 4
+    parser = build_parser()
+    for command in commands:
+        argv = shlex.split(command.split("   ")[0])[1:]
+        if "--help" in argv:  # prints the subcommand's help and exits 0
+            with pytest.raises(SystemExit) as exit_info:
+                parser.parse_args(argv)
+            assert exit_info.value.code == 0, command
+        else:
+            parser.parse_args(argv)  # SystemExit (a usage error) fails the test

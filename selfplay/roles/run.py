@@ -260,7 +260,7 @@ def closing_summary(run: RunDir, reason: str, buffer: dict[str, Any], *, elapsed
         + (f" (learner step {learner.get('step', 0):,})" if learner else " (no learner in this run)"),
         "next:",
         f"  selfplay status {root}          counts, rates and staleness",
-        f"  selfplay report {root}          plots of the run",
+        f"  selfplay report {root} --out {root}-report   plots of the run (PNG and index.html)",
         f"  selfplay export {root} --help   hand the positions to a trainer",
         f"  selfplay run --resume --out {root}   go on",
     ]
