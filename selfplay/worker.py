@@ -230,6 +230,12 @@ class SelfPlayWorker:
         self._start_if_allowed(slot)
 
     # ---- driving ------------------------------------------------------------------------------
+    def play_round(self) -> list[int]:
+        """One search round: every game in flight runs its next simulation(s), one batched
+        evaluation; returns the slots whose move was made in it (finished games wait in
+        :meth:`step`'s next answer)."""
+        return self._round()
+
     def _round(self) -> list[int]:
         done = self._tree.run_round(self.evaluator)
         t0 = time.perf_counter()
