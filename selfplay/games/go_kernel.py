@@ -112,17 +112,24 @@ def _contains(seen, n, key):
 
 
 @njit(cache=True, inline="always")
+def lower_bound(keys, n, key):
+    """First index of the sorted ``keys[:n]`` whose key is not below ``key`` (``n`` if none)."""
+    lo, hi = 0, n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if keys[mid] < key:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@njit(cache=True, inline="always")
 def _insert_into(seen, key, out):
     """Write the sorted ``seen`` with ``key`` added into ``out`` (length len(seen) + 1); return
     False, leaving ``out`` untouched, when ``key`` is already in ``seen``."""
     n = seen.shape[0]
-    lo, hi = 0, n
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if seen[mid] < key:
-            lo = mid + 1
-        else:
-            hi = mid
+    lo = lower_bound(seen, n, key)
     if lo < n and seen[lo] == key:
         return False
     out[:lo] = seen[:lo]

@@ -38,13 +38,7 @@ if TYPE_CHECKING:
 @njit(cache=True, inline="always")
 def _add_key(keys, m, key):
     """Insert ``key`` into the sorted ``keys[:m]`` in place (nothing when present); new length."""
-    lo, hi = 0, m
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if keys[mid] < key:
-            lo = mid + 1
-        else:
-            hi = mid
+    lo = K.lower_bound(keys, m, key)
     if lo < m and keys[lo] == key:
         return m
     for j in range(m, lo, -1):
