@@ -97,7 +97,22 @@ def liberty_count(grp, r, nwords):
 # ---- the position-key set (sorted array) --------------------------------------------------------
 
 @njit(cache=True, inline="always")
+def lower_bound(keys, n, key):
+    """First index of the sorted ``keys[:n]`` whose key is not below ``key`` (``n`` if none)."""
+    lo, hi = 0, n
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if keys[mid] < key:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@njit(cache=True, inline="always")
 def _contains(seen, n, key):
+    """Whether ``key`` is in the sorted ``seen[:n]`` (stops at the first match: a set lookup on the
+    legal-mask path, where this runs faster than :func:`lower_bound`)."""
     lo, hi = 0, n
     while lo < hi:
         mid = (lo + hi) >> 1
@@ -109,19 +124,6 @@ def _contains(seen, n, key):
         else:
             return True
     return False
-
-
-@njit(cache=True, inline="always")
-def lower_bound(keys, n, key):
-    """First index of the sorted ``keys[:n]`` whose key is not below ``key`` (``n`` if none)."""
-    lo, hi = 0, n
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if keys[mid] < key:
-            lo = mid + 1
-        else:
-            hi = mid
-    return lo
 
 
 @njit(cache=True, inline="always")
@@ -310,20 +312,32 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
                  nwords, peak, out):
     """Fill ``out[:N]`` with the legality of a ``color`` stone on each point (pass not touched).
 
-    The per-point test is :func:`move_result` written out in the loop: numba's inlined version
-    ran several times slower here. ``tests/test_go_rules.py`` checks that both agree.
-
     ``peak``: the most stones any board of the game so far held. While the board holds that
     many, a move that captures nothing makes a board with more stones than any earlier one,
     which cannot repeat: the superko lookup is skipped for it (``tests/test_go_rules.py``
     checks the masks against lookups at every point)."""
-    n = board.shape[0]
-    nseen = seen.shape[0]
+    _legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob, nwords,
+                  _stone_count(board) >= peak, out)
+
+
+@njit(cache=True, inline="always")
+def _stone_count(board):
     stones = 0
-    for p in range(n):
+    for p in range(board.shape[0]):
         if board[p] != 0:
             stones += 1
-    fresh = stones >= peak
+    return stones
+
+
+@njit(cache=True)
+def _legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob, nwords, fresh,
+                  out):
+    """:func:`legal_points` for a board that holds the game's most stones (``fresh``) or not.
+
+    The per-point test is :func:`move_result` written out in the loop: numba's inlined version
+    ran several times slower here. ``tests/test_go_rules.py`` checks that both agree."""
+    n = board.shape[0]
+    nseen = seen.shape[0]
     for p in range(n):
         if board[p] != 0:
             out[p] = False
@@ -360,18 +374,7 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
             ok = True
         if ok and not (fresh and has_lib and c0 < 0):
             if superko:
-                lo = 0
-                hi = nseen
-                while lo < hi:
-                    mid = (lo + hi) >> 1
-                    sv = seen[mid]
-                    if sv < nk:
-                        lo = mid + 1
-                    elif sv > nk:
-                        hi = mid
-                    else:
-                        ok = False
-                        break
+                ok = not _contains(seen, nseen, nk)
             elif nk == prev_key:
                 ok = False
         out[p] = ok
@@ -403,16 +406,13 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
         return st, key, False, peak
     if _repeats(nk, seen, seen.shape[0], prev_key, superko):
         return REPEAT, key, False, peak
-    stones = 0
-    for q in range(board.shape[0]):
-        if board[q] != 0:
-            stones += 1
+    stones = _stone_count(board)
     new_peak = stones if stones > peak else peak
     grew = _insert_into(seen, nk, out_seen)
     keys = out_seen if grew else seen
-    if out_mask.shape[0] > 0:
-        legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
-                     new_peak, out_mask)
+    if out_mask.shape[0] > 0:  # the new board holds the game's most stones when it reached a new peak
+        _legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
+                      stones >= new_peak, out_mask)
         out_mask[hist.shape[1]] = True
     return OK, nk, grew, new_peak
 

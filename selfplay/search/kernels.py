@@ -22,7 +22,7 @@ from numba import njit
 
 from selfplay.search.root import RULE_GUMBEL, RULE_PUCT
 
-__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "attach_children", "new_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
+__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "new_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
            "gumbel_pick_rows"]
 
 _ONE = np.float32(1.0)
@@ -192,32 +192,13 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
             Q[node, a] = W[node, a] / N[node, a]
 
 
-@njit(cache=True, inline="always")
-def _attach(node, parent, action, P, N, W, visits, legal, child):
-    for a in range(P.shape[1]):
-        P[node, a] = 0.0
-        N[node, a] = 0.0
-        W[node, a] = 0.0
-        legal[node, a] = False
-        child[node, a] = -1
-    visits[node] = 0.0
-    child[parent, action] = node
-
-
-@njit(cache=True)
-def attach_children(created, parents, actions, P, N, W, visits, legal, child):
-    """Make node ``created[j]`` the child of ``parents[j]`` through ``actions[j]``, its rows
-    cleared (no priors, visits, values, children or legal moves yet)."""
-    for j in range(created.size):
-        _attach(created[j], parents[j], actions[j], P, N, W, visits, legal, child)
-
-
 @njit(cache=True)
 def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, P, N, W,
                  visits, legal, child, new, parents, actions, slots, created):
     """The paths ``lo:hi`` that stopped at an edge with no child, shallowest first (ties in path
     order), each given its child: the next free node of its slot's region (``count`` grows),
-    attached as :func:`attach_children` does and recorded as the path's leaf. Writes the paths,
+    its rows cleared (no priors, visits, values, children or legal moves yet), linked under its
+    parent and recorded as the path's leaf. Writes the paths,
     the parents, actions, slots and new nodes into the first entries of ``new``, ``parents``,
     ``actions``, ``slots`` and ``created``; returns how many."""
     k = 0
@@ -241,7 +222,14 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
         slots[i] = s
         created[i] = node
         path_leaf[j] = node
-        _attach(node, edge_node[e], edge_act[e], P, N, W, visits, legal, child)
+        for a in range(P.shape[1]):
+            P[node, a] = 0.0
+            N[node, a] = 0.0
+            W[node, a] = 0.0
+            legal[node, a] = False
+            child[node, a] = -1
+        visits[node] = 0.0
+        child[edge_node[e], edge_act[e]] = node
     return k
 
 
