@@ -40,8 +40,7 @@ class OpenVinoCompiled:
 
         self.precision = precision
         core = ov.Core()
-        onnx_bytes = export_onnx_bytes(net)
-        model = core.read_model(model=onnx_bytes)
+        model = core.read_model(model=export_onnx_bytes(net))
         config = {
             "INFERENCE_NUM_THREADS": int(threads),
             "INFERENCE_PRECISION_HINT": "bf16" if precision == "bfloat16" else "f32",
@@ -54,7 +53,7 @@ class OpenVinoCompiled:
         self._tensor = ov.Tensor  # type: ignore[attr-defined]
         self.steady_batch = int(batch) if batch is not None and batch > 1 else 0
         if self.steady_batch:
-            fixed = core.read_model(model=onnx_bytes)
+            fixed = model.clone()  # the same graph, given a fixed input shape
             shape = list(fixed.inputs[0].get_partial_shape().get_min_shape())
             fixed.reshape([self.steady_batch, *shape[1:]])
             self.steady_request = core.compile_model(fixed, "CPU", config).create_infer_request()
