@@ -234,9 +234,6 @@ class SelfPlayWorker:
         """One search round: every game in flight runs its next simulation(s), one batched
         evaluation; returns the slots whose move was made in it (finished games wait in
         :meth:`step`'s next answer)."""
-        return self._round()
-
-    def _round(self) -> list[int]:
         done = self._tree.run_round(self.evaluator)
         t0 = time.perf_counter()
         for s in done:
@@ -250,7 +247,7 @@ class SelfPlayWorker:
         t0 = time.perf_counter()
         waiting = {s for s, g in enumerate(self._games) if g is not None}
         while waiting:
-            for s in self._round():
+            for s in self.play_round():
                 waiting.discard(s)
         self.busy_seconds += time.perf_counter() - t0
         out, self._ready = self._ready, []
@@ -260,7 +257,7 @@ class SelfPlayWorker:
         """The next ``n`` finished games (games finished beyond ``n`` are kept for the next call)."""
         t0 = time.perf_counter()
         while len(self._ready) < n and self.games_in_flight:
-            self._round()
+            self.play_round()
         self.busy_seconds += time.perf_counter() - t0
         out, self._ready = self._ready[:n], self._ready[n:]
         return out
