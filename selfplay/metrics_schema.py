@@ -166,7 +166,8 @@ SNAPSHOT_SERVER = Component("snapshot_server", "`snapshots`",
 
 RUN = Component("run", "`driver` on the Ray path, `local` in-process",
                 "the run itself: start, heartbeat, stop. A run whose last run line is not a stop and whose "
-                "newest heartbeat is older than 30 s has crashed", (
+                "newest heartbeat is older than 30 s has crashed (at once, read on the driver's host, when "
+                "the start line's process no longer runs)", (
     _f("event", "str", "-", "`start`, `heartbeat` (at least every 10 s while running) or `stop`", True,
        choices=("start", "heartbeat", "stop")),
     _f("pid", "int", "-", "start: process id of the driver"),

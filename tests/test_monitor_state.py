@@ -119,6 +119,28 @@ def test_state_boundary_is_thirty_seconds_of_silence(run: Path) -> None:
     assert mon.summary(wall_now=t0 + 10 + STALE_SECONDS + 1)["state"] == "crashed"
 
 
+def test_a_killed_driver_on_this_host_reads_as_crashed_without_waiting_for_silence(run: Path) -> None:
+    """A start line naming this host and a process that has exited: crashed at once, though the
+    run wrote 2 s ago; the same lines naming a live process (this one) or another host: running
+    until the silence rule decides."""
+    import socket
+
+    gone = subprocess.Popen([sys.executable, "-c", "pass"])
+    gone.wait()
+    t0 = time.time() - 12
+    rows = base_rows(t0)
+    rows[0] = run_line(t0, "start", pid=gone.pid, host=socket.gethostname(), mode="ray")
+    write_lines(run, rows)
+    s = compute_summary(run)
+    assert s["state"] == "crashed" and s["stopped_at"] == pytest.approx(t0 + 10)
+    for pid, host in ((os.getpid(), socket.gethostname()), (gone.pid, "another-host")):
+        other = run.parent / f"run-{pid}-{host}"
+        RunDir.create(other)
+        rows[0] = run_line(t0, "start", pid=pid, host=host, mode="ray")
+        write_lines(other, rows)
+        assert compute_summary(other)["state"] == "running"
+
+
 def test_a_resumed_run_is_running_again_after_its_stop(run: Path) -> None:
     t0 = time.time() - 100
     write_lines(run, base_rows(t0) + [run_line(t0 + 20, "stop", stop_reason="interrupted"),

@@ -12,7 +12,9 @@ The state follows from the newest of these lines:
 
 - a stop line that is the last run event → **stopped**, with its reason;
 - otherwise, when the newest heartbeat (or any line the run wrote) is older than
-  :data:`STALE_SECONDS` by the reader's clock → **crashed** (nothing said goodbye);
+  :data:`STALE_SECONDS` by the reader's clock → **crashed** (nothing said goodbye); at once,
+  without waiting for the silence, when the newest start line names this host and its process
+  no longer runs (a killed driver read from its own machine);
 - otherwise **running**.
 
 A run written before these lines existed has no run lines: it is *running* while it writes,
@@ -22,8 +24,11 @@ says which rule decided.
 
 from __future__ import annotations
 
+import socket
 from dataclasses import dataclass, field
 from typing import Any
+
+from selfplay.rundir import pid_alive
 
 #: a run silent for longer than this (by the reader's clock) is not running; the driver's
 #: heartbeat comes at least every 10 s
@@ -80,8 +85,16 @@ def run_state(events: RunEvents, last_write: float | None, wall_now: float) -> d
            "basis": "run lines" if events.seen else "freshness", "mode": mode}
     if events.seen and events.last_event == "stop":
         out.update(state=STOPPED, stop_reason=events.stop_reason, stopped_at=events.last_event_t)
-    elif silent > STALE_SECONDS:
+    elif silent > STALE_SECONDS or (events.seen and _driver_gone(events)):
         # with run lines and no stop: nobody said goodbye → crashed. Without run lines (a run
         # from before they existed) silence is all we know: call it stopped, reason unknown.
         out.update(state=CRASHED if events.seen else STOPPED, stopped_at=newest)
     return out
+
+
+def _driver_gone(events: RunEvents) -> bool:
+    """True when the newest start line names this host and a process that no longer runs."""
+    start = events.starts[-1] if events.starts else {}
+    pid = start.get("pid")
+    return (start.get("host") == socket.gethostname() and isinstance(pid, int) and not isinstance(pid, bool)
+            and not pid_alive(pid))
