@@ -24,7 +24,8 @@ def _same(got, ref) -> None:
 
 @pytest.mark.parametrize("options", [{"size": 9}, {"size": 5, "max_moves": 30},
                                      {"size": 7, "superko": False, "allow_suicide": True},
-                                     {"size": 4, "tiny": True, "max_moves": 80}])
+                                     {"size": 4, "tiny": True, "max_moves": 80},
+                                     {"size": 4, "tiny": True, "allow_suicide": True, "max_moves": 80}])
 def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
     """Trees of 6 games grown one random edge per game per call, re-rooted at a root child every
     few calls (as a move is played); each child row, loaded, equals play_with_mask's state and
@@ -70,7 +71,8 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
             slot = r // cap
             ref, mask = game.play_with_mask(trees[slot][p][0], a)
             _same(pool.load(r), ref)
-            assert np.array_equal(legal[r], mask)
+            # and the mask made from the whole key list (the rows look keys up where they lie)
+            assert np.array_equal(legal[r], mask) and np.array_equal(mask, game.legal_mask(ref))
             assert mover == game.to_play(ref) and end == game.is_terminal(ref)
             trees[slot][r] = (ref, p, [])
             trees[slot][p][2].append(r)

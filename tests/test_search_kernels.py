@@ -121,6 +121,8 @@ def test_reuse_keeps_the_chosen_subtree_exactly(algorithm):
 @pytest.mark.parametrize("name,options", [("go", {"size": 5, "tiny": True, "history": 3}),
                                           ("go", {"size": 9, "max_moves": 30}),
                                           ("go", {"size": 7, "superko": False, "allow_suicide": True}),
+                                          # superko must refuse a lone stone's suicide (the board again)
+                                          ("go", {"size": 4, "tiny": True, "allow_suicide": True, "max_moves": 120}),
                                           ("fourinrow", {}), ("tictactoe", {})])
 def test_play_with_mask_and_compact_histories_equal_the_one_state_methods(name, options):
     game = make_game(name, **options)

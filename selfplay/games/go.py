@@ -313,7 +313,7 @@ class GoGame(Game[GoState]):
         if not with_mask:
             mask = self._no_mask
         st, key, grew, peak = K.play_history(
-            state.history, state.groups, state.seen, state.key, state.prev_key, state.player + 1, a,
+            state.history, state.groups, state.seen, state.seen[:0], state.key, state.prev_key, state.player + 1, a,
             self.allow_suicide, self.superko, self._nbr, self._zob, self._nwords, state.peak, history, groups, seen,
             mask)
         if st != K.OK:

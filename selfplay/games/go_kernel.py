@@ -301,9 +301,21 @@ def move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords):
 
 
 @njit(cache=True, inline="always")
-def _repeats(nk, seen, nseen, prev_key, superko):
+def _seen_in(seen, extra, key):
+    """Whether ``key`` is in the sorted ``seen`` or in the short unsorted ``extra`` (the keys of
+    a search path below its root, :mod:`selfplay.games.go_pool`; empty elsewhere)."""
+    if _contains(seen, seen.shape[0], key):
+        return True
+    for i in range(extra.shape[0]):
+        if extra[i] == key:
+            return True
+    return False
+
+
+@njit(cache=True, inline="always")
+def _repeats(nk, seen, extra, prev_key, superko):
     if superko:
-        return _contains(seen, nseen, nk)
+        return _seen_in(seen, extra, nk)
     return nk == prev_key
 
 
@@ -316,7 +328,7 @@ def legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko,
     many, a move that captures nothing makes a board with more stones than any earlier one,
     which cannot repeat: the superko lookup is skipped for it (``tests/test_go_rules.py``
     checks the masks against lookups at every point)."""
-    _legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob, nwords,
+    _legal_points(board, grp, seen, seen[:0], key, prev_key, color, allow_suicide, superko, nbr, zob, nwords,
                   _stone_count(board) >= peak, out)
 
 
@@ -330,14 +342,15 @@ def _stone_count(board):
 
 
 @njit(cache=True)
-def _legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko, nbr, zob, nwords, fresh,
+def _legal_points(board, grp, seen, extra, key, prev_key, color, allow_suicide, superko, nbr, zob, nwords, fresh,
                   out):
     """:func:`legal_points` for a board that holds the game's most stones (``fresh``) or not.
+    Earlier boards: the sorted ``seen``, the unsorted ``extra`` and the board itself (``key``: a
+    caller may leave it out of both).
 
     The per-point test is :func:`move_result` written out in the loop: numba's inlined version
     ran several times slower here. ``tests/test_go_rules.py`` checks that both agree."""
     n = board.shape[0]
-    nseen = seen.shape[0]
     for p in range(n):
         if board[p] != 0:
             out[p] = False
@@ -374,14 +387,14 @@ def _legal_points(board, grp, seen, key, prev_key, color, allow_suicide, superko
             ok = True
         if ok and not (fresh and has_lib and c0 < 0):
             if superko:
-                ok = not _contains(seen, nseen, nk)
+                ok = nk != key and not _seen_in(seen, extra, nk)
             elif nk == prev_key:
                 ok = False
         out[p] = ok
 
 
 @njit(cache=True)
-def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
+def play_history(hist, grp, seen, extra, key, prev_key, color, p, allow_suicide, superko, nbr, zob,
                  nwords, peak, out_hist, out_grp, out_seen, out_mask):
     """Play a ``color`` stone at ``p`` on a position kept with its history, into arrays the
     caller allocated (allocating them here and handing them back to Python cost more than the
@@ -390,11 +403,13 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
     ``hist`` int8 (H, N): the current board first, then the boards before it (zero rows before
     the game's start). ``out_hist`` (H, N) receives the new board first and the older boards
     shifted down, ``out_grp`` the new group table, ``out_seen`` (len(seen) + 1,) the sorted keys
-    with the new one; with a non-empty ``out_mask`` (N + 1,) the legal mask of the new position
-    for the opponent (pass legal). ``peak``: the most stones any board of the game so far held
-    (see :func:`legal_points`). Returns (status, key, keys_grew, peak after the move):
-    ``keys_grew`` False when the new key was already in ``seen`` (then ``out_seen`` is unused:
-    the set is ``seen``). On a non-OK status the outputs mean nothing."""
+    with the new one (an empty ``out_seen``: not built); with a non-empty ``out_mask`` (N + 1,)
+    the legal mask of the new position for the opponent (pass legal). The game's earlier boards
+    are the keys in ``seen`` and ``extra`` (see :func:`_seen_in`). ``peak``: the most stones any
+    board of the game so far held (see :func:`legal_points`). Returns (status, key, keys_grew,
+    peak after the move): ``keys_grew`` False when the new key was already in ``seen`` or no
+    ``out_seen`` was given (then the set is ``seen``). On a non-OK status the outputs mean
+    nothing."""
     if hist[0, p] != 0:
         return OCCUPIED, key, False, peak
     out_hist[1:] = hist[:-1]
@@ -404,14 +419,15 @@ def play_history(hist, grp, seen, key, prev_key, color, p, allow_suicide, superk
     st, nk, _ = play_inplace(board, out_grp, key, color, p, allow_suicide, nbr, zob, nwords)
     if st != OK:
         return st, key, False, peak
-    if _repeats(nk, seen, seen.shape[0], prev_key, superko):
+    if _repeats(nk, seen, extra, prev_key, superko):
         return REPEAT, key, False, peak
     stones = _stone_count(board)
     new_peak = stones if stones > peak else peak
-    grew = _insert_into(seen, nk, out_seen)
-    keys = out_seen if grew else seen
-    if out_mask.shape[0] > 0:  # the new board holds the game's most stones when it reached a new peak
-        _legal_points(board, out_grp, keys, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
+    grew = out_seen.shape[0] > 0 and _insert_into(seen, nk, out_seen)
+    if out_mask.shape[0] > 0:
+        # the new board's own key is nk (looked at by _legal_points, so the earlier keys do) and
+        # it holds the game's most stones when it reached a new peak
+        _legal_points(board, out_grp, seen, extra, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
                       stones >= new_peak, out_mask)
         out_mask[hist.shape[1]] = True
     return OK, nk, grew, new_peak
@@ -600,7 +616,7 @@ def random_playouts(num_games, seed, n, nbr, zob, nwords, allow_suicide, superko
                 if _fills_own_eye(board, grp, p, color, nbr, nwords):
                     continue
                 st, nk = move_result(board, grp, p, color, key, allow_suicide, nbr, zob, nwords)
-                if st != OK or _repeats(nk, seen, nseen, prev_key, superko):
+                if st != OK or _repeats(nk, seen[:nseen], seen[:0], prev_key, superko):
                     continue
                 chosen = p
                 chosen_key = nk

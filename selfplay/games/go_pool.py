@@ -15,8 +15,9 @@ the node's parent (-1 at a root).
 
 Positional superko needs every board key of the game so far. A node's keys are its root's keys
 (``root_seen`` per game, sorted) plus the keys of the node and of its ancestors below the root,
-gathered by walking ``parent`` when a node is expanded (a few steps: the tree is shallow), so no
-row holds a copy of the game's key list.
+found by walking ``parent`` (a few steps: the tree is shallow). No row holds a copy of the game's
+key list, and expanding a node copies none: the root's keys are searched where they lie and the
+path's few keys are scanned.
 
 Results are those of :meth:`selfplay.games.go.GoGame.play_with_mask` move for move
 (``tests/test_go_pool.py``).
@@ -63,16 +64,20 @@ def gather_seen(row, key, parent, root_seen, root_seen_len, capacity, out):
 
 @njit(cache=True)
 def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, root_seen, root_seen_len, capacity,
-                parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, merged, spare,
+                parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, path_keys,
                 status, ended):
     """Play ``actions[i]`` from the position in row ``parents[i]`` into row ``rows[i]`` (which
     becomes its child) for every ``i``; the child's legal mask goes to ``legal[rows[i]]`` (all
     False when the child ends the game: a second pass or the move cap) and ``ended[i]`` says
     so. ``status[i]``: :data:`~selfplay.games.go_kernel.OK` or why the move is illegal (as
-    :func:`selfplay.games.go_kernel.play_batch`). ``merged`` and ``spare`` are scratch key
-    buffers of at least the longest game's key count plus the tree's depth, plus one."""
+    :func:`selfplay.games.go_kernel.play_batch`).
+
+    The earlier boards of a child's game are its root's sorted keys, looked up where they lie,
+    and the keys of the parent and its ancestors below the root, gathered into the scratch
+    buffer ``path_keys`` (at least the tree's depth long): nothing is copied per child."""
     n = nbr.shape[0]
     no_mask = np.zeros(0, dtype=np.bool_)
+    no_keys = path_keys[:0]
     for i in range(rows.size):
         p = parents[i]
         c = rows[i]
@@ -84,8 +89,15 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, r
         if a < 0 or a > n:
             status[i] = K.OFF_BOARD
             continue
-        m = gather_seen(p, key, parent, root_seen, root_seen_len, capacity, merged)
-        seen = merged[:m]
+        slot = p // capacity
+        seen = root_seen[slot, :root_seen_len[slot]]
+        depth = 0
+        q = p
+        while parent[q] >= 0:
+            path_keys[depth] = key[q]
+            depth += 1
+            q = parent[q]
+        extra = path_keys[:depth]
         parent[c] = p
         player[c] = 1 - player[p]
         moves[c] = moves[p] + 1
@@ -103,14 +115,15 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, r
                 legal[c, :] = False
                 ended[i] = True
             else:
-                K.legal_points(hist[c, 0], grp[c], seen, key[c], key[c], player[c] + 1, allow_suicide, superko,
-                               nbr, zob, nwords, peak[c], legal[c])
+                board = hist[c, 0]
+                K._legal_points(board, grp[c], seen, extra, key[c], key[c], player[c] + 1, allow_suicide, superko,
+                                nbr, zob, nwords, K._stone_count(board) >= peak[c], legal[c])
                 legal[c, n] = True
             continue
         mask = no_mask if ends else legal[c]
-        st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, key[p], prev_key[p], player[p] + 1, a,
+        st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, extra, key[p], prev_key[p], player[p] + 1, a,
                                              allow_suicide, superko, nbr, zob, nwords, peak[p], hist[c], grp[c],
-                                             spare[:m + 1], mask)
+                                             no_keys, mask)
         status[i] = st
         key[c] = nk
         peak[c] = new_peak
@@ -177,9 +190,8 @@ class GoStatePool:
         return game.history * n + n * game._initial.groups.shape[1] * 8 + 9 * 8
 
     def _alloc_scratch(self) -> None:
-        room = self._seen_room + self.capacity + 1
-        self._merged = np.empty(room, dtype=np.int64)
-        self._spare = np.empty(room, dtype=np.int64)
+        self._merged = np.empty(self._seen_room + self.capacity + 1, dtype=np.int64)
+        self._path_keys = np.empty(self.capacity + 1, dtype=np.int64)
 
     # ---- roots -------------------------------------------------------------------------------
     def store_root(self, slot: int, row: int, state: GoState) -> None:
@@ -231,8 +243,7 @@ class GoStatePool:
         expand_rows(self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves, self.peak,
                     self.parent,
                     self.root_seen, self.root_seen_len, self.capacity, parents, actions, rows, g.allow_suicide,
-                    g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._merged, self._spare, status,
-                    ended)
+                    g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._path_keys, status, ended)
         if status.any():
             i = int(np.flatnonzero(status)[0])
             g.play(self.load(int(parents[i])), int(actions[i]))  # raises the rules' own message
