@@ -425,8 +425,8 @@ def play_history(hist, grp, seen, extra, key, prev_key, color, p, allow_suicide,
     new_peak = stones if stones > peak else peak
     grew = out_seen.shape[0] > 0 and _insert_into(seen, nk, out_seen)
     if out_mask.shape[0] > 0:
-        # the new board's own key is nk (looked at by _legal_points, so the earlier keys do) and
-        # it holds the game's most stones when it reached a new peak
+        # seen and extra hold the earlier boards, _legal_points compares the new one's key (nk)
+        # itself; the new board holds the game's most stones when it reached a new peak
         _legal_points(board, out_grp, seen, extra, nk, key, 3 - color, allow_suicide, superko, nbr, zob, nwords,
                       stones >= new_peak, out_mask)
         out_mask[hist.shape[1]] = True

@@ -36,6 +36,19 @@ if TYPE_CHECKING:
     from selfplay.games.go import GoGame, GoState
 
 
+#: columns of a row's scalars (``meta``), one cache line per row
+KEY, PREV_KEY, PLAYER, PASSES, MOVES, PEAK, PARENT = range(7)
+META_COLUMNS = 8
+
+
+def _line_aligned_rows(rows: int) -> np.ndarray:
+    """int64 (rows, META_COLUMNS) zeros starting on a 64-byte boundary, so that each row's
+    scalars share one cache line (a node costs one memory access for them, not seven)."""
+    raw = np.zeros(rows * META_COLUMNS + 8, dtype=np.int64)
+    skip = (-raw.ctypes.data % 64) // 8
+    return raw[skip:skip + rows * META_COLUMNS].reshape(rows, META_COLUMNS)
+
+
 @njit(cache=True, inline="always")
 def _add_key(keys, m, key):
     """Insert ``key`` into the sorted ``keys[:m]`` in place (nothing when present); new length."""
@@ -49,22 +62,21 @@ def _add_key(keys, m, key):
 
 
 @njit(cache=True)
-def gather_seen(row, key, parent, root_seen, root_seen_len, capacity, out):
+def gather_seen(row, meta, root_seen, root_seen_len, capacity, out):
     """The sorted board keys of the game up to the node in ``row`` into ``out``: its root's keys
     and the keys of the node and its ancestors below the root. Returns their number."""
     slot = row // capacity
     m = root_seen_len[slot]
     out[:m] = root_seen[slot, :m]
     q = row
-    while parent[q] >= 0:
-        m = _add_key(out, m, key[q])
-        q = parent[q]
+    while meta[q, PARENT] >= 0:
+        m = _add_key(out, m, meta[q, KEY])
+        q = meta[q, PARENT]
     return m
 
 
 @njit(cache=True)
-def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, root_seen, root_seen_len, capacity,
-                parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, path_keys,
+def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, path_keys,
                 status, ended):
     """Play ``actions[i]`` from the position in row ``parents[i]`` into row ``rows[i]`` (which
     becomes its child) for every ``i``; the child's legal mask goes to ``legal[rows[i]]`` (all
@@ -83,7 +95,8 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, r
         c = rows[i]
         a = actions[i]
         ended[i] = False
-        if passes[p] >= 2 or moves[p] >= max_moves:
+        pm = meta[p]
+        if pm[PASSES] >= 2 or pm[MOVES] >= max_moves:
             status[i] = K.OVER
             continue
         if a < 0 or a > n:
@@ -93,48 +106,49 @@ def expand_rows(hist, grp, key, prev_key, player, passes, moves, peak, parent, r
         seen = root_seen[slot, :root_seen_len[slot]]
         depth = 0
         q = p
-        while parent[q] >= 0:
-            path_keys[depth] = key[q]
+        while meta[q, PARENT] >= 0:
+            path_keys[depth] = meta[q, KEY]
             depth += 1
-            q = parent[q]
+            q = meta[q, PARENT]
         extra = path_keys[:depth]
-        parent[c] = p
-        player[c] = 1 - player[p]
-        moves[c] = moves[p] + 1
-        prev_key[c] = key[p]
-        ends = moves[c] >= max_moves
+        cm = meta[c]
+        cm[PARENT] = p
+        cm[PLAYER] = 1 - pm[PLAYER]
+        cm[MOVES] = pm[MOVES] + 1
+        cm[PREV_KEY] = pm[KEY]
+        ends = cm[MOVES] >= max_moves
         if a == n:  # pass: the same board again, the same groups and keys
             hist[c, 1:] = hist[p, :-1]
             hist[c, 0] = hist[p, 0]
             grp[c] = grp[p]
-            key[c] = key[p]
-            peak[c] = peak[p]
-            passes[c] = passes[p] + 1
+            cm[KEY] = pm[KEY]
+            cm[PEAK] = pm[PEAK]
+            cm[PASSES] = pm[PASSES] + 1
             status[i] = K.OK
-            if passes[c] >= 2 or ends:
+            if cm[PASSES] >= 2 or ends:
                 legal[c, :] = False
                 ended[i] = True
             else:
                 board = hist[c, 0]
-                K._legal_points(board, grp[c], seen, extra, key[c], key[c], player[c] + 1, allow_suicide, superko,
-                                nbr, zob, nwords, K._stone_count(board) >= peak[c], legal[c])
+                K._legal_points(board, grp[c], seen, extra, cm[KEY], cm[KEY], cm[PLAYER] + 1, allow_suicide, superko,
+                                nbr, zob, nwords, K._stone_count(board) >= cm[PEAK], legal[c])
                 legal[c, n] = True
             continue
         mask = no_mask if ends else legal[c]
-        st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, extra, key[p], prev_key[p], player[p] + 1, a,
-                                             allow_suicide, superko, nbr, zob, nwords, peak[p], hist[c], grp[c],
+        st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, extra, pm[KEY], pm[PREV_KEY], pm[PLAYER] + 1, a,
+                                             allow_suicide, superko, nbr, zob, nwords, pm[PEAK], hist[c], grp[c],
                                              no_keys, mask)
         status[i] = st
-        key[c] = nk
-        peak[c] = new_peak
-        passes[c] = 0
+        cm[KEY] = nk
+        cm[PEAK] = new_peak
+        cm[PASSES] = 0
         if ends:
             legal[c, :] = False
             ended[i] = True
 
 
 @njit(cache=True)
-def move_rows(keep, base, hist, grp, key, prev_key, player, passes, moves, peak, parent):
+def move_rows(keep, base, hist, grp, meta):
     """Copy rows ``keep`` (ascending, the subtree's top first) to rows ``base, base + 1, ...``
     (a row is never overwritten before it is read: ``keep[i] >= base + i``), parent rows
     renumbered the same way; the top becomes a root (parent -1)."""
@@ -145,17 +159,12 @@ def move_rows(keep, base, hist, grp, key, prev_key, player, passes, moves, peak,
     for i in range(total):
         src = keep[i]
         dst = base + i
-        parent[dst] = -1 if i == 0 else remap[parent[src] - base]
-        if src == dst:
-            continue
-        hist[dst] = hist[src]
-        grp[dst] = grp[src]
-        key[dst] = key[src]
-        prev_key[dst] = prev_key[src]
-        player[dst] = player[src]
-        passes[dst] = passes[src]
-        moves[dst] = moves[src]
-        peak[dst] = peak[src]
+        new_parent = -1 if i == 0 else remap[meta[src, PARENT] - base]
+        if src != dst:
+            hist[dst] = hist[src]
+            grp[dst] = grp[src]
+            meta[dst] = meta[src]
+        meta[dst, PARENT] = new_parent
 
 
 class GoStatePool:
@@ -171,13 +180,8 @@ class GoStatePool:
         # rows are always written before they are read: np.empty leaves unused pages uncommitted
         self.hist = np.empty((rows, h, n), dtype=np.int8)
         self.grp = np.empty((rows, n, group_cols), dtype=np.int64)
-        self.key = np.zeros(rows, dtype=np.int64)
-        self.prev_key = np.zeros(rows, dtype=np.int64)
-        self.player = np.zeros(rows, dtype=np.int64)
-        self.passes = np.zeros(rows, dtype=np.int64)
-        self.moves = np.zeros(rows, dtype=np.int64)
-        self.peak = np.zeros(rows, dtype=np.int64)
-        self.parent = np.full(rows, -1, dtype=np.int64)
+        self.meta = _line_aligned_rows(rows)
+        self.meta[:, PARENT] = -1
         self._seen_room = game.max_moves + 2
         self.root_seen = np.zeros((slots, self._seen_room), dtype=np.int64)
         self.root_seen_len = np.zeros(slots, dtype=np.int64)
@@ -187,7 +191,7 @@ class GoStatePool:
     def bytes_per_row(game: GoGame) -> int:
         """Memory one row takes (the per-game key lists not counted)."""
         n = game.size * game.size
-        return game.history * n + n * game._initial.groups.shape[1] * 8 + 9 * 8
+        return game.history * n + n * game._initial.groups.shape[1] * 8 + META_COLUMNS * 8
 
     def _alloc_scratch(self) -> None:
         self._merged = np.empty(self._seen_room + self.capacity + 1, dtype=np.int64)
@@ -204,13 +208,9 @@ class GoStatePool:
             self._alloc_scratch()
         self.hist[row] = state.history
         self.grp[row] = state.groups
-        self.key[row] = state.key
-        self.prev_key[row] = state.prev_key
-        self.player[row] = state.player
-        self.passes[row] = state.passes
-        self.moves[row] = state.moves
-        self.peak[row] = state.peak
-        self.parent[row] = -1
+        m = self.meta[row]
+        m[KEY], m[PREV_KEY], m[PLAYER], m[PASSES] = state.key, state.prev_key, state.player, state.passes
+        m[MOVES], m[PEAK], m[PARENT] = state.moves, state.peak, -1
         self.root_seen[slot, :state.seen.shape[0]] = state.seen
         self.root_seen_len[slot] = state.seen.shape[0]
 
@@ -219,13 +219,12 @@ class GoStatePool:
         rows ``base, base + 1, ...``: its top the new root (its keys join the game's), parent
         rows renumbered like the tree's child ids."""
         top = int(keep[0])
-        m = gather_seen(top, self.key, self.parent, self.root_seen, self.root_seen_len, self.capacity, self._merged)
+        m = gather_seen(top, self.meta, self.root_seen, self.root_seen_len, self.capacity, self._merged)
         if m > self._seen_room:
             raise ValueError(f"go game history of {m} positions exceeds the search's room of {self._seen_room}")
         self.root_seen[slot, :m] = self._merged[:m]
         self.root_seen_len[slot] = m
-        move_rows(np.ascontiguousarray(keep, dtype=np.int64), base, self.hist, self.grp, self.key, self.prev_key,
-                  self.player, self.passes, self.moves, self.peak, self.parent)
+        move_rows(np.ascontiguousarray(keep, dtype=np.int64), base, self.hist, self.grp, self.meta)
 
     # ---- expansion -----------------------------------------------------------------------------
     def expand(self, parents: np.ndarray, actions: np.ndarray, rows: np.ndarray,
@@ -240,25 +239,24 @@ class GoStatePool:
         parents = np.ascontiguousarray(parents, dtype=np.int64)
         actions = np.ascontiguousarray(actions, dtype=np.int64)
         rows = np.ascontiguousarray(rows, dtype=np.int64)
-        expand_rows(self.hist, self.grp, self.key, self.prev_key, self.player, self.passes, self.moves, self.peak,
-                    self.parent,
-                    self.root_seen, self.root_seen_len, self.capacity, parents, actions, rows, g.allow_suicide,
+        expand_rows(self.hist, self.grp, self.meta, self.root_seen, self.root_seen_len, self.capacity, parents,
+                    actions, rows, g.allow_suicide,
                     g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._path_keys, status, ended)
         if status.any():
             i = int(np.flatnonzero(status)[0])
             g.play(self.load(int(parents[i])), int(actions[i]))  # raises the rules' own message
             raise AssertionError(f"go pool: move {int(actions[i])} refused with status {int(status[i])}")  # pragma: no cover
-        return self.player[rows].astype(np.int8), ended
+        return self.meta[rows, PLAYER].astype(np.int8), ended
 
     # ---- reading -------------------------------------------------------------------------------
     def load(self, row: int) -> GoState:
         """The position in ``row`` as a GoState of its own (arrays copied)."""
         from selfplay.games.go import GoState
 
-        m = gather_seen(row, self.key, self.parent, self.root_seen, self.root_seen_len, self.capacity, self._merged)
-        return GoState(self.hist[row].copy(), self.grp[row].copy(), self._merged[:m].copy(), int(self.key[row]),
-                       int(self.prev_key[row]), int(self.player[row]), int(self.passes[row]), int(self.moves[row]),
-                       int(self.peak[row]))
+        m = gather_seen(row, self.meta, self.root_seen, self.root_seen_len, self.capacity, self._merged)
+        key, prev_key, player, passes, moves, peak = (int(v) for v in self.meta[row, :PARENT])
+        return GoState(self.hist[row].copy(), self.grp[row].copy(), self._merged[:m].copy(), key, prev_key, player,
+                       passes, moves, peak)
 
     def histories(self, rows: np.ndarray) -> np.ndarray:
         """int8 (k, H, size, size): the network's compact input boards of ``rows``."""
