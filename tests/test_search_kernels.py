@@ -227,13 +227,13 @@ def test_move_choice_by_temperature_draws_what_numpy_choice_draws() -> None:
     sampler) does, draw for draw, leaving the generator in the same state."""
     from selfplay.search.puct import choose_by_visits
 
-    for seed in range(400):
+    for seed in range(500):
         r = np.random.default_rng(seed)
-        visits = r.integers(0, 40, 82).astype(np.float32)
+        visits = r.integers(0, 40 if seed % 2 else 5000, 82).astype(np.float32)
         visits[r.random(82) < 0.6] = 0
         visits[int(r.integers(82))] += 1
-        t = (1.0, 0.5, 2.0, 0.25)[seed % 4]
-        w = np.where(visits > 0, visits.astype(np.float64) ** (1.0 / t), 0.0)
+        t = (1.0, 0.5, 2.0, 0.25, 0.01)[seed % 5]  # 5000 ** 100 would overflow: scaled by the largest count
+        w = np.where(visits > 0, (visits.astype(np.float64) / visits.max()) ** (1.0 / t), 0.0)
         mine, ref = np.random.default_rng([seed, 1]), np.random.default_rng([seed, 1])
         assert choose_by_visits(visits, t, mine) == int(ref.choice(82, p=w / w.sum()))
         assert mine.random() == ref.random()
