@@ -34,6 +34,7 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
     slots, cap = 6, 24
     pool = game.state_pool(slots, cap)
     legal = np.zeros((slots * cap, game.num_actions), dtype=bool)
+    to_play = np.full(slots * cap, -1, dtype=np.int8)
     rng = np.random.default_rng(11)
     trees: list[dict[int, tuple]] = []  # per slot: row -> (reference state, parent row, children rows)
 
@@ -66,7 +67,8 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
             parents.append(p)
             actions.append(int(rng.choice(choices)))
             rows.append(base + len(tree))
-        movers, ended = pool.expand(np.array(parents), np.array(actions), np.array(rows), legal)
+        ended = pool.expand(np.array(parents), np.array(actions), np.array(rows), legal, to_play)
+        movers = to_play[rows]
         for p, a, r, mover, end in zip(parents, actions, rows, movers, ended):
             slot = r // cap
             ref, mask = game.play_with_mask(trees[slot][p][0], a)
@@ -108,17 +110,18 @@ def test_pool_refuses_illegal_moves_with_the_rules_message() -> None:
     game = GoGame(size=5)
     pool = game.state_pool(1, 8)
     legal = np.zeros((8, game.num_actions), dtype=bool)
+    to_play = np.zeros(8, dtype=np.int8)
     s = game.play(game.initial_state(), 0)
     pool.store_root(0, 0, s)
     with pytest.raises(IllegalMoveError, match="occupied"):
-        pool.expand(np.array([0]), np.array([0]), np.array([1]), legal)
+        pool.expand(np.array([0]), np.array([0]), np.array([1]), legal, to_play)
     over = game.play(game.play(s, game.pass_action), game.pass_action)
     pool.store_root(0, 0, over)
     with pytest.raises(IllegalMoveError, match="game is over"):
-        pool.expand(np.array([0]), np.array([game.pass_action]), np.array([1]), legal)
+        pool.expand(np.array([0]), np.array([game.pass_action]), np.array([1]), legal, to_play)
     with pytest.raises(IllegalMoveError, match="off the 5x5 board"):
         pool.store_root(0, 0, s)
-        pool.expand(np.array([0]), np.array([99]), np.array([1]), legal)
+        pool.expand(np.array([0]), np.array([99]), np.array([1]), legal, to_play)
 
 
 class _NoPoolGo(GoGame):

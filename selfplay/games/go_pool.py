@@ -76,13 +76,14 @@ def gather_seen(row, meta, root_seen, root_seen_len, capacity, out):
 
 
 @njit(cache=True)
-def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, actions, rows, allow_suicide, superko, nbr, zob, nwords, max_moves, legal, path_keys,
-                status, ended):
+def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, actions, rows, allow_suicide,
+                superko, nbr, zob, nwords, max_moves, legal, to_play, path_keys, status, ended):
     """Play ``actions[i]`` from the position in row ``parents[i]`` into row ``rows[i]`` (which
     becomes its child) for every ``i``; the child's legal mask goes to ``legal[rows[i]]`` (all
     False when the child ends the game: a second pass or the move cap) and ``ended[i]`` says
-    so. ``status[i]``: :data:`~selfplay.games.go_kernel.OK` or why the move is illegal (as
-    :func:`selfplay.games.go_kernel.play_batch`).
+    so; the player to move there (0 Black) to ``to_play[rows[i]]``. ``status[i]``:
+    :data:`~selfplay.games.go_kernel.OK` or why the move is illegal. Returns how many were
+    illegal.
 
     The earlier boards of a child's game are its root's sorted keys, looked up where they lie,
     and the keys of the parent and its ancestors below the root, gathered into the scratch
@@ -90,6 +91,7 @@ def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, ac
     n = nbr.shape[0]
     no_mask = np.zeros(0, dtype=np.bool_)
     no_keys = path_keys[:0]
+    refused = 0
     for i in range(rows.size):
         p = parents[i]
         c = rows[i]
@@ -98,9 +100,11 @@ def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, ac
         pm = meta[p]
         if pm[PASSES] >= 2 or pm[MOVES] >= max_moves:
             status[i] = K.OVER
+            refused += 1
             continue
         if a < 0 or a > n:
             status[i] = K.OFF_BOARD
+            refused += 1
             continue
         slot = p // capacity
         seen = root_seen[slot, :root_seen_len[slot]]
@@ -114,6 +118,7 @@ def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, ac
         cm = meta[c]
         cm[PARENT] = p
         cm[PLAYER] = 1 - pm[PLAYER]
+        to_play[c] = cm[PLAYER]
         cm[MOVES] = pm[MOVES] + 1
         cm[PREV_KEY] = pm[KEY]
         ends = cm[MOVES] >= max_moves
@@ -139,12 +144,14 @@ def expand_rows(hist, grp, meta, root_seen, root_seen_len, capacity, parents, ac
                                              allow_suicide, superko, nbr, zob, nwords, pm[PEAK], hist[c], grp[c],
                                              no_keys, mask)
         status[i] = st
+        refused += st != K.OK
         cm[KEY] = nk
         cm[PEAK] = new_peak
         cm[PASSES] = 0
         if ends:
             legal[c, :] = False
             ended[i] = True
+    return refused
 
 
 @njit(cache=True)
@@ -196,6 +203,8 @@ class GoStatePool:
     def _alloc_scratch(self) -> None:
         self._merged = np.empty(self._seen_room + self.capacity + 1, dtype=np.int64)
         self._path_keys = np.empty(self.capacity + 1, dtype=np.int64)
+        self._status = np.empty(0, dtype=np.int64)
+        self._ended = np.empty(0, dtype=np.bool_)
 
     # ---- roots -------------------------------------------------------------------------------
     def store_root(self, slot: int, row: int, state: GoState) -> None:
@@ -227,26 +236,28 @@ class GoStatePool:
         move_rows(np.ascontiguousarray(keep, dtype=np.int64), base, self.hist, self.grp, self.meta)
 
     # ---- expansion -----------------------------------------------------------------------------
-    def expand(self, parents: np.ndarray, actions: np.ndarray, rows: np.ndarray,
-               legal: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def expand(self, parents: np.ndarray, actions: np.ndarray, rows: np.ndarray, legal: np.ndarray,
+               to_play: np.ndarray) -> np.ndarray:
         """Play each ``actions[i]`` from row ``parents[i]`` into row ``rows[i]``, the child's legal
-        mask into ``legal[rows[i]]``; returns the player to move at each child (int8) and whether
-        it ends the game (bool). An illegal move raises the rules' IllegalMoveError."""
+        mask into ``legal[rows[i]]`` and the player to move there into ``to_play[rows[i]]``
+        (int8, 0 Black); returns whether each child ends the game (bool, valid until the next
+        call). An illegal move raises the rules' IllegalMoveError."""
         g = self.game
         k = rows.size
-        status = np.empty(k, dtype=np.int64)
-        ended = np.empty(k, dtype=np.bool_)
+        if self._status.size < k:
+            self._status = np.empty(k, dtype=np.int64)
+            self._ended = np.empty(k, dtype=np.bool_)
+        status, ended = self._status[:k], self._ended[:k]
         parents = np.ascontiguousarray(parents, dtype=np.int64)
         actions = np.ascontiguousarray(actions, dtype=np.int64)
         rows = np.ascontiguousarray(rows, dtype=np.int64)
-        expand_rows(self.hist, self.grp, self.meta, self.root_seen, self.root_seen_len, self.capacity, parents,
-                    actions, rows, g.allow_suicide,
-                    g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal, self._path_keys, status, ended)
-        if status.any():
+        if expand_rows(self.hist, self.grp, self.meta, self.root_seen, self.root_seen_len, self.capacity, parents,
+                       actions, rows, g.allow_suicide, g.superko, g._nbr, g._zob, g._nwords, g.max_moves, legal,
+                       to_play, self._path_keys, status, ended):
             i = int(np.flatnonzero(status)[0])
             g.play(self.load(int(parents[i])), int(actions[i]))  # raises the rules' own message
             raise AssertionError(f"go pool: move {int(actions[i])} refused with status {int(status[i])}")  # pragma: no cover
-        return self.meta[rows, PLAYER].astype(np.int8), ended
+        return ended
 
     # ---- reading -------------------------------------------------------------------------------
     def load(self, row: int) -> GoState:

@@ -194,11 +194,12 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
 
 @njit(cache=True)
 def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, P, N, W,
-                 visits, legal, child, new, parents, actions, slots, created):
+                 visits, legal, child, terminal, pending, new, parents, actions, slots, created):
     """The paths ``lo:hi`` that stopped at an edge with no child, shallowest first (ties in path
     order), each given its child: the next free node of its slot's region (``count`` grows),
-    its rows cleared (no priors, visits, values, children or legal moves yet), linked under its
-    parent and recorded as the path's leaf. Writes the paths,
+    its rows cleared (no priors, visits, values, children or legal moves yet), not terminal and
+    waiting for evaluation (the caller marks those that end the game), linked under its parent
+    and recorded as the path's leaf. Writes the paths,
     the parents, actions, slots and new nodes into the first entries of ``new``, ``parents``,
     ``actions``, ``slots`` and ``created``; returns how many."""
     k = 0
@@ -229,6 +230,8 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
             legal[node, a] = False
             child[node, a] = -1
         visits[node] = 0.0
+        terminal[node] = False
+        pending[node] = True
         child[edge_node[e], edge_act[e]] = node
     return k
 

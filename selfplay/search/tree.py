@@ -104,16 +104,48 @@ class SearchTimes:
 
 @dataclass
 class _Round:
-    """Work list of one round: the nodes waiting for evaluation (with their slots) and the
-    paths walked, in the edge buffers up to ``edges``; ``groups`` marks where each descent's
-    paths start (one descent per leaf per game)."""
+    """Work list of one round: the nodes waiting for evaluation and their slots (int64 arrays,
+    one pair per step that found some) and the paths walked, in the edge buffers up to
+    ``edges``; ``groups`` marks where each descent's paths start (one descent per leaf per game)."""
 
-    eval_nodes: list[int] = field(default_factory=list)
-    eval_slots: list[int] = field(default_factory=list)
+    node_parts: list[np.ndarray] = field(default_factory=list)
+    slot_parts: list[np.ndarray] = field(default_factory=list)
     paths: int = 0
     edges: int = 0
     groups: list[int] = field(default_factory=lambda: [0])
     rules_seconds: float = 0.0
+
+    def waiting(self, nodes: np.ndarray, slots: np.ndarray) -> None:
+        """``nodes`` (of games ``slots``) wait for this round's evaluation (arrays kept as given)."""
+        if nodes.size:
+            self.node_parts.append(nodes)
+            self.slot_parts.append(slots)
+
+    def evaluation_list(self) -> tuple[np.ndarray, np.ndarray]:
+        """All waiting nodes and their slots, in the order they were added."""
+        if len(self.node_parts) == 1:
+            return self.node_parts[0], self.slot_parts[0]
+        return np.concatenate(self.node_parts), np.concatenate(self.slot_parts)
+
+
+class _SlotGenerators(Sequence[np.random.Generator]):
+    """The random generators of the games ``slots`` (one per leaf of a batch), looked up only
+    when an evaluator asks (a network never does)."""
+
+    def __init__(self, rngs: list[np.random.Generator | None], slots: np.ndarray) -> None:
+        self._rngs = rngs
+        self._slots = slots
+
+    def __len__(self) -> int:
+        return int(self._slots.size)
+
+    def __getitem__(self, i):  # type: ignore[override]
+        if isinstance(i, slice):
+            return [self._rngs[s] for s in self._slots[i].tolist()]
+        return self._rngs[int(self._slots[i])]
+
+    def __iter__(self):
+        return (self._rngs[s] for s in self._slots.tolist())
 
 
 class BatchedSearch:
@@ -282,8 +314,7 @@ class BatchedSearch:
         if root_evals.size:
             nodes = self.root[root_evals]
             self.pending[nodes] = True
-            rnd.eval_nodes.extend(nodes.tolist())
-            rnd.eval_slots.extend(root_evals.tolist())
+            rnd.waiting(nodes, root_evals)
         walkers = np.flatnonzero(self.searching & ~self.root_needs_eval)
         for _ in range(self._leaves):
             if not self._descend(walkers, rnd):
@@ -335,51 +366,49 @@ class BatchedSearch:
         ``game.play`` each), shallowest first; those not terminal wait for evaluation."""
         k = kernels.new_children(lo, hi, self._path_leaf, self._path_len, self._path_start, self._path_slot,
                                  self._edge_node, self._edge_act, self.base, self.count, self.P, self.N, self.W,
-                                 self.visits, self.legal, self.child, self._new_path, self._new_parent,
-                                 self._new_action, self._new_slot, self._new_node)
+                                 self.visits, self.legal, self.child, self.terminal, self.pending, self._new_path,
+                                 self._new_parent, self._new_action, self._new_slot, self._new_node)
         if not k:
             return
         parents, actions = self._new_parent[:k], self._new_action[:k]
-        slots, created = self._new_slot[:k], self._new_node[:k]
+        slots, created = self._new_slot[:k].copy(), self._new_node[:k].copy()  # the buffers serve the next step
         legal = self.legal
         t0 = time.perf_counter()
         if self.pool is not None:
-            # one compiled call plays every new edge from its parent's row into its child's,
-            # writes the children's legal masks and says who moves next and which ended the game
-            movers, ended = self.pool.expand(parents, actions, created, legal)
+            # one compiled call plays every new edge from its parent's row into its child's and
+            # writes the children's legal masks and players to move; it says which ended the game
+            ended = self.pool.expand(parents, actions, created, legal, self.to_play)
         else:
             states = self.states
             play, to_play = self.game.play_with_mask, self.game.to_play
             children = [play(states[par], act, legal[node])[0]
                         for node, par, act in zip(created.tolist(), parents.tolist(), actions.tolist())]
-            movers = np.array([to_play(c) for c in children], dtype=np.int8)
+            self.to_play[created] = [to_play(c) for c in children]
             ended = np.array([self._ends(c) for c in children], dtype=bool)
             for node, child in zip(created.tolist(), children):
                 states[node] = child
+        if not ended.any():
+            rnd.waiting(created, slots)
+            rnd.rules_seconds += time.perf_counter() - t0
+            return
         waiting = ~ended
-        rnd.eval_nodes.extend(created[waiting].tolist())
-        rnd.eval_slots.extend(slots[waiting].tolist())
-        exact = [(node, self._terminal_value(self._state(node), m))
-                 for node, m in zip(created[ended].tolist(), movers[ended].tolist())]
+        rnd.waiting(created[waiting], slots[waiting])
+        done = created[ended]
+        exact = [self._terminal_value(self._state(node), int(self.to_play[node])) for node in done.tolist()]
         rnd.rules_seconds += time.perf_counter() - t0
-        self.to_play[created] = movers
-        self.terminal[created] = False
-        self.pending[created] = True
-        if exact:
-            done = np.array([n for n, _ in exact], dtype=np.int64)
-            self.terminal[done] = True
-            self.pending[done] = False
-            self.value[done] = [v for _, v in exact]
-            legal[done] = False
+        self.terminal[done] = True
+        self.pending[done] = False
+        self.value[done] = exact
+        legal[done] = False
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
         """Evaluate every waiting leaf in one call; returns the seconds the evaluator took."""
-        if not rnd.eval_nodes:
+        if not rnd.node_parts:
             return 0.0
-        nodes = np.array(rnd.eval_nodes, dtype=np.int64)
-        states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in rnd.eval_nodes])
-        batch = LeafBatch(self.game, states, self.to_play[nodes],
-                          self.legal[nodes], [self.rngs[s] for s in rnd.eval_slots])
+        nodes, slots = rnd.evaluation_list()
+        states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in nodes.tolist()])
+        batch = LeafBatch(self.game, states, self.to_play[nodes], self.legal[nodes],
+                          _SlotGenerators(self.rngs, slots))
         t0 = time.perf_counter()
         priors, values = evaluator.evaluate(batch)
         t_net = time.perf_counter() - t0
