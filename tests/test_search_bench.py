@@ -28,6 +28,8 @@ def test_bench_json_keys(capsys):
     best = backends[out["best_backend"]]
     assert best["positions_per_second"] == max(f["positions_per_second"] for f in backends.values())
     assert out["efficiency"] == best["efficiency"]
+    # the median of the slices' ratios lies between their quartiles
+    assert 0 < out["efficiency_low"] <= out["efficiency"] <= out["efficiency_high"]
     assert out["speedup_vs_torch"] > 0
 
 
