@@ -193,13 +193,15 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
 
 
 @njit(cache=True)
-def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, P, N, W,
-                 visits, legal, child, terminal, pending, new, parents, actions, slots, created):
+def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, N, W,
+                 visits, child, terminal, pending, new, parents, actions, slots, created):
     """The paths ``lo:hi`` that stopped at an edge with no child, shallowest first (ties in path
     order), each given its child: the next free node of its slot's region (``count`` grows),
-    its rows cleared (no priors, visits, values, children or legal moves yet), not terminal and
-    waiting for evaluation (the caller marks those that end the game), linked under its parent
-    and recorded as the path's leaf. Writes the paths,
+    its visits, values and children cleared, not terminal and waiting for evaluation (the
+    caller marks those that end the game), linked under its parent and recorded as the path's
+    leaf. Its legal moves are written by the caller (the rules), its priors and Q row when it is
+    evaluated; a node that ends the game is never evaluated and its priors are never read.
+    Writes the paths,
     the parents, actions, slots and new nodes into the first entries of ``new``, ``parents``,
     ``actions``, ``slots`` and ``created``; returns how many."""
     k = 0
@@ -223,11 +225,9 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
         slots[i] = s
         created[i] = node
         path_leaf[j] = node
-        for a in range(P.shape[1]):
-            P[node, a] = 0.0
+        for a in range(N.shape[1]):
             N[node, a] = 0.0
             W[node, a] = 0.0
-            legal[node, a] = False
             child[node, a] = -1
         visits[node] = 0.0
         terminal[node] = False
@@ -239,7 +239,14 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
 @njit(cache=True)
 def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, Q, legal, pending):
     """Write an evaluation into the tree: priors and value of each node; Q = value - penalty
-    (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending."""
+    (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending.
+    Returns False, writing nothing, when a prior or value is not finite."""
+    for i in range(nodes.size):
+        if not np.isfinite(values[i]):
+            return False
+        for a in range(priors.shape[1]):
+            if not np.isfinite(priors[i, a]):
+                return False
     penalty = np.float32(unvisited_value_penalty)
     for i in range(nodes.size):
         node = nodes[i]
@@ -250,6 +257,7 @@ def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, 
             P[node, a] = priors[i, a]
             Q[node, a] = q if legal[node, a] else -np.inf
         pending[node] = False
+    return True
 
 
 @njit(cache=True)

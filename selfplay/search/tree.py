@@ -365,8 +365,8 @@ class BatchedSearch:
         """Create the children at the ends of paths ``lo:hi`` that stopped at a new edge (one
         ``game.play`` each), shallowest first; those not terminal wait for evaluation."""
         k = kernels.new_children(lo, hi, self._path_leaf, self._path_len, self._path_start, self._path_slot,
-                                 self._edge_node, self._edge_act, self.base, self.count, self.P, self.N, self.W,
-                                 self.visits, self.legal, self.child, self.terminal, self.pending, self._new_path,
+                                 self._edge_node, self._edge_act, self.base, self.count, self.N, self.W,
+                                 self.visits, self.child, self.terminal, self.pending, self._new_path,
                                  self._new_parent, self._new_action, self._new_slot, self._new_node)
         if not k:
             return
@@ -412,11 +412,14 @@ class BatchedSearch:
         t0 = time.perf_counter()
         priors, values = evaluator.evaluate(batch)
         t_net = time.perf_counter() - t0
-        _check_evaluation(evaluator, priors, values, nodes.size, self.A)
+        _check_shapes(evaluator, priors, values, nodes.size, self.A)
         # the evaluator's contract is float32; anything else is rounded to it here
-        kernels.store_evaluations(nodes, np.ascontiguousarray(priors, dtype=np.float32),
-                                  np.ascontiguousarray(values, dtype=np.float32), self.config.unvisited_value_penalty,
-                                  self.P, self.value, self.Q, self.legal, self.pending)
+        if not kernels.store_evaluations(nodes, np.ascontiguousarray(priors, dtype=np.float32),
+                                         np.ascontiguousarray(values, dtype=np.float32),
+                                         self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
+                                         self.pending):
+            raise SnapshotError(f"evaluator {type(evaluator).__name__} returned non-finite priors or values (a "
+                                "corrupt or diverged network?); the search stops rather than fill its trees with them")
         if self._rule == RULE_GUMBEL:
             # numpy's float32 log, as the formula's reference computes it
             self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
@@ -486,15 +489,13 @@ class BatchedSearch:
         return state
 
 
-def _check_evaluation(evaluator: Evaluator, priors: np.ndarray, values: np.ndarray, n: int, A: int) -> None:
-    """Refuse an evaluation of the wrong shape or with non-finite numbers before it enters a tree."""
-    name = type(evaluator).__name__
+def _check_shapes(evaluator: Evaluator, priors: np.ndarray, values: np.ndarray, n: int, A: int) -> None:
+    """Refuse an evaluation of the wrong shape before it enters a tree (non-finite numbers are
+    refused by the store itself, before it writes anything)."""
     if getattr(priors, "shape", None) != (n, A) or getattr(values, "shape", None) != (n,):
-        raise ConfigError(f"evaluator {name} returned priors of shape {getattr(priors, 'shape', None)} and values "
-                          f"of shape {getattr(values, 'shape', None)} for {n} leaves; expected ({n}, {A}) and ({n},)")
-    if not (np.isfinite(values.sum()) and np.isfinite(priors.sum())):
-        raise SnapshotError(f"evaluator {name} returned non-finite priors or values (a corrupt or diverged "
-                            "network?); the search stops rather than fill its trees with them")
+        raise ConfigError(f"evaluator {type(evaluator).__name__} returned priors of shape "
+                          f"{getattr(priors, 'shape', None)} and values of shape {getattr(values, 'shape', None)} "
+                          f"for {n} leaves; expected ({n}, {A}) and ({n},)")
 
 
 def search_states(game: Game, states: Sequence[Any], evaluator: Evaluator, config: SearchConfig, *,
