@@ -74,6 +74,10 @@ class Evaluator(Protocol):
     def evaluate(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
         """(priors float32 (N, A) over legal moves, values float32 (N,) from the leaf mover's view)."""
 
+    # Optional: ``evaluate_logits(batch) -> (logits float32 (N, A), values float32 (N,))``, the raw
+    # policy whose softmax over each leaf's legal moves is what ``evaluate`` returns as priors. The
+    # search uses it where present (it computes that softmax while storing the priors).
+
 
 def uniform_priors(legal: np.ndarray) -> np.ndarray:
     """float32 (N, A): the uniform distribution over each row's legal moves."""
@@ -321,6 +325,19 @@ class NetworkEvaluator:
         self.times.calls += 1
         self.times.leaves += len(batch)
         return self.forward_planes(planes, batch.legal)
+
+    def evaluate_logits(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
+        """The network's raw outputs for ``batch``: (policy logits float32 (N, A), values float32
+        (N,)); :meth:`evaluate`'s priors are the logits' softmax over each leaf's legal moves."""
+        t0 = time.perf_counter()
+        planes = batch.planes()
+        t1 = time.perf_counter()
+        self.times.encode += t1 - t0
+        self.times.calls += 1
+        self.times.leaves += len(batch)
+        out = self._current()(planes)
+        self.times.forward += time.perf_counter() - t1
+        return out
 
     def describe(self) -> dict[str, Any]:
         """Backend facts for metric lines: backend, precision, swap costs, versions refused, and

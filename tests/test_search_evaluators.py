@@ -96,3 +96,18 @@ def test_a_broken_evaluation_is_refused_before_it_enters_the_tree():
         search_states(GAME, [GAME.initial_state()], _BrokenEvaluator("shape"), cfg)
     with pytest.raises(SnapshotError, match="non-finite"):
         search_states(GAME, [GAME.initial_state()], _BrokenEvaluator("nan"), cfg)
+
+
+def test_a_network_with_non_finite_weights_is_refused_through_its_logits():
+    """The search takes a network's raw logits (evaluate_logits) and computes the priors itself;
+    non-finite logits are refused there as non-finite priors are elsewhere."""
+    import torch
+
+    from selfplay.errors import SnapshotError
+
+    net = build_network(GAME, NetworkConfig.tiny(), seed=0)
+    with torch.no_grad():
+        net.policy_fc.weight.fill_(float("inf"))
+    ev = NetworkEvaluator(net, game=GAME, backend="torch", precision="float32")
+    with pytest.raises(SnapshotError, match="non-finite"):
+        search_states(GAME, [GAME.initial_state()], ev, SearchConfig(simulations=4))

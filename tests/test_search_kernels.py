@@ -237,3 +237,41 @@ def test_move_choice_by_temperature_draws_what_numpy_choice_draws() -> None:
         mine, ref = np.random.default_rng([seed, 1]), np.random.default_rng([seed, 1])
         assert choose_by_visits(visits, t, mine) == int(ref.choice(82, p=w / w.sum()))
         assert mine.random() == ref.random()
+
+
+def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
+    """kernels.store_logits (the network path) against the numpy softmax softmax_over_legal
+    followed by store_evaluations: the same priors to float32 rounding and exactly the same
+    values, Q rows and pending flags; 0 on illegal moves, 1 on a lone legal move; logits that
+    would overflow exp unshifted, and a huge logit on an illegal move, change nothing."""
+    from selfplay.evaluators import softmax_over_legal
+
+    rng = np.random.default_rng(21)
+    k, A, rows = 40, 82, 100
+    logits = rng.normal(scale=3.0, size=(k, A)).astype(np.float32)
+    logits[0] += 80.0
+    legal = np.zeros((rows, A), dtype=bool)
+    nodes = rng.choice(rows, size=k, replace=False).astype(np.int64)
+    legal[nodes] = rng.random((k, A)) < 0.7
+    legal[nodes[1]] = False
+    legal[nodes[1], 5] = True
+    logits[2, ~legal[nodes[2]]] = 1e4
+    values = rng.uniform(-1, 1, size=k).astype(np.float32)
+    out = []
+    for store, policy in ((kernels.store_logits, logits),
+                          (kernels.store_evaluations, softmax_over_legal(logits, legal[nodes]))):
+        P, Q = np.full((rows, A), 9.0, np.float32), np.full((rows, A), 9.0, np.float32)
+        value, pending = np.zeros(rows, np.float32), np.ones(rows, bool)
+        assert store(nodes, np.ascontiguousarray(policy), values, 0.25, P, value, Q, legal, pending)
+        out.append((P, Q, value, pending))
+    (P, Q, value, pending), (P_ref, Q_ref, value_ref, pending_ref) = out
+    np.testing.assert_allclose(P[nodes], P_ref[nodes], rtol=3e-6, atol=1e-9)
+    assert np.all(P[nodes][~legal[nodes]] == 0.0) and P[nodes[1], 5] == 1.0
+    assert np.array_equal(Q, Q_ref) and np.array_equal(value, value_ref) and np.array_equal(pending, pending_ref)
+    # a non-finite logit or value: refused before anything is written
+    for bad_logits, bad_values in ((np.where(np.arange(A) == 3, np.nan, logits[:1]), values[:1]),
+                                   (logits[:1], np.array([np.inf], np.float32))):
+        P = np.full((rows, A), 9.0, np.float32)
+        assert not kernels.store_logits(nodes[:1], np.ascontiguousarray(bad_logits, dtype=np.float32), bad_values,
+                                        0.25, P, value, Q, legal, pending)
+        assert np.all(P == 9.0)

@@ -261,6 +261,47 @@ def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, 
 
 
 @njit(cache=True)
+def store_logits(nodes, logits, values, unvisited_value_penalty, P, value, Q, legal, pending):
+    """:func:`store_evaluations` from raw policy logits: each node's priors are the softmax of its
+    row of ``logits`` over the node's legal moves (0 on the others), computed in float32 as the
+    row is written instead of in a separate pass over the batch (the numpy form,
+    :func:`selfplay.evaluators.softmax_over_legal`, agrees to float32 rounding). Returns False,
+    writing nothing, when a logit or value is not finite."""
+    for i in range(nodes.size):
+        if not np.isfinite(values[i]):
+            return False
+        for a in range(logits.shape[1]):
+            if not np.isfinite(logits[i, a]):
+                return False
+    penalty = np.float32(unvisited_value_penalty)
+    A = P.shape[1]
+    for i in range(nodes.size):
+        node = nodes[i]
+        v = values[i]
+        value[node] = v
+        q = v - penalty
+        top = np.float32(-np.inf)
+        for a in range(A):
+            if legal[node, a] and logits[i, a] > top:
+                top = logits[i, a]
+        total = np.float32(0.0)
+        for a in range(A):
+            if legal[node, a]:
+                e = np.exp(logits[i, a] - top)
+                P[node, a] = e
+                total += e
+                Q[node, a] = q
+            else:
+                P[node, a] = 0.0
+                Q[node, a] = -np.inf
+        scale = np.float32(1.0) / total
+        for a in range(A):
+            P[node, a] *= scale
+        pending[node] = False
+    return True
+
+
+@njit(cache=True)
 def subtree_order(child, top, out):
     """Nodes of the subtree under ``top`` (``top`` included) in ascending id order into ``out``;
     returns their number. A child's id is always larger than its parent's, so ``out[0] == top``,

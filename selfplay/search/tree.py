@@ -31,7 +31,9 @@ A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
 2. ``_expand`` — the children at new edges are created, shallowest first: one compiled
    ``pool.expand`` call for all of them where the game has a state pool (Go), else one
    ``game.play_with_mask`` each;
-3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call;
+3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call
+   (a network evaluator hands back raw logits: the softmax over each leaf's legal moves is
+   computed as its priors are stored, :func:`selfplay.search.kernels.store_logits`);
 4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
    along its path, negated wherever the player to move differs from the leaf's, and removes the
    virtual losses.
@@ -409,15 +411,17 @@ class BatchedSearch:
         states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in nodes.tolist()])
         batch = LeafBatch(self.game, states, self.to_play[nodes], self.legal[nodes],
                           _SlotGenerators(self.rngs, slots))
+        # an evaluator with raw logits (a network) leaves the softmax over each leaf's legal moves
+        # to the compiled store, which computes it as it writes the priors
+        logits_of = getattr(evaluator, "evaluate_logits", None)
         t0 = time.perf_counter()
-        priors, values = evaluator.evaluate(batch)
+        policy, values = logits_of(batch) if logits_of is not None else evaluator.evaluate(batch)
         t_net = time.perf_counter() - t0
-        _check_shapes(evaluator, priors, values, nodes.size, self.A)
+        _check_shapes(evaluator, policy, values, nodes.size, self.A)
+        store = kernels.store_logits if logits_of is not None else kernels.store_evaluations
         # the evaluator's contract is float32; anything else is rounded to it here
-        if not kernels.store_evaluations(nodes, np.ascontiguousarray(priors, dtype=np.float32),
-                                         np.ascontiguousarray(values, dtype=np.float32),
-                                         self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
-                                         self.pending):
+        if not store(nodes, np.ascontiguousarray(policy, dtype=np.float32), np.ascontiguousarray(values, dtype=np.float32),
+                     self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal, self.pending):
             raise SnapshotError(f"evaluator {type(evaluator).__name__} returned non-finite priors or values (a "
                                 "corrupt or diverged network?); the search stops rather than fill its trees with them")
         if self._rule == RULE_GUMBEL:
