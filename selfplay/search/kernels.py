@@ -236,17 +236,25 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
     return k
 
 
+@njit(cache=True, inline="always")
+def _all_finite(policy, values):
+    """Whether every number of an evaluation (policy rows and values) is finite."""
+    for i in range(values.size):
+        if not np.isfinite(values[i]):
+            return False
+        for a in range(policy.shape[1]):
+            if not np.isfinite(policy[i, a]):
+                return False
+    return True
+
+
 @njit(cache=True)
 def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, Q, legal, pending):
     """Write an evaluation into the tree: priors and value of each node; Q = value - penalty
     (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending.
     Returns False, writing nothing, when a prior or value is not finite."""
-    for i in range(nodes.size):
-        if not np.isfinite(values[i]):
-            return False
-        for a in range(priors.shape[1]):
-            if not np.isfinite(priors[i, a]):
-                return False
+    if not _all_finite(priors, values):
+        return False
     penalty = np.float32(unvisited_value_penalty)
     for i in range(nodes.size):
         node = nodes[i]
@@ -267,12 +275,8 @@ def store_logits(nodes, logits, values, unvisited_value_penalty, P, value, Q, le
     row is written instead of in a separate pass over the batch (the numpy form,
     :func:`selfplay.evaluators.softmax_over_legal`, agrees to float32 rounding). Returns False,
     writing nothing, when a logit or value is not finite."""
-    for i in range(nodes.size):
-        if not np.isfinite(values[i]):
-            return False
-        for a in range(logits.shape[1]):
-            if not np.isfinite(logits[i, a]):
-                return False
+    if not _all_finite(logits, values):
+        return False
     penalty = np.float32(unvisited_value_penalty)
     A = P.shape[1]
     for i in range(nodes.size):
