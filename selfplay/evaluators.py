@@ -318,25 +318,25 @@ class NetworkEvaluator:
         self.times.forward += time.perf_counter() - t0
         return out
 
-    def evaluate(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
+    def _planes(self, batch: LeafBatch) -> np.ndarray:
+        """The network input of ``batch``, counted (encoding time, calls, leaves)."""
         t0 = time.perf_counter()
         planes = batch.planes()
         self.times.encode += time.perf_counter() - t0
         self.times.calls += 1
         self.times.leaves += len(batch)
-        return self.forward_planes(planes, batch.legal)
+        return planes
+
+    def evaluate(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
+        return self.forward_planes(self._planes(batch), batch.legal)
 
     def evaluate_logits(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
         """The network's raw outputs for ``batch``: (policy logits float32 (N, A), values float32
         (N,)); :meth:`evaluate`'s priors are the logits' softmax over each leaf's legal moves."""
+        planes = self._planes(batch)
         t0 = time.perf_counter()
-        planes = batch.planes()
-        t1 = time.perf_counter()
-        self.times.encode += t1 - t0
-        self.times.calls += 1
-        self.times.leaves += len(batch)
         out = self._current()(planes)
-        self.times.forward += time.perf_counter() - t1
+        self.times.forward += time.perf_counter() - t0
         return out
 
     def describe(self) -> dict[str, Any]:

@@ -240,8 +240,8 @@ def test_move_choice_by_temperature_draws_what_numpy_choice_draws() -> None:
 
 
 def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
-    """kernels.store_logits (the network path) against the numpy softmax softmax_over_legal
-    followed by store_evaluations: the same priors to float32 rounding and exactly the same
+    """kernels.store_evaluations from logits (the network path) against the numpy softmax
+    softmax_over_legal followed by store_evaluations of those priors: the same priors to float32 rounding and exactly the same
     values, Q rows and pending flags; 0 on illegal moves, 1 on a lone legal move; logits that
     would overflow exp unshifted, and a huge logit on an illegal move, change nothing."""
     from selfplay.evaluators import softmax_over_legal
@@ -258,11 +258,11 @@ def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
     logits[2, ~legal[nodes[2]]] = 1e4
     values = rng.uniform(-1, 1, size=k).astype(np.float32)
     out = []
-    for store, policy in ((kernels.store_logits, logits),
-                          (kernels.store_evaluations, softmax_over_legal(logits, legal[nodes]))):
+    for from_logits, policy in ((True, logits), (False, softmax_over_legal(logits, legal[nodes]))):
         P, Q = np.full((rows, A), 9.0, np.float32), np.full((rows, A), 9.0, np.float32)
         value, pending = np.zeros(rows, np.float32), np.ones(rows, bool)
-        assert store(nodes, np.ascontiguousarray(policy), values, 0.25, P, value, Q, legal, pending)
+        assert kernels.store_evaluations(nodes, np.ascontiguousarray(policy), values, 0.25, P, value, Q, legal,
+                                         pending, from_logits)
         out.append((P, Q, value, pending))
     (P, Q, value, pending), (P_ref, Q_ref, value_ref, pending_ref) = out
     np.testing.assert_allclose(P[nodes], P_ref[nodes], rtol=3e-6, atol=1e-9)
@@ -272,8 +272,8 @@ def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
     for bad_logits, bad_values in ((np.where(np.arange(A) == 3, np.nan, logits[:1]), values[:1]),
                                    (logits[:1], np.array([np.inf], np.float32))):
         P = np.full((rows, A), 9.0, np.float32)
-        assert not kernels.store_logits(nodes[:1], np.ascontiguousarray(bad_logits, dtype=np.float32), bad_values,
-                                        0.25, P, value, Q, legal, pending)
+        assert not kernels.store_evaluations(nodes[:1], np.ascontiguousarray(bad_logits, dtype=np.float32),
+                                             bad_values, 0.25, P, value, Q, legal, pending, True)
         assert np.all(P == 9.0)
 
 

@@ -22,8 +22,8 @@ from numba import njit
 
 from selfplay.search.root import RULE_GUMBEL, RULE_PUCT
 
-__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "new_children", "descend", "move_rows", "store_evaluations", "subtree_order", "puct_pick_rows",
-           "gumbel_pick_rows"]
+__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "new_children", "descend", "move_rows", "store_evaluations",
+           "subtree_order", "puct_pick_rows", "gumbel_pick_rows"]
 
 _ONE = np.float32(1.0)
 
@@ -249,33 +249,15 @@ def _all_finite(policy, values):
 
 
 @njit(cache=True)
-def store_evaluations(nodes, priors, values, unvisited_value_penalty, P, value, Q, legal, pending):
+def store_evaluations(nodes, policy, values, unvisited_value_penalty, P, value, Q, legal, pending, from_logits):
     """Write an evaluation into the tree: priors and value of each node; Q = value - penalty
     (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending.
-    Returns False, writing nothing, when a prior or value is not finite."""
-    if not _all_finite(priors, values):
-        return False
-    penalty = np.float32(unvisited_value_penalty)
-    for i in range(nodes.size):
-        node = nodes[i]
-        v = values[i]
-        value[node] = v
-        q = v - penalty
-        for a in range(P.shape[1]):
-            P[node, a] = priors[i, a]
-            Q[node, a] = q if legal[node, a] else -np.inf
-        pending[node] = False
-    return True
-
-
-@njit(cache=True)
-def store_logits(nodes, logits, values, unvisited_value_penalty, P, value, Q, legal, pending):
-    """:func:`store_evaluations` from raw policy logits: each node's priors are the softmax of its
-    row of ``logits`` over the node's legal moves (0 on the others), computed in float32 as the
-    row is written instead of in a separate pass over the batch (the numpy form,
+    ``policy`` holds the priors, or with ``from_logits`` raw policy logits, whose softmax over
+    the node's legal moves (0 on the others) is computed in float32 as the row is written instead
+    of in a separate pass over the batch (the numpy form,
     :func:`selfplay.evaluators.softmax_over_legal`, agrees to float32 rounding). Returns False,
-    writing nothing, when a logit or value is not finite."""
-    if not _all_finite(logits, values):
+    writing nothing, when a number of ``policy`` or ``values`` is not finite."""
+    if not _all_finite(policy, values):
         return False
     penalty = np.float32(unvisited_value_penalty)
     A = P.shape[1]
@@ -284,23 +266,24 @@ def store_logits(nodes, logits, values, unvisited_value_penalty, P, value, Q, le
         v = values[i]
         value[node] = v
         q = v - penalty
-        top = np.float32(-np.inf)
         for a in range(A):
-            if legal[node, a] and logits[i, a] > top:
-                top = logits[i, a]
-        total = np.float32(0.0)
-        for a in range(A):
-            if legal[node, a]:
-                e = np.exp(logits[i, a] - top)
+            Q[node, a] = q if legal[node, a] else -np.inf
+        if not from_logits:
+            for a in range(A):
+                P[node, a] = policy[i, a]
+        else:
+            top = np.float32(-np.inf)
+            for a in range(A):
+                if legal[node, a] and policy[i, a] > top:
+                    top = policy[i, a]
+            total = np.float32(0.0)
+            for a in range(A):
+                e = np.exp(policy[i, a] - top) if legal[node, a] else np.float32(0.0)
                 P[node, a] = e
                 total += e
-                Q[node, a] = q
-            else:
-                P[node, a] = 0.0
-                Q[node, a] = -np.inf
-        scale = np.float32(1.0) / total
-        for a in range(A):
-            P[node, a] *= scale
+            scale = np.float32(1.0) / total
+            for a in range(A):
+                P[node, a] *= scale
         pending[node] = False
     return True
 

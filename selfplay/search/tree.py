@@ -33,7 +33,7 @@ A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
    ``game.play_with_mask`` each;
 3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call
    (a network evaluator hands back raw logits: the softmax over each leaf's legal moves is
-   computed as its priors are stored, :func:`selfplay.search.kernels.store_logits`);
+   computed as its priors are stored, :func:`selfplay.search.kernels.store_evaluations`);
 4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
    along its path, negated wherever the player to move differs from the leaf's, and removes the
    virtual losses.
@@ -418,10 +418,11 @@ class BatchedSearch:
         policy, values = logits_of(batch) if logits_of is not None else evaluator.evaluate(batch)
         t_net = time.perf_counter() - t0
         _check_shapes(evaluator, policy, values, nodes.size, self.A)
-        store = kernels.store_logits if logits_of is not None else kernels.store_evaluations
         # the evaluator's contract is float32; anything else is rounded to it here
-        if not store(nodes, np.ascontiguousarray(policy, dtype=np.float32), np.ascontiguousarray(values, dtype=np.float32),
-                     self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal, self.pending):
+        if not kernels.store_evaluations(nodes, np.ascontiguousarray(policy, dtype=np.float32),
+                                         np.ascontiguousarray(values, dtype=np.float32),
+                                         self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
+                                         self.pending, logits_of is not None):
             raise SnapshotError(f"evaluator {type(evaluator).__name__} returned non-finite priors or values (a "
                                 "corrupt or diverged network?); the search stops rather than fill its trees with them")
         if self._rule == RULE_GUMBEL:
