@@ -39,13 +39,15 @@ class LeafBatch:
     """Leaves waiting for evaluation.
 
     states: the game states (non-terminal); to_play: int8 (N,) player to move at each leaf;
-    legal: bool (N, A) legal-move masks; rngs: the random generator of each leaf's game (so that
-    rollouts are reproducible per game whatever else shares the batch)."""
+    legal: bool (N, A) legal-move masks, or None where the search asks an evaluator with
+    ``evaluate_logits`` before the leaves' legal moves are worked out (it needs none there);
+    rngs: the random generator of each leaf's game (so that rollouts are reproducible per game
+    whatever else shares the batch)."""
 
     game: Game
     states: Sequence[Any]
     to_play: np.ndarray
-    legal: np.ndarray
+    legal: np.ndarray | None
     rngs: Sequence[np.random.Generator]
 
     def __len__(self) -> int:
@@ -76,7 +78,9 @@ class Evaluator(Protocol):
 
     # Optional: ``evaluate_logits(batch) -> (logits float32 (N, A), values float32 (N,))``, the raw
     # policy whose softmax over each leaf's legal moves is what ``evaluate`` returns as priors. The
-    # search uses it where present (it computes that softmax while storing the priors).
+    # search uses it where present (it computes that softmax while storing the priors, or, in a
+    # game with a state pool, when a descent first needs the leaf's legal moves: its
+    # ``batch.legal`` is then None).
 
 
 def uniform_priors(legal: np.ndarray) -> np.ndarray:

@@ -26,10 +26,15 @@ def _same(got, ref) -> None:
                                      {"size": 7, "superko": False, "allow_suicide": True},
                                      {"size": 4, "tiny": True, "max_moves": 80},
                                      {"size": 4, "tiny": True, "allow_suicide": True, "max_moves": 80}])
-def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
+@pytest.mark.parametrize("build", [True, False], ids=["built", "deferred"])
+def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict, build: bool) -> None:
     """Trees of 6 games grown one random edge per game per call, re-rooted at a root child every
     few calls (as a move is played); each child row, loaded, equals play_with_mask's state and
-    legal mask, through captures, passes, superko refusals and the move cap."""
+    legal mask, through captures, passes, superko refusals and the move cap.
+
+    Deferred: children made without group tables or masks (``build=False``); a random half is
+    built with its mask at once and compared, the rest stay unbuilt until a later child, a
+    re-rooting or a load needs them (parents without tables, unbuilt rows moved by a re-rooting)."""
     game = GoGame(komi=7.5, **options)
     slots, cap = 6, 24
     pool = game.state_pool(slots, cap)
@@ -50,7 +55,7 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
 
     for slot in range(slots):
         new_root(slot)
-    checked = rerooted = 0
+    checked = rerooted = unbuilt_parents = 0
     for step in range(700):
         parents, actions, rows = [], [], []
         for slot in range(slots):
@@ -63,22 +68,30 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
             if len(tree) >= cap:
                 continue
             p = int(rng.choice(open_rows))
+            unbuilt_parents += not pool.built[p]
             choices = np.flatnonzero(game.legal_mask(tree[p][0]))
             parents.append(p)
             actions.append(int(rng.choice(choices)))
             rows.append(base + len(tree))
-        ended = pool.expand(np.array(parents), np.array(actions), np.array(rows), legal, to_play)
+        ended = pool.expand(np.array(parents), np.array(actions), np.array(rows), legal, to_play, build=build)
         movers = to_play[rows]
         for p, a, r, mover, end in zip(parents, actions, rows, movers, ended):
             slot = r // cap
             ref, mask = game.play_with_mask(trees[slot][p][0], a)
-            _same(pool.load(r), ref)
-            # and the mask made from the whole key list (the rows look keys up where they lie)
-            assert np.array_equal(legal[r], mask) and np.array_equal(mask, game.legal_mask(ref))
-            assert mover == game.to_play(ref) and end == game.is_terminal(ref)
             trees[slot][r] = (ref, p, [])
             trees[slot][p][2].append(r)
             checked += 1
+            assert mover == game.to_play(ref) and end == game.is_terminal(ref)
+            assert np.array_equal(pool.histories(np.array([r]))[0].reshape(ref.history.shape), ref.history)
+            if not build and rng.random() < 0.5:
+                continue  # left unbuilt for now
+            if not build and not end:
+                assert not pool.built[r]
+                pool.build(np.array([r]), legal)
+            if not end or build:
+                # the mask made from the whole key list (the rows look keys up where they lie)
+                assert np.array_equal(legal[r], mask) and np.array_equal(mask, game.legal_mask(ref))
+            _same(pool.load(r), ref)
         if step % 4 == 3:  # a move is played: the root's busiest child becomes the root
             for slot in range(slots):
                 tree = trees[slot]
@@ -104,6 +117,8 @@ def test_pool_rows_grow_and_reroot_like_play_with_mask(options: dict) -> None:
                     _same(pool.load(new_row[old]), tree[old][0])
                 rerooted += 1
     assert checked > 1500 and rerooted > 100
+    if not build:
+        assert unbuilt_parents > 20
 
 
 def test_pool_refuses_illegal_moves_with_the_rules_message() -> None:
@@ -131,19 +146,32 @@ class _NoPoolGo(GoGame):
         return None
 
 
+@pytest.mark.parametrize("evaluator", ["uniform", "network"])
 @pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
-def test_self_play_with_and_without_the_pool_plays_the_same_games(algorithm: str) -> None:
-    """Same seeds, tree reuse on: the pool changes where positions live, never a game."""
+def test_self_play_with_and_without_the_pool_plays_the_same_games(algorithm: str, evaluator: str) -> None:
+    """Same seeds, tree reuse on: the pool changes where positions live, never a game. With a
+    network (raw logits) the pool also leaves each leaf's groups and legal moves until a descent
+    first chooses at it, where the search without a pool works them out at once."""
     cfg = SearchConfig(algorithm=algorithm, simulations=24, gumbel_sampled_moves=8)
     records = []
     for game in (GoGame(size=7, max_moves=60), _NoPoolGo(size=7, max_moves=60)):
-        worker = SelfPlayWorker(game, UniformEvaluator(), cfg, games_in_parallel=5, worker_id="t", seed=3)
+        if evaluator == "network":
+            from selfplay.evaluators import NetworkEvaluator
+            from selfplay.network import NetworkConfig, build_network
+
+            ev = NetworkEvaluator(build_network(game, NetworkConfig.tiny(), seed=5), game=game, backend="torch",
+                                  precision="float32")
+        else:
+            ev = UniformEvaluator()
+        worker = SelfPlayWorker(game, ev, cfg, games_in_parallel=5, worker_id="t", seed=3)
         assert (worker._tree.pool is not None) == (type(game) is GoGame)
         worker.allow_games(8)
         done = []
         while worker.games_in_flight:
             done.extend(worker.step())
         records.append(sorted(done, key=lambda r: r.game_id))
+        if evaluator == "network" and worker._tree.pool is not None:
+            assert not worker._tree.ready.all() and not worker._tree.pool.built.all()
     with_pool, without = records
     assert len(with_pool) == 8
     for a, b in zip(with_pool, without):

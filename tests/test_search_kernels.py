@@ -243,7 +243,9 @@ def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
     """kernels.store_evaluations from logits (the network path) against the numpy softmax
     softmax_over_legal followed by store_evaluations of those priors: the same priors to float32 rounding and exactly the same
     values, Q rows and pending flags; 0 on illegal moves, 1 on a lone legal move; logits that
-    would overflow exp unshifted, and a huge logit on an illegal move, change nothing."""
+    would overflow exp unshifted, and a huge logit on an illegal move, change nothing. Deferred
+    (nodes not ready when stored, opened afterwards by kernels.open_nodes): bit for bit the
+    priors and Q rows of storing from logits at once."""
     from selfplay.evaluators import softmax_over_legal
 
     rng = np.random.default_rng(21)
@@ -258,13 +260,22 @@ def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
     logits[2, ~legal[nodes[2]]] = 1e4
     values = rng.uniform(-1, 1, size=k).astype(np.float32)
     out = []
-    for from_logits, policy in ((True, logits), (False, softmax_over_legal(logits, legal[nodes]))):
+    for from_logits, policy, deferred in ((True, logits, False), (False, softmax_over_legal(logits, legal[nodes]), False),
+                                          (True, logits, True)):
         P, Q = np.full((rows, A), 9.0, np.float32), np.full((rows, A), 9.0, np.float32)
         value, pending = np.zeros(rows, np.float32), np.ones(rows, bool)
-        assert kernels.store_evaluations(nodes, np.ascontiguousarray(policy), values, 0.25, P, value, Q, legal,
-                                         pending, from_logits)
+        ready = np.ones(rows, bool)
+        ready[nodes] = not deferred
+        masks = np.zeros_like(legal) if deferred else legal  # unknown until the nodes are opened
+        assert kernels.store_evaluations(nodes, np.ascontiguousarray(policy), values, 0.25, P, value, Q, masks,
+                                         pending, ready, from_logits)
+        if deferred:
+            assert np.all(Q[nodes] == 9.0) and not pending[nodes].any()
+            kernels.open_nodes(nodes, 0.25, P, value, Q, legal, ready)
+            assert ready.all()
         out.append((P, Q, value, pending))
-    (P, Q, value, pending), (P_ref, Q_ref, value_ref, pending_ref) = out
+    (P, Q, value, pending), (P_ref, Q_ref, value_ref, pending_ref), later = out
+    assert all(np.array_equal(x, y) for x, y in zip(later, out[0]))
     np.testing.assert_allclose(P[nodes], P_ref[nodes], rtol=3e-6, atol=1e-9)
     assert np.all(P[nodes][~legal[nodes]] == 0.0) and P[nodes[1], 5] == 1.0
     assert np.array_equal(Q, Q_ref) and np.array_equal(value, value_ref) and np.array_equal(pending, pending_ref)
@@ -273,7 +284,7 @@ def test_priors_stored_from_logits_are_the_softmax_over_legal_moves():
                                    (logits[:1], np.array([np.inf], np.float32))):
         P = np.full((rows, A), 9.0, np.float32)
         assert not kernels.store_evaluations(nodes[:1], np.ascontiguousarray(bad_logits, dtype=np.float32),
-                                             bad_values, 0.25, P, value, Q, legal, pending, True)
+                                             bad_values, 0.25, P, value, Q, legal, pending, np.ones(rows, bool), True)
         assert np.all(P == 9.0)
 
 

@@ -433,6 +433,75 @@ def play_history(hist, grp, seen, extra, key, prev_key, color, p, allow_suicide,
     return OK, nk, grew, new_peak
 
 
+@njit(cache=True, inline="always")
+def _clear_stones(board, grp, r):
+    """Empty every point of the group represented by ``r`` (read from ``grp``, which is left
+    as it is) on ``board``."""
+    s = r
+    while True:
+        board[s] = 0
+        s = grp[s, NEXT]
+        if s == r:
+            break
+
+
+@njit(cache=True)
+def play_board(hist, grp, key, color, p, allow_suicide, nbr, zob, nwords, out_hist):
+    """The boards after a ``color`` stone at ``p`` into ``out_hist`` (new board first, older
+    ones shifted down, as :func:`play_history` writes them) and the new board's key, reading the
+    position's group table ``grp`` without changing it and writing no new table: the cheap half
+    of a move, for a search node whose own groups and legal moves may never be needed.
+
+    The move must be one the position's legal mask allows: only an occupied point and (without
+    ``allow_suicide``) a suicide are caught here; a repeated position is not, because that needs
+    the game's keys (:func:`play_history`, run when the node's groups are built, checks it all).
+    Returns (status, new key, stones on the new board)."""
+    board0 = hist[0]
+    if board0[p] != 0:
+        return OCCUPIED, key, 0
+    out_hist[1:] = hist[:-1]
+    out_hist[0] = board0
+    board = out_hist[0]
+    nk = key ^ zob[color, p]
+    has_lib = False
+    c0 = -1
+    c1 = -1
+    c2 = -1
+    for k in range(4):
+        q = nbr[p, k]
+        if q < 0:
+            continue
+        v = board0[q]
+        if v == 0:
+            has_lib = True
+        elif v == color:
+            if _lib_other_than(grp, grp[q, REP], p, nwords):
+                has_lib = True
+        else:
+            r = grp[q, REP]
+            if r != c0 and r != c1 and r != c2 and _lib_only(grp, r, p, nwords):
+                nk ^= grp[r, HASH]
+                has_lib = True
+                _clear_stones(board, grp, r)
+                if c0 < 0:
+                    c0 = r
+                elif c1 < 0:
+                    c1 = r
+                else:
+                    c2 = r
+    if has_lib:
+        board[p] = color
+    elif not allow_suicide:
+        return SUICIDE, key, 0
+    else:  # suicide: the stone and every friendly group it touches leave the board
+        nk = _suicide_key(board0, grp, p, color, key, nbr)
+        for k in range(4):
+            q = nbr[p, k]
+            if q >= 0 and board0[q] == color and board[q] != 0:
+                _clear_stones(board, grp, grp[q, REP])
+    return OK, nk, _stone_count(board)
+
+
 @njit(cache=True)
 def history_planes(boards, to_play, out):
     """Network input planes from compact boards int8 (n, H, rows, cols) and the side to move

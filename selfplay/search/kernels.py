@@ -22,10 +22,13 @@ from numba import njit
 
 from selfplay.search.root import RULE_GUMBEL, RULE_PUCT
 
-__all__ = ["RULE_GUMBEL", "RULE_PUCT", "backup", "new_children", "descend", "move_rows", "store_evaluations",
-           "subtree_order", "puct_pick_rows", "gumbel_pick_rows"]
+__all__ = ["BLOCKED", "RULE_GUMBEL", "RULE_PUCT", "backup", "blocked_nodes", "descend", "finish_blocked",
+           "gumbel_pick_rows", "move_rows", "new_children", "open_nodes", "puct_pick_rows", "store_evaluations",
+           "subtree_order"]
 
 _ONE = np.float32(1.0)
+#: ``leaf`` of a descent that stopped at a node not yet ready (see :func:`descend`)
+BLOCKED = -2
 
 
 @njit(cache=True, inline="always")
@@ -97,8 +100,27 @@ def _gumbel_pick(P, N, W, logP, legal, value, node, c_visit, c_scale, work):
     return pick
 
 
+@njit(cache=True, inline="always")
+def _pick(rule, P, N, W, Q, logP, visits, legal, value, node, c32, c_visit, c_scale, work):
+    """The below-root selection ``rule``'s action at ``node``."""
+    if rule == RULE_PUCT:
+        return _puct_pick(P, N, Q, visits, node, c32)
+    return _gumbel_pick(P, N, W, logP, legal, value, node, c_visit, c_scale, work)
+
+
+@njit(cache=True, inline="always")
+def _add_virtual_loss(edge_node, edge_act, lo, hi, N, W, Q, visits, vl):
+    for e in range(lo, hi):
+        n = edge_node[e]
+        a = edge_act[e]
+        N[n, a] += vl
+        W[n, a] -= vl
+        Q[n, a] = W[n, a] / N[n, a]
+        visits[n] += vl
+
+
 @njit(cache=True)
-def descend(roots, forced, rule, P, N, W, Q, logP, visits, legal, value, child, terminal, pending,
+def descend(roots, forced, rule, P, N, W, Q, logP, visits, legal, value, child, terminal, pending, ready,
             c_puct, c_visit, c_scale, virtual_loss, edge_node, edge_act, offset, path_start, path_len,
             leaf):
     """One descent per entry of ``roots`` (each from a different game's tree).
@@ -106,12 +128,16 @@ def descend(roots, forced, rule, P, N, W, Q, logP, visits, legal, value, child, 
     The first action is ``forced[j]`` where that is >= 0 (a root strategy's choice), else the
     selection ``rule``. A descent stops at an edge without a child (``leaf[j] = -1``: the caller
     creates the child), a terminal child or a child already waiting for evaluation (``leaf[j]``
-    = that child). The edges taken go to ``edge_node`` / ``edge_act`` from ``offset`` on, path
-    ``j`` at ``path_start[j] : path_start[j] + path_len[j]`` (root first). With a non-zero
+    = that child), or at a child whose legal moves and priors are not worked out yet (not
+    ``ready``: ``leaf[j] = BLOCKED``, the path ends with the edge into it and one edge slot after
+    it is kept free; the caller works the child out and :func:`finish_blocked` takes the path on).
+    The edges taken go to ``edge_node`` / ``edge_act`` from ``offset`` on, path ``j`` at
+    ``path_start[j] : path_start[j] + path_len[j]`` (root first). With a non-zero
     ``virtual_loss`` each finished path's edges get visit +vl and value -vl at once.
-    Returns (end offset, number of descents that stopped at a waiting child)."""
+    Returns (end offset, number of descents that stopped at a waiting child, number blocked)."""
     pos = offset
     collisions = 0
+    blocked = 0
     c32 = np.float32(c_puct)
     vl = np.float32(virtual_loss)
     work = np.empty(P.shape[1], dtype=np.float64)
@@ -122,10 +148,8 @@ def descend(roots, forced, rule, P, N, W, Q, logP, visits, legal, value, child, 
         while True:
             if depth == 0 and forced[j] >= 0:
                 a = forced[j]
-            elif rule == RULE_PUCT:
-                a = _puct_pick(P, N, Q, visits, node, c32)
             else:
-                a = _gumbel_pick(P, N, W, logP, legal, value, node, c_visit, c_scale, work)
+                a = _pick(rule, P, N, W, Q, logP, visits, legal, value, node, c32, c_visit, c_scale, work)
             edge_node[pos] = node
             edge_act[pos] = a
             pos += 1
@@ -139,17 +163,56 @@ def descend(roots, forced, rule, P, N, W, Q, logP, visits, legal, value, child, 
                 if pending[c]:
                     collisions += 1
                 break
+            if not ready[c]:
+                leaf[j] = BLOCKED
+                blocked += 1
+                break
             node = c
         path_len[j] = depth
+        if leaf[j] == BLOCKED:
+            pos += 1  # the slot finish_blocked writes the path's last edge into
+        elif vl != 0:
+            _add_virtual_loss(edge_node, edge_act, path_start[j], pos, N, W, Q, visits, vl)
+    return pos, collisions, blocked
+
+
+@njit(cache=True)
+def blocked_nodes(path_leaf, path_start, path_len, edge_node, edge_act, child, out):
+    """The nodes the blocked paths (``path_leaf == BLOCKED``) stopped at, into ``out``; returns
+    how many."""
+    k = 0
+    for j in range(path_leaf.size):
+        if path_leaf[j] == BLOCKED:
+            e = path_start[j] + path_len[j] - 1
+            out[k] = child[edge_node[e], edge_act[e]]
+            k += 1
+    return k
+
+
+@njit(cache=True)
+def finish_blocked(rule, P, N, W, Q, logP, visits, legal, value, child, c_puct, c_visit, c_scale, virtual_loss,
+                   edge_node, edge_act, path_start, path_len, leaf):
+    """Take every blocked path (``leaf[j] == BLOCKED``, its node now worked out) one edge on:
+    the selection ``rule``'s action at that node, into the slot :func:`descend` kept free. Such a
+    node never has children (a move is chosen at a node only once it is ready), so the path
+    ends at a new edge (``leaf[j] = -1``). Then the virtual loss, as :func:`descend` adds it."""
+    c32 = np.float32(c_puct)
+    vl = np.float32(virtual_loss)
+    work = np.empty(P.shape[1], dtype=np.float64)
+    for j in range(leaf.size):
+        if leaf[j] != BLOCKED:
+            continue
+        e = path_start[j] + path_len[j]
+        node = child[edge_node[e - 1], edge_act[e - 1]]
+        a = _pick(rule, P, N, W, Q, logP, visits, legal, value, node, c32, c_visit, c_scale, work)
+        if child[node, a] >= 0:
+            raise AssertionError("a node that was not ready has a child")
+        edge_node[e] = node
+        edge_act[e] = a
+        path_len[j] += 1
+        leaf[j] = -1
         if vl != 0:
-            for e in range(path_start[j], pos):
-                n = edge_node[e]
-                a = edge_act[e]
-                N[n, a] += vl
-                W[n, a] -= vl
-                Q[n, a] = W[n, a] / N[n, a]
-                visits[n] += vl
-    return pos, collisions
+            _add_virtual_loss(edge_node, edge_act, path_start[j], e + 1, N, W, Q, visits, vl)
 
 
 @njit(cache=True)
@@ -194,14 +257,14 @@ def backup(edge_node, edge_act, path_start, path_len, leaves, group_bounds, valu
 
 @njit(cache=True)
 def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, edge_act, base, count, N, W,
-                 visits, child, terminal, pending, new, parents, actions, slots, created):
+                 visits, child, terminal, pending, ready, now_ready, new, parents, actions, slots, created):
     """The paths ``lo:hi`` that stopped at an edge with no child, shallowest first (ties in path
     order), each given its child: the next free node of its slot's region (``count`` grows),
     its visits, values and children cleared, not terminal and waiting for evaluation (the
-    caller marks those that end the game), linked under its parent and recorded as the path's
-    leaf. Its legal moves are written by the caller (the rules), its priors and Q row when it is
-    evaluated; a node that ends the game is never evaluated and its priors are never read.
-    Writes the paths,
+    caller marks those that end the game), ``ready`` = ``now_ready``, linked under its parent and
+    recorded as the path's leaf. Its legal moves are written by the caller (the rules: now, or
+    when the node is first opened), its priors and Q row when it is evaluated (or opened); a
+    node that ends the game is never evaluated and its priors are never read. Writes the paths,
     the parents, actions, slots and new nodes into the first entries of ``new``, ``parents``,
     ``actions``, ``slots`` and ``created``; returns how many."""
     k = 0
@@ -232,6 +295,7 @@ def new_children(lo, hi, path_leaf, path_len, path_start, path_slot, edge_node, 
         visits[node] = 0.0
         terminal[node] = False
         pending[node] = True
+        ready[node] = now_ready
         child[edge_node[e], edge_act[e]] = node
     return k
 
@@ -248,15 +312,44 @@ def _all_finite(policy, values):
     return True
 
 
+@njit(cache=True, inline="always")
+def _softmax_over_legal(logits, P, node, legal):
+    """``P[node]`` = the softmax of ``logits`` (which may be ``P[node]`` itself) over the node's
+    legal moves, 0 on the others, in float32."""
+    A = P.shape[1]
+    top = np.float32(-np.inf)
+    for a in range(A):
+        if legal[node, a] and logits[a] > top:
+            top = logits[a]
+    total = np.float32(0.0)
+    for a in range(A):
+        e = np.exp(logits[a] - top) if legal[node, a] else np.float32(0.0)
+        P[node, a] = e
+        total += e
+    scale = np.float32(1.0) / total
+    for a in range(A):
+        P[node, a] *= scale
+
+
+@njit(cache=True, inline="always")
+def _first_play_q(Q, node, legal, q):
+    """Q = ``q`` (first-play urgency) on the node's legal edges, -inf on the others."""
+    for a in range(Q.shape[1]):
+        Q[node, a] = q if legal[node, a] else -np.inf
+
+
 @njit(cache=True)
-def store_evaluations(nodes, policy, values, unvisited_value_penalty, P, value, Q, legal, pending, from_logits):
+def store_evaluations(nodes, policy, values, unvisited_value_penalty, P, value, Q, legal, pending, ready,
+                      from_logits):
     """Write an evaluation into the tree: priors and value of each node; Q = value - penalty
     (float32, first-play urgency) on legal edges and -inf on illegal ones; no longer pending.
     ``policy`` holds the priors, or with ``from_logits`` raw policy logits, whose softmax over
     the node's legal moves (0 on the others) is computed in float32 as the row is written instead
     of in a separate pass over the batch (the numpy form,
-    :func:`selfplay.evaluators.softmax_over_legal`, agrees to float32 rounding). Returns False,
-    writing nothing, when a number of ``policy`` or ``values`` is not finite."""
+    :func:`selfplay.evaluators.softmax_over_legal`, agrees to float32 rounding). A node not
+    ``ready`` (its legal moves not known yet; only with ``from_logits``) keeps its raw logits in
+    ``P`` and gets no Q row: :func:`open_nodes` finishes it. Returns False, writing nothing,
+    when a number of ``policy`` or ``values`` is not finite."""
     if not _all_finite(policy, values):
         return False
     penalty = np.float32(unvisited_value_penalty)
@@ -265,27 +358,31 @@ def store_evaluations(nodes, policy, values, unvisited_value_penalty, P, value, 
         node = nodes[i]
         v = values[i]
         value[node] = v
-        q = v - penalty
-        for a in range(A):
-            Q[node, a] = q if legal[node, a] else -np.inf
+        pending[node] = False
+        if not ready[node]:
+            for a in range(A):
+                P[node, a] = policy[i, a]
+            continue
+        _first_play_q(Q, node, legal, v - penalty)
         if not from_logits:
             for a in range(A):
                 P[node, a] = policy[i, a]
         else:
-            top = np.float32(-np.inf)
-            for a in range(A):
-                if legal[node, a] and policy[i, a] > top:
-                    top = policy[i, a]
-            total = np.float32(0.0)
-            for a in range(A):
-                e = np.exp(policy[i, a] - top) if legal[node, a] else np.float32(0.0)
-                P[node, a] = e
-                total += e
-            scale = np.float32(1.0) / total
-            for a in range(A):
-                P[node, a] *= scale
-        pending[node] = False
+            _softmax_over_legal(policy[i], P, node, legal)
     return True
+
+
+@njit(cache=True)
+def open_nodes(nodes, unvisited_value_penalty, P, value, Q, legal, ready):
+    """Finish nodes evaluated before their legal moves were known, now that ``legal`` holds
+    them: the raw logits kept in ``P`` become priors (softmax over the legal moves, as
+    :func:`store_evaluations` computes them), the Q row its first-play values; ready."""
+    penalty = np.float32(unvisited_value_penalty)
+    for i in range(nodes.size):
+        node = nodes[i]
+        _first_play_q(Q, node, legal, value[node] - penalty)
+        _softmax_over_legal(P[node], P, node, legal)
+        ready[node] = True
 
 
 @njit(cache=True)
@@ -310,7 +407,7 @@ def subtree_order(child, top, out):
 
 
 @njit(cache=True)
-def move_rows(keep, base, P, N, W, Q, legal, child, to_play, terminal, value, pending, visits, logP):
+def move_rows(keep, base, P, N, W, Q, legal, child, to_play, terminal, value, pending, ready, visits, logP):
     """Copy the rows of nodes ``keep`` (ascending ids, from :func:`subtree_order`) to rows
     ``base, base + 1, ...`` and renumber their child ids the same way. ``logP`` is moved too when
     it has a row per node."""
@@ -338,6 +435,7 @@ def move_rows(keep, base, P, N, W, Q, legal, child, to_play, terminal, value, pe
         terminal[dst] = terminal[src]
         value[dst] = value[src]
         pending[dst] = pending[src]
+        ready[dst] = ready[src]
         visits[dst] = visits[src]
 
 

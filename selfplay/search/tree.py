@@ -179,6 +179,8 @@ class BatchedSearch:
         self.terminal = np.zeros(total, dtype=bool)
         self.value = np.zeros(total, dtype=np.float32)
         self.pending = np.zeros(total, dtype=bool)
+        # False: the node's legal moves, priors and Q row are not worked out yet (see _open)
+        self.ready = np.ones(total, dtype=bool)
         # the positions: rows of the game's state pool (node i in row i), else a list of states
         self.pool = game.state_pool(slots, C)
         self.states: list[Any] = [None] * total if self.pool is None else []
@@ -211,8 +213,11 @@ class BatchedSearch:
         self._path_slot = np.zeros(paths, dtype=np.int64)
         self._no_force = np.full(slots, -1, dtype=np.int64)
         # the new children of one descent step (kernels.new_children)
-        self._new_path, self._new_parent, self._new_action, self._new_slot, self._new_node = (
-            np.zeros(paths, dtype=np.int64) for _ in range(5))
+        self._new_path, self._new_parent, self._new_action, self._new_slot, self._new_node, self._blocked = (
+            np.zeros(paths, dtype=np.int64) for _ in range(6))
+        # whether this round's new children wait for their legal moves until a descent first
+        # chooses at them (a game with a state pool, an evaluator that hands back logits)
+        self._defer = False
 
     # ---- node helpers ----------------------------------------------------------------------
     def _terminal_value(self, state: Any, mover: int) -> float | None:
@@ -250,6 +255,7 @@ class BatchedSearch:
         self.P[nodes] = 0.0
         self.child[nodes] = -1
         self.legal[nodes] = False
+        self.ready[nodes] = True
 
     def set_root(self, slot: int, state: Any) -> None:
         """Start a fresh tree at ``slot`` whose root is ``state`` (evaluated at the next round)."""
@@ -312,6 +318,7 @@ class BatchedSearch:
         Returns the slots whose search finished in this round."""
         t_start = time.perf_counter()
         rnd = _Round()
+        self._defer = self.pool is not None and getattr(evaluator, "evaluate_logits", None) is not None
         root_evals = np.flatnonzero(self.searching & self.root_needs_eval)
         if root_evals.size:
             nodes = self.root[root_evals]
@@ -350,11 +357,21 @@ class BatchedSearch:
             forced = self._no_force[:k]
         self.budget_left[slots] -= 1
         lo, hi = rnd.paths, rnd.paths + k
-        end, collisions = kernels.descend(
+        cfg = self.config
+        end, collisions, blocked = kernels.descend(
             self.root[slots], forced, self._rule, self.P, self.N, self.W, self.Q, self.logP, self.visits,
-            self.legal, self.value, self.child, self.terminal, self.pending, self.config.c_puct,
-            self.config.gumbel_c_visit, self.config.gumbel_c_scale, self._vl, self._edge_node,
+            self.legal, self.value, self.child, self.terminal, self.pending, self.ready, cfg.c_puct,
+            cfg.gumbel_c_visit, cfg.gumbel_c_scale, self._vl, self._edge_node,
             self._edge_act, rnd.edges, self._path_start[lo:hi], self._path_len[lo:hi], self._path_leaf[lo:hi])
+        if blocked:
+            # paths that reached a node whose legal moves wait: work those out, then go on
+            k = kernels.blocked_nodes(self._path_leaf[lo:hi], self._path_start[lo:hi], self._path_len[lo:hi],
+                                      self._edge_node, self._edge_act, self.child, self._blocked)
+            rnd.rules_seconds += self._open(self._blocked[:k])
+            kernels.finish_blocked(self._rule, self.P, self.N, self.W, self.Q, self.logP, self.visits, self.legal,
+                                   self.value, self.child, cfg.c_puct, cfg.gumbel_c_visit, cfg.gumbel_c_scale,
+                                   self._vl, self._edge_node, self._edge_act, self._path_start[lo:hi],
+                                   self._path_len[lo:hi], self._path_leaf[lo:hi])
         self.times.collisions += collisions
         self._path_slot[lo:hi] = slots
         rnd.edges = end
@@ -368,7 +385,8 @@ class BatchedSearch:
         ``game.play`` each), shallowest first; those not terminal wait for evaluation."""
         k = kernels.new_children(lo, hi, self._path_leaf, self._path_len, self._path_start, self._path_slot,
                                  self._edge_node, self._edge_act, self.base, self.count, self.N, self.W,
-                                 self.visits, self.child, self.terminal, self.pending, self._new_path,
+                                 self.visits, self.child, self.terminal, self.pending, self.ready,
+                                 not self._defer, self._new_path,
                                  self._new_parent, self._new_action, self._new_slot, self._new_node)
         if not k:
             return
@@ -378,8 +396,9 @@ class BatchedSearch:
         t0 = time.perf_counter()
         if self.pool is not None:
             # one compiled call plays every new edge from its parent's row into its child's and
-            # writes the children's legal masks and players to move; it says which ended the game
-            ended = self.pool.expand(parents, actions, created, legal, self.to_play)
+            # writes the children's players to move, and their legal masks unless those wait
+            # for the children's first descent; it says which ended the game
+            ended = self.pool.expand(parents, actions, created, legal, self.to_play, build=not self._defer)
         else:
             states = self.states
             play, to_play = self.game.play_with_mask, self.game.to_play
@@ -400,8 +419,22 @@ class BatchedSearch:
         rnd.rules_seconds += time.perf_counter() - t0
         self.terminal[done] = True
         self.pending[done] = False
+        self.ready[done] = True
         self.value[done] = exact
         legal[done] = False
+
+    def _open(self, nodes: np.ndarray) -> float:
+        """Work out the legal moves of ``nodes`` (evaluated before anything needed them: their
+        raw logits wait in ``P``), then their priors and Q rows; returns the seconds the rules
+        took. Only a game with a state pool defers them (see ``_defer``)."""
+        t0 = time.perf_counter()
+        self.pool.build(nodes, self.legal)
+        t_rules = time.perf_counter() - t0
+        kernels.open_nodes(nodes, self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
+                           self.ready)
+        if self._rule == RULE_GUMBEL:
+            self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
+        return t_rules
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
         """Evaluate every waiting leaf in one call; returns the seconds the evaluator took."""
@@ -409,7 +442,8 @@ class BatchedSearch:
             return 0.0
         nodes, slots = rnd.evaluation_list()
         states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in nodes.tolist()])
-        batch = LeafBatch(self.game, states, self.to_play[nodes], self.legal[nodes],
+        # with deferred legal moves the leaves have none yet: an evaluator with logits needs none
+        batch = LeafBatch(self.game, states, self.to_play[nodes], None if self._defer else self.legal[nodes],
                           _SlotGenerators(self.rngs, slots))
         # an evaluator with raw logits (a network) leaves the softmax over each leaf's legal moves
         # to the compiled store, which computes it as it writes the priors
@@ -422,12 +456,14 @@ class BatchedSearch:
         if not kernels.store_evaluations(nodes, np.ascontiguousarray(policy, dtype=np.float32),
                                          np.ascontiguousarray(values, dtype=np.float32),
                                          self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
-                                         self.pending, logits_of is not None):
+                                         self.pending, self.ready, logits_of is not None):
             raise SnapshotError(f"evaluator {type(evaluator).__name__} returned non-finite priors or values (a "
                                 "corrupt or diverged network?); the search stops rather than fill its trees with them")
         if self._rule == RULE_GUMBEL:
-            # numpy's float32 log, as the formula's reference computes it
-            self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
+            # numpy's float32 log, as the formula's reference computes it (for nodes that are
+            # not ready, when they are opened)
+            done = nodes[self.ready[nodes]]
+            self.logP[done] = np.log(np.maximum(self.P[done], np.float32(1e-30)))
         self.times.evals += nodes.size
         self.times.batches += 1
         return t_net
@@ -468,6 +504,8 @@ class BatchedSearch:
             self.times.rules += time.perf_counter() - t0
             self.set_root(slot, state)
             return state
+        if not self.ready[c]:  # a root needs its legal moves and priors
+            self.times.rules += self._open(np.array([c], dtype=np.int64))
         t0 = time.perf_counter()
         base = int(self.base[slot])
         keep = np.empty(self.count[slot], dtype=np.int64)
@@ -479,7 +517,7 @@ class BatchedSearch:
             self.set_root(slot, state)
             return state
         kernels.move_rows(keep, base, self.P, self.N, self.W, self.Q, self.legal, self.child, self.to_play,
-                          self.terminal, self.value, self.pending, self.visits, self.logP)
+                          self.terminal, self.value, self.pending, self.ready, self.visits, self.logP)
         old = int(self.count[slot])
         if self.pool is not None:
             self.pool.reroot(slot, keep, base)
