@@ -233,9 +233,10 @@ class NetworkEvaluator:
         # once per network, so a call costs well under a microsecond)
         if getattr(self, "_watched_net", None) is not self.net:
             params, buffers = list(self.net.parameters()), list(self.net.buffers())
-            self._watched = [params[0], params[-1]] + buffers[:1]
+            self._watched = (params[0], params[-1], (buffers or params)[0])
             self._watched_net = self.net
-        return sum(t._version for t in self._watched) + id(self.net)
+        first, last, stats = self._watched
+        return first._version + last._version + stats._version + id(self.net)
 
     def _current(self) -> Any:
         fingerprint = self._weights_fingerprint()

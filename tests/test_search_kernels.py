@@ -293,22 +293,29 @@ def test_root_noise_is_the_alphago_zero_mixture_over_legal_moves():
     without human knowledge", Methods, "Self-play": P(s, a) = (1 - eps) p_a + eps eta_a with
     eta ~ Dir(alpha)), eta drawn by numpy's Generator.dirichlet (the reference sampler) from the
     same seed over the legal moves only: illegal moves keep their prior, the priors' sum is kept,
-    the input is not changed, and eps = 0 leaves the priors as they are."""
+    the input is not changed, and eps = 0 leaves the priors as they are. Bit for bit the float32
+    numbers numpy's own expression gives with that eta, and the generator left where dirichlet
+    leaves it, for alphas on both sides of numpy's switch between its two samplers (0.1)."""
     from selfplay.search.puct import add_dirichlet_noise
 
     rng = np.random.default_rng(5)
-    for trial in range(50):
+    for trial in range(120):
         legal = rng.random(82) < 0.6
         legal[81] = True
         priors = np.where(legal, rng.random(82), 0.0).astype(np.float32)
         priors /= priors.sum()
         before = priors.copy()
-        eps, alpha = (0.25, 0.03) if trial % 2 else (0.4, 0.5)
-        got = add_dirichlet_noise(priors, legal, eps, alpha, np.random.default_rng([trial, 9]))
-        eta = np.random.default_rng([trial, 9]).dirichlet(np.full(int(legal.sum()), alpha))
+        eps, alpha = [(0.25, 0.03), (0.4, 0.5), (0.25, 0.1733), (0.25, 0.1), (0.3, 0.0999), (0.25, 2.0)][trial % 6]
+        mine, ref = np.random.default_rng([trial, 9]), np.random.default_rng([trial, 9])
+        got = add_dirichlet_noise(priors, legal, eps, alpha, mine)
+        eta = ref.dirichlet(np.full(int(legal.sum()), alpha))
+        assert mine.random() == ref.random()
         want = priors.astype(np.float64)
         want[legal] = (1 - eps) * want[legal] + eps * eta
         assert got.dtype == np.float32 and np.array_equal(priors, before)
         np.testing.assert_allclose(got, want, rtol=1e-6, atol=1e-8)
+        numpy_form = priors.copy()
+        numpy_form[legal] = (1.0 - eps) * numpy_form[legal] + eps * eta
+        assert np.array_equal(got, numpy_form)
         assert np.all(got[~legal] == priors[~legal]) and abs(float(got.sum()) - 1.0) < 1e-5
     np.testing.assert_array_equal(add_dirichlet_noise(priors, legal, 0.0, 0.3, rng), priors)
