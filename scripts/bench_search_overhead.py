@@ -2,7 +2,10 @@
 
 Runs the vectorised worker on a game with an evaluator that builds the network's input planes
 (the encoding a network evaluator does) but returns uniform priors and value 0 instead of running
-a network, so every second measured is search, rules and encoding. Prints microseconds per
+a network, so every second measured is search, rules and encoding. By default it answers as a
+network does, with raw logits (all zero: uniform priors over the legal moves), so the search
+takes the network's path (softmax in the store; in Go, legal moves worked out when a descent
+first needs them); ``--priors`` answers with the priors themselves, as rollout evaluators do. Prints microseconds per
 simulation (leaf evaluation) as the median of ``--repeats`` runs of ``--seconds`` each: CPU
 time of this process (steady on a shared machine) and wall time.
 
@@ -44,12 +47,28 @@ class EncodingOnlyEvaluator:
         return uniform_priors(batch.legal), np.zeros(len(batch), dtype=np.float32)
 
 
+class EncodingOnlyLogitsEvaluator(EncodingOnlyEvaluator):
+    """The same, answering raw logits as a network evaluator does (zeros: uniform priors)."""
+
+    def __init__(self, actions: int) -> None:
+        super().__init__()
+        self.actions = actions
+
+    def evaluate_logits(self, batch: LeafBatch) -> tuple[np.ndarray, np.ndarray]:
+        t0 = time.perf_counter()
+        batch.planes()
+        self.times.encode += time.perf_counter() - t0
+        self.times.calls += 1
+        self.times.leaves += len(batch)
+        return np.zeros((len(batch), self.actions), dtype=np.float32), np.zeros(len(batch), dtype=np.float32)
+
+
 def measure(args: argparse.Namespace) -> dict[str, float]:
     name, options = GAMES[args.game]
     game = make_game(name, **options)
     search = SearchConfig(algorithm=args.algorithm, simulations=args.simulations,
                           leaves_per_game=args.leaves_per_game, temperature_moves=10_000)
-    ev = EncodingOnlyEvaluator()
+    ev = EncodingOnlyEvaluator() if args.priors else EncodingOnlyLogitsEvaluator(game.num_actions)
     worker = SelfPlayWorker(game, ev, search, games_in_parallel=args.games, worker_id="b", seed=args.seed)
     worker.step()  # warm up (compilation, first roots)
     e0, enc0 = worker.evals_total, ev.times.encode
@@ -73,6 +92,7 @@ def main() -> None:
     p.add_argument("--seconds", type=float, default=6.0)
     p.add_argument("--repeats", type=int, default=3)
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--priors", action="store_true", help="answer priors (as rollout evaluators do), not logits")
     args = p.parse_args()
     runs = [measure(args) for _ in range(args.repeats)]
     out = {k: statistics.median(r[k] for r in runs) for k in runs[0]}
