@@ -146,13 +146,15 @@ class _NoPoolGo(GoGame):
         return None
 
 
-@pytest.mark.parametrize("evaluator", ["uniform", "network"])
+@pytest.mark.parametrize("evaluator,leaves", [("uniform", 1), ("network", 1), ("network", 3)])
 @pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
-def test_self_play_with_and_without_the_pool_plays_the_same_games(algorithm: str, evaluator: str) -> None:
+def test_self_play_with_and_without_the_pool_plays_the_same_games(algorithm: str, evaluator: str,
+                                                                  leaves: int) -> None:
     """Same seeds, tree reuse on: the pool changes where positions live, never a game. With a
     network (raw logits) the pool also leaves each leaf's groups and legal moves until a descent
-    first chooses at it, where the search without a pool works them out at once."""
-    cfg = SearchConfig(algorithm=algorithm, simulations=24, gumbel_sampled_moves=8)
+    first chooses at it, where the search without a pool works them out at once; with several
+    leaves per game, paths that wait for that get their virtual loss as the others do."""
+    cfg = SearchConfig(algorithm=algorithm, simulations=24, gumbel_sampled_moves=8, leaves_per_game=leaves)
     records = []
     for game in (GoGame(size=7, max_moves=60), _NoPoolGo(size=7, max_moves=60)):
         if evaluator == "network":
