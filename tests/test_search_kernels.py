@@ -99,23 +99,38 @@ def _size(subtree: dict) -> int:
     return 1 + sum(_size(k) for k in subtree["kids"].values())
 
 
-@pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
-def test_reuse_keeps_the_chosen_subtree_exactly(algorithm):
+def _searched(algorithm: str, capacity: int | None) -> BatchedSearch:
     game = make_game("fourinrow")
     cfg = SearchConfig(algorithm=algorithm, simulations=60, node_capacity_factor=8.0)
-    tree = BatchedSearch(game, cfg, 2)
+    tree = BatchedSearch(game, cfg, 2, capacity=capacity)
     for s in range(2):
         tree.set_root(s, game.initial_state())
         tree.begin(s, 60, False, np.random.default_rng(s))
     while tree.searching_slots():
         tree.run_round(RandomRolloutEvaluator())
-    root = int(tree.root[1])
-    action = int(np.argmax(tree.N[root]))
-    expected = _subtree(tree, int(tree.child[root, action]))
-    tree.advance(1, action)
-    assert tree.root[1] == tree.base[1]
-    assert _subtree(tree, int(tree.root[1])) == expected
-    assert tree.count[1] == _size(expected)   # every kept node, no other
+    return tree
+
+
+@pytest.mark.parametrize("algorithm", ["puct", "gumbel"])
+def test_reuse_keeps_the_chosen_subtree_exactly(algorithm):
+    """With room for another full search the chosen child becomes the root where it lies; with
+    too little, its subtree is compacted to the region's front (every kept node, no other);
+    either way the statistics under the new root are those the child had."""
+    used = int(_searched(algorithm, None).count[1])
+    for capacity, in_place in ((None, True), (used + 60, False)):  # used + 60 + 1 rows do not fit
+        tree = _searched(algorithm, capacity)
+        assert tree.count[1] == used  # the same search
+        root = int(tree.root[1])
+        action = int(np.argmax(tree.N[root]))
+        child = int(tree.child[root, action])
+        expected = _subtree(tree, child)
+        tree.advance(1, action)
+        assert _subtree(tree, int(tree.root[1])) == expected
+        if in_place:
+            assert tree.root[1] == child and tree.count[1] == used
+        else:
+            assert tree.root[1] == tree.base[1]
+            assert tree.count[1] == _size(expected)   # every kept node, no other
 
 
 @pytest.mark.parametrize("name,options", [("go", {"size": 5, "tiny": True, "history": 3}),

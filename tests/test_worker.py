@@ -12,7 +12,7 @@ from selfplay.errors import ConfigError
 from selfplay.evaluators import NetworkEvaluator, UniformEvaluator
 from selfplay.games.mnk import MNKGame, tictactoe
 from selfplay.network import NetworkConfig, build_network
-from selfplay.search import SearchConfig
+from selfplay.search import SearchConfig, kernels
 from selfplay.worker import SelfPlayWorker, game_seed
 
 GAME = tictactoe()
@@ -247,8 +247,11 @@ def test_tree_bookkeeping_stays_consistent_across_rounds_and_reuse(algorithm):
     for _ in range(6):
         w.step()
         tree = w._tree
-        for base, count in zip(tree.base.tolist(), tree.count.tolist()):
-            nodes = np.arange(base, base + count)
+        for base, count, root in zip(tree.base.tolist(), tree.count.tolist(), tree.root.tolist()):
+            # the live tree: the root's subtree (rows of earlier trees may lie dead in the region)
+            nodes = np.empty(count, dtype=np.int64)
+            nodes = nodes[:kernels.subtree_order(tree.child, root, nodes)]
+            assert base <= root and np.all(nodes < base + count)
             N, W, Q = tree.N[nodes], tree.W[nodes], tree.Q[nodes]
             assert np.all(N == np.round(N)) and np.all(N >= 0)
             np.testing.assert_allclose(tree.visits[nodes], N.sum(axis=1))

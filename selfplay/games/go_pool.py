@@ -352,17 +352,24 @@ class GoStatePool:
         self.root_seen[slot, :state.seen.shape[0]] = state.seen
         self.root_seen_len[slot] = state.seen.shape[0]
 
-    def reroot(self, slot: int, keep: np.ndarray, base: int) -> None:
-        """The subtree of rows ``keep`` (ascending, its top first) becomes the slot's tree in
-        rows ``base, base + 1, ...``: its top the new root (its keys join the game's), parent
-        rows renumbered like the tree's child ids."""
-        top = int(keep[0])
-        self._build(np.array([top], dtype=np.int64), None)
-        m = gather_seen(top, self.meta, self.root_seen, self.root_seen_len, self.capacity, self._merged)
+    def make_root(self, slot: int, row: int) -> None:
+        """The position in ``row`` becomes the root of ``slot``'s tree where it lies: its keys
+        join the game's, its link to its parent is cut (the rows of its subtree keep theirs;
+        the others are dead until :meth:`reroot` compacts the region)."""
+        if not self.built[row]:
+            self._build(np.array([row], dtype=np.int64), None)
+        m = gather_seen(row, self.meta, self.root_seen, self.root_seen_len, self.capacity, self._merged)
         if m > self._seen_room:
             raise ValueError(f"go game history of {m} positions exceeds the search's room of {self._seen_room}")
         self.root_seen[slot, :m] = self._merged[:m]
         self.root_seen_len[slot] = m
+        self.meta[row, PARENT] = -1
+
+    def reroot(self, slot: int, keep: np.ndarray, base: int) -> None:
+        """The subtree of rows ``keep`` (ascending, its top first) becomes the slot's tree in
+        rows ``base, base + 1, ...``: its top the new root (its keys join the game's), parent
+        rows renumbered like the tree's child ids."""
+        self.make_root(slot, int(keep[0]))
         move_rows(np.ascontiguousarray(keep, dtype=np.int64), base, self.hist, self.grp, self.meta, self.built)
 
     # ---- expansion -----------------------------------------------------------------------------
@@ -425,7 +432,7 @@ class GoStatePool:
         if not self.built[row]:
             self._build(np.array([row], dtype=np.int64), None)
         m = gather_seen(row, self.meta, self.root_seen, self.root_seen_len, self.capacity, self._merged)
-        key, prev_key, player, passes, moves, peak = (int(v) for v in self.meta[row, :PARENT])
+        key, prev_key, player, passes, moves, peak = self.meta[row, :PARENT].tolist()
         return GoState(self.hist[row].copy(), self.grp[row].copy(), self._merged[:m].copy(), key, prev_key, player,
                        passes, moves, peak)
 

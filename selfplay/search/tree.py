@@ -42,9 +42,11 @@ What happens at the root — noise, forced actions, when a search is complete, t
 belongs to the root search (:class:`selfplay.search.root.RootSearch`; PUCT in
 :mod:`selfplay.search.puct`, Gumbel in :mod:`selfplay.search.gumbel`).
 
-Reuse. After a move the chosen child's subtree is copied to the front of the slot's region
-(compiled: in ascending node order, child ids remapped) and becomes the new root; the rest is
-dropped. A subtree that would not leave room for a full search is dropped too.
+Reuse. After a move the chosen child's subtree becomes the tree: where the region still has
+room for a full search after the rows in use, the child simply becomes the root (the rest of
+the old tree stays behind as dead rows); otherwise the subtree is copied to the front of the
+region (compiled: in ascending node order, child ids remapped), which frees the dead rows. A
+subtree that would not leave room for a full search even then is dropped.
 """
 
 from __future__ import annotations
@@ -495,7 +497,8 @@ class BatchedSearch:
 
     def advance(self, slot: int, action: int) -> Any:
         """Play ``action`` at the slot's root, keep its subtree (if reuse is on and it fits) as
-        the new tree, and return the new root state."""
+        the new tree (in place, or compacted to the region's front when the region is full), and
+        return the new root state."""
         root = self.root[slot]
         c = int(self.child[root, action])
         if c < 0 or not self.config.reuse_tree or self.terminal[c] or self.pending[c]:
@@ -507,11 +510,21 @@ class BatchedSearch:
         if not self.ready[c]:  # a root needs its legal moves and priors
             self.times.rules += self._open(np.array([c], dtype=np.int64))
         t0 = time.perf_counter()
+        state = self._state(c)
+        if self.count[slot] + self.config.simulations + 1 <= self.capacity:
+            # room for a full search after the rows in use: the subtree stays where it is (the
+            # rest of the region is dead until a later move compacts it)
+            if self.pool is not None:
+                self.pool.make_root(slot, c)
+            self.root[slot] = c
+            self.root_needs_eval[slot] = False
+            self.searching[slot] = False
+            self.times.tree += time.perf_counter() - t0
+            return state
         base = int(self.base[slot])
         keep = np.empty(self.count[slot], dtype=np.int64)
         total = kernels.subtree_order(self.child, c, keep)
         keep = keep[:total]
-        state = self._state(c)
         if total + self.config.simulations + 1 > self.capacity:
             self.times.tree += time.perf_counter() - t0
             self.set_root(slot, state)
