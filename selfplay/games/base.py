@@ -124,10 +124,12 @@ class Game(abc.ABC, Generic[State]):
         """Optional: storage for the positions of ``slots`` search trees of ``capacity`` nodes
         each, in rows numbered like the tree's nodes, or None (the default: the tree keeps one
         state object per node). A pool offers ``store_root(slot, row, state)``,
-        ``expand(parents, actions, rows, legal, to_play) -> ended`` (every new edge of a round in
-        one call, legal masks written into ``legal[rows]``, players to move into ``to_play[rows]``),
-        ``reroot(slot, keep, base)`` (keep a
-        subtree as the new tree), ``load(row) -> state`` and ``states(rows)`` (a sequence whose
+        ``expand(parents, actions, rows, legal, to_play, build=True) -> ended`` (every new edge of
+        a round in one call, players to move into ``to_play[rows]``, legal masks into
+        ``legal[rows]``; with ``build=False`` the masks wait), ``build(rows, legal)`` (the masks
+        of rows expanded without them), ``make_root(slot, row)`` (a row becomes the root where
+        it lies), ``reroot(slot, keep, base)`` (keep a subtree as the new tree, compacted to the
+        region's front), ``load(row) -> state`` and ``states(rows)`` (a sequence whose
         ``histories()`` gives the network's compact input); see
         :class:`selfplay.games.go_pool.GoStatePool`."""
         return None
