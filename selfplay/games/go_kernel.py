@@ -459,45 +459,30 @@ def play_board(hist, grp, key, color, p, allow_suicide, nbr, zob, nwords, out_hi
     board0 = hist[0]
     if board0[p] != 0:
         return OCCUPIED, key, 0
+    st, nk = move_result(board0, grp, p, color, key, allow_suicide, nbr, zob, nwords)
+    if st != OK:
+        return st, key, 0
     out_hist[1:] = hist[:-1]
     out_hist[0] = board0
     board = out_hist[0]
-    nk = key ^ zob[color, p]
+    opp = 3 - color
     has_lib = False
-    c0 = -1
-    c1 = -1
-    c2 = -1
     for k in range(4):
         q = nbr[p, k]
         if q < 0:
             continue
-        v = board0[q]
-        if v == 0:
+        v = board[q]
+        if v == opp and _lib_only(grp, grp[q, REP], p, nwords):
+            _clear_stones(board, grp, grp[q, REP])  # captured
             has_lib = True
-        elif v == color:
-            if _lib_other_than(grp, grp[q, REP], p, nwords):
-                has_lib = True
-        else:
-            r = grp[q, REP]
-            if r != c0 and r != c1 and r != c2 and _lib_only(grp, r, p, nwords):
-                nk ^= grp[r, HASH]
-                has_lib = True
-                _clear_stones(board, grp, r)
-                if c0 < 0:
-                    c0 = r
-                elif c1 < 0:
-                    c1 = r
-                else:
-                    c2 = r
+        elif v == 0 or (v == color and _lib_other_than(grp, grp[q, REP], p, nwords)):
+            has_lib = True
     if has_lib:
         board[p] = color
-    elif not allow_suicide:
-        return SUICIDE, key, 0
-    else:  # suicide: the stone and every friendly group it touches leave the board
-        nk = _suicide_key(board0, grp, p, color, key, nbr)
+    else:  # a suicide the rules allow: every friendly group it touches leaves the board with it
         for k in range(4):
             q = nbr[p, k]
-            if q >= 0 and board0[q] == color and board[q] != 0:
+            if q >= 0 and board[q] == color:
                 _clear_stones(board, grp, grp[q, REP])
     return OK, nk, _stone_count(board)
 
