@@ -37,6 +37,7 @@ from typing import TYPE_CHECKING, Iterator, Sequence
 import numpy as np
 from numba import njit
 
+from selfplay.arrays import resident_zeros
 from selfplay.games import go_kernel as K
 
 if TYPE_CHECKING:
@@ -51,7 +52,7 @@ META_COLUMNS = 8
 def _line_aligned_rows(rows: int) -> np.ndarray:
     """int64 (rows, META_COLUMNS) zeros starting on a 64-byte boundary, so that each row's
     scalars share one cache line (a node costs one memory access for them, not seven)."""
-    raw = np.zeros(rows * META_COLUMNS + 8, dtype=np.int64)
+    raw = resident_zeros(rows * META_COLUMNS + 8, np.int64)
     skip = (-raw.ctypes.data % 64) // 8
     return raw[skip:skip + rows * META_COLUMNS].reshape(rows, META_COLUMNS)
 
@@ -308,9 +309,9 @@ class GoStatePool:
         rows = slots * capacity
         n, h = game.size * game.size, game.history
         group_cols = game._initial.groups.shape[1]
-        # rows are always written before they are read: np.empty leaves unused pages uncommitted
-        self.hist = np.empty((rows, h, n), dtype=np.int8)
-        self.grp = np.empty((rows, n, group_cols), dtype=np.int64)
+        # written now, not row by row in the hot loop (see selfplay.arrays.resident_zeros)
+        self.hist = resident_zeros((rows, h, n), np.int8)
+        self.grp = resident_zeros((rows, n, group_cols), np.int64)
         self.meta = _line_aligned_rows(rows)
         self.meta[:, PARENT] = -1
         #: whether the row's group table is in place (a row expanded with ``build=False`` gets

@@ -58,6 +58,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from selfplay.arrays import resident_zeros
 from selfplay.errors import ConfigError, SnapshotError
 from selfplay.evaluators import Evaluator, LeafBatch
 from selfplay.games.base import Game
@@ -168,14 +169,14 @@ class BatchedSearch:
             raise ValueError(f"capacity {capacity} cannot hold a search of {config.simulations} simulations")
         self.capacity = C = int(capacity)
         total = slots * C
-        self.P = np.zeros((total, A), dtype=np.float32)
-        self.N = np.zeros((total, A), dtype=np.float32)
-        self.W = np.zeros((total, A), dtype=np.float32)
+        self.P = resident_zeros((total, A), np.float32)
+        self.N = resident_zeros((total, A), np.float32)
+        self.W = resident_zeros((total, A), np.float32)
         # Q = W / N where visited; the first-play-urgency value where not; -inf where illegal
         # (kept up to date at evaluation and backup so that PUCT selection needs no division)
-        self.Q = np.zeros((total, A), dtype=np.float32)
+        self.Q = resident_zeros((total, A), np.float32)
         self.visits = np.zeros(total, dtype=np.float32)  # sum over the node's edges of N
-        self.legal = np.zeros((total, A), dtype=bool)
+        self.legal = resident_zeros((total, A), bool)
         self.child = np.full((total, A), -1, dtype=np.int32)
         self.to_play = np.zeros(total, dtype=np.int8)
         self.terminal = np.zeros(total, dtype=bool)
@@ -200,7 +201,7 @@ class BatchedSearch:
         self.variant: RootSearch = make_root_search(config, game, slots)
         self._rule = self.variant.below_root
         # log priors for the Gumbel rule below the root (numpy's float32 log, as the formula's)
-        self.logP = np.zeros((total, A) if self._rule == RULE_GUMBEL else (1, 1), dtype=np.float32)
+        self.logP = resident_zeros((total, A) if self._rule == RULE_GUMBEL else (1, 1), np.float32)
         self.times = SearchTimes()
         self._leaves = config.leaves_per_game
         self._vl = float(config.virtual_loss) if config.leaves_per_game > 1 else 0.0
