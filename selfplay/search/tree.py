@@ -11,7 +11,11 @@ masked):
   Gumbel rule ``logP[i]`` the log priors;
 - scalars ``visits[i]`` (the sum of ``N[i]``), ``to_play[i]``, ``terminal[i]``, ``value[i]``
   (network value, or the exact result for a terminal node, from the view of the player to move
-  at ``i``) and ``pending[i]`` (waiting for evaluation in the current round);
+  at ``i``), ``pending[i]`` (waiting for evaluation in the current round) and ``ready[i]``
+  (False: the node's legal moves, priors and Q row are not worked out yet; with a network and
+  a game with a state pool a node is made with its boards only, keeps its raw logits in
+  ``P[i]`` once evaluated, and is opened when a descent first has to choose a move there —
+  most nodes never are);
 - the game state itself: in the game's state pool where it has one (Go:
   :class:`selfplay.games.go_pool.GoStatePool`, the position in row ``i`` of a few arrays), else
   in a Python list (states are immutable; ``game.play`` returns new ones).
@@ -25,15 +29,17 @@ A round (:meth:`BatchedSearch.run_round`) has four steps, one method each:
 1. ``_descend`` — one compiled call (:func:`selfplay.search.kernels.descend`) walks from the root
    of every slot that may simulate now, choosing with the root search's forced action at the
    root (Gumbel) and the below-root rule elsewhere, and stops at a new edge, a terminal node or a
-   node already waiting for evaluation (a collision: it shares that evaluation). With
-   ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and the step runs
-   once per leaf;
+   node already waiting for evaluation (a collision: it shares that evaluation), or at a node
+   not ``ready`` (``_open`` works it out, then ``kernels.finish_blocked`` takes the path one
+   edge on). With ``leaves_per_game > 1`` each finished path gets its virtual loss at once, and
+   the step runs once per leaf;
 2. ``_expand`` — the children at new edges are created, shallowest first: one compiled
    ``pool.expand`` call for all of them where the game has a state pool (Go), else one
    ``game.play_with_mask`` each;
 3. ``_evaluate`` — every waiting leaf of every slot goes to the evaluator in ONE batched call
    (a network evaluator hands back raw logits: the softmax over each leaf's legal moves is
-   computed as its priors are stored, :func:`selfplay.search.kernels.store_evaluations`);
+   computed as its priors are stored, :func:`selfplay.search.kernels.store_evaluations`, or
+   when the leaf is opened);
 4. ``_backup`` — one compiled call (:func:`selfplay.search.kernels.backup`) adds each leaf's value
    along its path, negated wherever the player to move differs from the leaf's, and removes the
    virtual losses.
