@@ -99,10 +99,11 @@ def _path_keys(meta, p, path_keys):
 @njit(cache=True)
 def _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr, zob,
                nwords, max_moves, path_keys, mask):
-    """Play row ``c``'s move (column ``ACTION``) in full from its built parent's row: its
-    boards again, its group table, and with a non-empty ``mask`` its legal mask (all False when
-    the position ends the game). Returns the rules' status (anything but OK: the move was never
-    legal, or the row's key disagrees: ``OVER``)."""
+    """Play row ``c``'s move (column ``ACTION``; its parent, player, moves and passes already
+    in ``meta``, and for a pass its key and peak) in full from its built parent's row: its
+    boards, its group table, and with a non-empty ``mask`` its legal mask (all False when the
+    position ends the game). Returns (the rules' status, the new board's key, the game's peak
+    stone count after the move); only on OK does the row count as built."""
     n = nbr.shape[0]
     p = meta[c, PARENT]
     a = meta[c, ACTION]
@@ -116,27 +117,34 @@ def _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, al
         hist[c, 1:] = hist[p, :-1]
         hist[c, 0] = hist[p, 0]
         grp[c] = grp[p]
-        if mask.shape[0] > 0:
-            if over:
-                mask[:] = False
-            else:
-                board = hist[c, 0]
-                K._legal_points(board, grp[c], seen, extra, cm[KEY], cm[KEY], cm[PLAYER] + 1, allow_suicide,
-                                superko, nbr, zob, nwords, K._stone_count(board) >= cm[PEAK], mask)
-                mask[n] = True
+        if mask.shape[0] > 0 and not over:
+            board = hist[c, 0]
+            K._legal_points(board, grp[c], seen, extra, cm[KEY], cm[KEY], cm[PLAYER] + 1, allow_suicide,
+                            superko, nbr, zob, nwords, K._stone_count(board) >= cm[PEAK], mask)
+            mask[n] = True
+        st, nk, peak = K.OK, pm[KEY], pm[PEAK]
+    else:
+        st, nk, _, peak = K.play_history(hist[p], grp[p], seen, extra, pm[KEY], pm[PREV_KEY], pm[PLAYER] + 1, a,
+                                         allow_suicide, superko, nbr, zob, nwords, pm[PEAK], hist[c], grp[c],
+                                         path_keys[:0], mask[:0] if over else mask)
+    if st == K.OK:
+        if over and mask.shape[0] > 0:
+            mask[:] = False
         built[c] = True
-        return K.OK
-    st, nk, _, _ = K.play_history(hist[p], grp[p], seen, extra, pm[KEY], pm[PREV_KEY], pm[PLAYER] + 1, a,
-                                  allow_suicide, superko, nbr, zob, nwords, pm[PEAK], hist[c], grp[c], path_keys[:0],
-                                  mask[:0] if over else mask)
-    if st != K.OK:
-        return st
-    if nk != cm[KEY]:
+    return st, nk, peak
+
+
+@njit(cache=True)
+def _rebuild_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr, zob,
+                 nwords, max_moves, path_keys, mask):
+    """:func:`_build_row` for a row :func:`expand_rows` made without its table: the rules'
+    status, or ``OVER`` when the full move's key disagrees with the one the row was given."""
+    st, nk, _ = _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr,
+                           zob, nwords, max_moves, path_keys, mask)
+    if st == K.OK and nk != meta[c, KEY]:
+        built[c] = False
         return K.OVER
-    if over and mask.shape[0] > 0:
-        mask[:] = False
-    built[c] = True
-    return K.OK
+    return st
 
 
 @njit(cache=True)
@@ -154,8 +162,8 @@ def _build_chain(hist, grp, meta, built, root_seen, root_seen_len, capacity, row
         q = meta[q, PARENT]
     no_mask = np.zeros(0, dtype=np.bool_)
     for i in range(depth - 1, -1, -1):
-        st = _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, stack[i], allow_suicide, superko,
-                        nbr, zob, nwords, max_moves, path_keys, no_mask)
+        st = _rebuild_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, stack[i], allow_suicide,
+                          superko, nbr, zob, nwords, max_moves, path_keys, no_mask)
         if st != K.OK:
             return st
     return K.OK
@@ -180,8 +188,8 @@ def build_rows(hist, grp, meta, built, root_seen, root_seen_len, capacity, rows,
             if _build_chain(hist, grp, meta, built, root_seen, root_seen_len, capacity, p, allow_suicide, superko, nbr,
                             zob, nwords, max_moves, path_keys, stack) != K.OK:
                 return i
-        if _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr, zob,
-                      nwords, max_moves, path_keys, legal[c] if with_masks else no_mask) != K.OK:
+        if _rebuild_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr,
+                        zob, nwords, max_moves, path_keys, legal[c] if with_masks else no_mask) != K.OK:
             return i
     return -1
 
@@ -206,8 +214,6 @@ def expand_rows(hist, grp, meta, built, root_seen, root_seen_len, capacity, pare
     and the keys of the parent and its ancestors below the root, gathered into the scratch
     buffer ``path_keys`` (at least the tree's depth long): nothing is copied per child."""
     n = nbr.shape[0]
-    no_mask = np.zeros(0, dtype=np.bool_)
-    no_keys = path_keys[:0]
     refused = 0
     for i in range(rows.size):
         p = parents[i]
@@ -237,40 +243,30 @@ def expand_rows(hist, grp, meta, built, root_seen, root_seen_len, capacity, pare
         to_play[c] = cm[PLAYER]
         cm[MOVES] = pm[MOVES] + 1
         cm[PREV_KEY] = pm[KEY]
-        ends = cm[MOVES] >= max_moves
-        built[c] = build
         if a == n:  # pass: the same board again, the same groups and keys
             cm[KEY] = pm[KEY]
             cm[PEAK] = pm[PEAK]
             cm[PASSES] = pm[PASSES] + 1
-            status[i] = K.OK
-            if cm[PASSES] >= 2 or ends:
-                legal[c, :] = False
-                ended[i] = True
-            if build:
-                _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide, superko, nbr,
-                           zob, nwords, max_moves, path_keys, legal[c])
-            else:
-                hist[c, 1:] = hist[p, :-1]
-                hist[c, 0] = hist[p, 0]
-            continue
+        else:
+            cm[PASSES] = 0
+        over = cm[PASSES] >= 2 or cm[MOVES] >= max_moves
+        built[c] = False
         if build:
-            slot = p // capacity
-            seen = root_seen[slot, :root_seen_len[slot]]
-            extra = _path_keys(meta, p, path_keys)
-            st, nk, _, new_peak = K.play_history(hist[p], grp[p], seen, extra, pm[KEY], pm[PREV_KEY], pm[PLAYER] + 1,
-                                                 a, allow_suicide, superko, nbr, zob, nwords, pm[PEAK], hist[c],
-                                                 grp[c], no_keys, no_mask if ends else legal[c])
+            st, nk, peak = _build_row(hist, grp, meta, built, root_seen, root_seen_len, capacity, c, allow_suicide,
+                                      superko, nbr, zob, nwords, max_moves, path_keys, legal[c])
+        elif a == n:
+            hist[c, 1:] = hist[p, :-1]
+            hist[c, 0] = hist[p, 0]
+            st, nk, peak = K.OK, pm[KEY], pm[PEAK]
         else:
             st, nk, stones = K.play_board(hist[p], grp[p], pm[KEY], pm[PLAYER] + 1, a, allow_suicide, nbr, zob,
                                           nwords, hist[c])
-            new_peak = stones if stones > pm[PEAK] else pm[PEAK]
+            peak = stones if stones > pm[PEAK] else pm[PEAK]
         status[i] = st
         refused += st != K.OK
         cm[KEY] = nk
-        cm[PEAK] = new_peak
-        cm[PASSES] = 0
-        if ends:
+        cm[PEAK] = peak
+        if over:
             legal[c, :] = False
             ended[i] = True
     return refused
