@@ -32,12 +32,12 @@ Results are those of :meth:`selfplay.games.go.GoGame.play_with_mask` move for mo
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Iterator, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numba import njit
 
-from selfplay.arrays import resident_zeros
+from selfplay.arrays import RowItems, resident_zeros
 from selfplay.games import go_kernel as K
 
 if TYPE_CHECKING:
@@ -443,25 +443,14 @@ class GoStatePool:
         return PooledStates(self, np.asarray(rows, dtype=np.int64))
 
 
-class PooledStates(Sequence["GoState"]):
+class PooledStates(RowItems["GoState"]):
     """Positions of pool rows as a read-only sequence: an evaluator that wants the network's
     input reads :meth:`histories` (one gather); one that wants states (rollouts) gets each made
     when asked for."""
 
     def __init__(self, pool: GoStatePool, rows: np.ndarray) -> None:
+        super().__init__(rows, pool.load)
         self.pool = pool
-        self.rows = rows
-
-    def __len__(self) -> int:
-        return int(self.rows.size)
-
-    def __getitem__(self, i):  # type: ignore[override]
-        if isinstance(i, slice):
-            return [self.pool.load(int(r)) for r in self.rows[i]]
-        return self.pool.load(int(self.rows[i]))
-
-    def __iter__(self) -> Iterator[GoState]:
-        return (self.pool.load(int(r)) for r in self.rows)
 
     def histories(self) -> np.ndarray:
         return self.pool.histories(self.rows)

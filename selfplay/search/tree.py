@@ -64,7 +64,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from selfplay.arrays import resident_zeros
+from selfplay.arrays import RowItems, resident_zeros
 from selfplay.errors import ConfigError, SnapshotError
 from selfplay.evaluators import Evaluator, LeafBatch
 from selfplay.games.base import Game
@@ -137,26 +137,6 @@ class _Round:
         if len(self.node_parts) == 1:
             return self.node_parts[0], self.slot_parts[0]
         return np.concatenate(self.node_parts), np.concatenate(self.slot_parts)
-
-
-class _SlotGenerators(Sequence[np.random.Generator]):
-    """The random generators of the games ``slots`` (one per leaf of a batch), looked up only
-    when an evaluator asks (a network never does)."""
-
-    def __init__(self, rngs: list[np.random.Generator | None], slots: np.ndarray) -> None:
-        self._rngs = rngs
-        self._slots = slots
-
-    def __len__(self) -> int:
-        return int(self._slots.size)
-
-    def __getitem__(self, i):  # type: ignore[override]
-        if isinstance(i, slice):
-            return [self._rngs[s] for s in self._slots[i].tolist()]
-        return self._rngs[int(self._slots[i])]
-
-    def __iter__(self):
-        return (self._rngs[s] for s in self._slots.tolist())
 
 
 class BatchedSearch:
@@ -441,9 +421,14 @@ class BatchedSearch:
         t_rules = time.perf_counter() - t0
         kernels.open_nodes(nodes, self.config.unvisited_value_penalty, self.P, self.value, self.Q, self.legal,
                            self.ready)
+        self._store_log_priors(nodes)
+        return t_rules
+
+    def _store_log_priors(self, nodes: np.ndarray) -> None:
+        """The Gumbel rule's log priors of ``nodes`` (ready ones), in numpy's float32 log as the
+        formula's reference computes it; nothing under PUCT."""
         if self._rule == RULE_GUMBEL:
             self.logP[nodes] = np.log(np.maximum(self.P[nodes], np.float32(1e-30)))
-        return t_rules
 
     def _evaluate(self, evaluator: Evaluator, rnd: _Round) -> float:
         """Evaluate every waiting leaf in one call; returns the seconds the evaluator took."""
@@ -451,9 +436,10 @@ class BatchedSearch:
             return 0.0
         nodes, slots = rnd.evaluation_list()
         states = (self.pool.states(nodes) if self.pool is not None else [self.states[i] for i in nodes.tolist()])
-        # with deferred legal moves the leaves have none yet: an evaluator with logits needs none
+        # with deferred legal moves the leaves have none yet: an evaluator with logits needs none;
+        # the games' generators are looked up only if the evaluator asks (a network never does)
         batch = LeafBatch(self.game, states, self.to_play[nodes], None if self._defer else self.legal[nodes],
-                          _SlotGenerators(self.rngs, slots))
+                          RowItems(slots, self.rngs.__getitem__))
         # an evaluator with raw logits (a network) leaves the softmax over each leaf's legal moves
         # to the compiled store, which computes it as it writes the priors
         logits_of = getattr(evaluator, "evaluate_logits", None)
@@ -468,11 +454,8 @@ class BatchedSearch:
                                          self.pending, self.ready, logits_of is not None):
             raise SnapshotError(f"evaluator {type(evaluator).__name__} returned non-finite priors or values (a "
                                 "corrupt or diverged network?); the search stops rather than fill its trees with them")
-        if self._rule == RULE_GUMBEL:
-            # numpy's float32 log, as the formula's reference computes it (for nodes that are
-            # not ready, when they are opened)
-            done = nodes[self.ready[nodes]]
-            self.logP[done] = np.log(np.maximum(self.P[done], np.float32(1e-30)))
+        if self._rule == RULE_GUMBEL:  # nodes not ready get theirs when they are opened
+            self._store_log_priors(nodes[self.ready[nodes]])
         self.times.evals += nodes.size
         self.times.batches += 1
         return t_net
